@@ -1,0 +1,327 @@
+//! HDF5 input in modalmap's own layout (documented in notebooks-free-docs/input-formats.md),
+//! read with the pure-Rust `hdf5-pure` crate so that no system library is needed.
+//!
+//! Two layouts are accepted:
+//! 1. a group `/maps` (or the root group) with one 2-D dataset (height × width) per element,
+//!    named like map files (`Fe`, `Fe_Ka`, `Si-K`), optionally with a string attribute `line`;
+//! 2. a 3-D dataset `/maps` (element × height × width) with a string-array attribute
+//!    `elements` naming each plane (and optionally `lines`).
+//!
+//! Metadata are numeric attributes `pixel_size_um`, `beam_kv`, `live_time_s` on the root or on
+//! `/maps` (the latter wins). A 2-D dataset `/bse` (or a dataset named `BSE…` beside the maps)
+//! is the backscattered-electron image.
+
+use std::collections::HashMap;
+use std::panic::{catch_unwind, AssertUnwindSafe};
+use std::path::Path;
+
+use hdf5_pure::{AttrValue, File};
+
+use super::folder::is_bse_name;
+use super::raster::Limits;
+use super::{field_name, parse_map_name, BseSource, LoadedField, Skipped};
+use crate::error::{Error, Result};
+use crate::stack::{ElementMap, FieldMetadata, MapStack};
+
+/// True if the file starts with the HDF5 signature (or has an HDF5 extension).
+pub(super) fn looks_like_hdf5(path: &Path) -> bool {
+    let ext = path
+        .extension()
+        .and_then(|e| e.to_str())
+        .map(|e| e.to_ascii_lowercase());
+    if matches!(ext.as_deref(), Some("h5" | "hdf5" | "hdf" | "he5")) {
+        return true;
+    }
+    let mut head = [0u8; 8];
+    use std::io::Read;
+    std::fs::File::open(path)
+        .and_then(|mut f| f.read_exact(&mut head))
+        .is_ok()
+        && head == *b"\x89HDF\r\n\x1a\n"
+}
+
+const LAYOUT_FIX: &str = "write the maps as one 2-D dataset per element under /maps, or one \
+     3-D dataset /maps with an `elements` attribute (see notebooks-free-docs/input-formats.md)";
+
+fn bad(path: &Path, problem: String) -> Error {
+    Error::input(path, problem, LAYOUT_FIX)
+}
+
+pub(super) fn load(path: &Path, limits: &Limits) -> Result<LoadedField> {
+    // The decoder is defensive, but a damaged file must never take the process down: a
+    // panic inside it becomes an input error naming the file.
+    match catch_unwind(AssertUnwindSafe(|| load_inner(path, limits))) {
+        Ok(r) => r,
+        Err(_) => Err(Error::input(
+            path,
+            "is a damaged HDF5 file (the decoder could not make sense of its structure)",
+            "export the file again; check that the copy is complete",
+        )),
+    }
+}
+
+fn attr_f64(v: &AttrValue) -> Option<f64> {
+    v.as_f64().or_else(|| v.as_i64().map(|x| x as f64))
+}
+
+fn metadata_from(attrs: &HashMap<String, AttrValue>, into: &mut FieldMetadata) {
+    if let Some(v) = attrs.get("pixel_size_um").and_then(attr_f64) {
+        into.pixel_size_um = Some(v);
+    }
+    if let Some(v) = attrs.get("beam_kv").and_then(attr_f64) {
+        into.beam_kv = Some(v);
+    }
+    if let Some(v) = attrs.get("live_time_s").and_then(attr_f64) {
+        into.live_time_s = Some(v);
+    }
+}
+
+fn check_metadata(path: &Path, m: &FieldMetadata) -> Result<()> {
+    for (key, v) in [
+        ("pixel_size_um", m.pixel_size_um),
+        ("beam_kv", m.beam_kv),
+        ("live_time_s", m.live_time_s),
+    ] {
+        if let Some(v) = v {
+            if !(v.is_finite() && v > 0.0) {
+                return Err(Error::input(
+                    path,
+                    format!("attribute {key} = {v} is not a positive number"),
+                    format!("write the real {key}, or leave the attribute out"),
+                ));
+            }
+        }
+    }
+    Ok(())
+}
+
+fn check_pixels(path: &Path, name: &str, shape: &[u64], limits: &Limits) -> Result<()> {
+    let pixels = shape.iter().fold(1u64, |a, &b| a.saturating_mul(b));
+    if shape.contains(&0) {
+        return Err(bad(
+            path,
+            format!("dataset {name} is empty (shape {shape:?})"),
+        ));
+    }
+    if pixels
+        > limits
+            .max_pixels
+            .saturating_mul(if shape.len() == 3 { 128 } else { 1 })
+    {
+        return Err(Error::input(
+            path,
+            format!(
+                "dataset {name} declares shape {shape:?}, above the limit of {} pixels per map",
+                limits.max_pixels
+            ),
+            "if the field really is that large, raise the limit with --max-pixels",
+        ));
+    }
+    Ok(())
+}
+
+fn short(path: &Path) -> Error {
+    Error::input(
+        path,
+        "holds a dataset with fewer values than its shape declares",
+        "the file is damaged or truncated; export it again",
+    )
+}
+
+fn load_inner(path: &Path, limits: &Limits) -> Result<LoadedField> {
+    let h5err = |e: hdf5_pure::Error| {
+        Error::input(
+            path,
+            format!("is not a readable HDF5 file ({e})"),
+            "the file is damaged, truncated or not HDF5; export it again",
+        )
+    };
+    let file = File::open(path).map_err(h5err)?;
+    let root = file.root();
+    let mut metadata = FieldMetadata::default();
+    metadata_from(&root.attrs().map_err(h5err)?, &mut metadata);
+    let root_datasets = root.datasets().map_err(h5err)?;
+    let root_groups = root.groups().map_err(h5err)?;
+    let mut skipped = Vec::new();
+    let mut maps = Vec::new();
+    let mut bse = None;
+    let mut dims: Option<(usize, usize, String)> = None;
+    let source = |name: &str| format!("{}:/{}", path.display(), name.trim_start_matches('/'));
+
+    let push_map = |maps: &mut Vec<ElementMap>,
+                    dims: &mut Option<(usize, usize, String)>,
+                    name: &str,
+                    h: usize,
+                    w: usize,
+                    counts: Vec<f32>,
+                    element,
+                    line|
+     -> Result<()> {
+        if let Some((w0, h0, first)) = dims {
+            if (*w0, *h0) != (w, h) {
+                return Err(Error::input(
+                    path,
+                    format!("dataset {name} is {w}×{h} but {first} is {w0}×{h0}"),
+                    "all maps of a field must share one size; re-export them together",
+                ));
+            }
+        } else {
+            *dims = Some((w, h, name.to_string()));
+        }
+        maps.push(ElementMap {
+            element,
+            line,
+            counts,
+            source: source(name),
+        });
+        Ok(())
+    };
+
+    if root_datasets.iter().any(|d| d == "maps") {
+        // Layout 2: one 3-D dataset with an `elements` attribute.
+        let ds = file.dataset("maps").map_err(h5err)?;
+        let shape = ds.shape().map_err(h5err)?;
+        if shape.len() != 3 {
+            return Err(bad(
+                path,
+                format!("dataset /maps has {} dimensions; a 3-D stack (element × height × width) was expected", shape.len()),
+            ));
+        }
+        check_pixels(path, "/maps", &shape, limits)?;
+        let attrs = ds.attrs().map_err(h5err)?;
+        metadata_from(&attrs, &mut metadata);
+        let names: Vec<String> = attrs
+            .get("elements")
+            .and_then(|a| a.as_strings())
+            .map(<[String]>::to_vec)
+            .ok_or_else(|| {
+                bad(
+                    path,
+                    "dataset /maps has no string-array attribute `elements` naming its planes"
+                        .into(),
+                )
+            })?;
+        let lines: Vec<String> = attrs
+            .get("lines")
+            .and_then(|a| a.as_strings())
+            .map(<[String]>::to_vec)
+            .unwrap_or_default();
+        let (n, h, w) = (shape[0] as usize, shape[1] as usize, shape[2] as usize);
+        if names.len() != n {
+            return Err(bad(
+                path,
+                format!(
+                    "attribute `elements` names {} planes but /maps has {n}",
+                    names.len()
+                ),
+            ));
+        }
+        let data = ds.read_f32().map_err(h5err)?;
+        if data.len() != n * h * w {
+            return Err(short(path));
+        }
+        for (i, name) in names.iter().enumerate() {
+            let plane = data[i * h * w..(i + 1) * h * w].to_vec();
+            match parse_map_name(name) {
+                Some((e, line)) => {
+                    let line = lines.get(i).filter(|l| !l.is_empty()).cloned().or(line);
+                    push_map(&mut maps, &mut dims, &format!("maps[{i}] ({name})"), h, w, plane, e, line)?
+                }
+                None => {
+                    return Err(bad(
+                        path,
+                        format!("attribute `elements` entry {i} is `{name}`, not an element symbol (symbols are case-sensitive)"),
+                    ))
+                }
+            }
+        }
+    } else {
+        // Layout 1: a group of 2-D datasets.
+        let (group, prefix) = if root_groups.iter().any(|g| g == "maps") {
+            let g = file.group("maps").map_err(h5err)?;
+            metadata_from(&g.attrs().map_err(h5err)?, &mut metadata);
+            (g, "maps/")
+        } else {
+            (root, "")
+        };
+        let mut names = group.datasets().map_err(h5err)?;
+        names.sort();
+        for name in names {
+            let full = format!("{prefix}{name}");
+            if is_bse_name(&name) {
+                bse = Some(full.clone());
+                skipped.push(Skipped {
+                    name: full,
+                    reason: "backscattered-electron image, not an element map".into(),
+                });
+                continue;
+            }
+            let Some((element, line)) = parse_map_name(&name) else {
+                skipped.push(Skipped {
+                    name: full,
+                    reason: "name is not an element symbol (symbols are case-sensitive)".into(),
+                });
+                continue;
+            };
+            let ds = group.dataset(&name).map_err(h5err)?;
+            let shape = ds.shape().map_err(h5err)?;
+            if shape.len() != 2 {
+                return Err(bad(
+                    path,
+                    format!("dataset /{full} has shape {shape:?}; an element map must be 2-D (height × width)"),
+                ));
+            }
+            check_pixels(path, &full, &shape, limits)?;
+            let line = ds
+                .attrs()
+                .map_err(h5err)?
+                .get("line")
+                .and_then(|a| a.as_str().map(str::to_string))
+                .or(line);
+            let data = ds.read_f32().map_err(h5err)?;
+            let (h, w) = (shape[0] as usize, shape[1] as usize);
+            if data.len() != h * w {
+                return Err(short(path));
+            }
+            push_map(
+                &mut maps,
+                &mut dims,
+                &format!("/{full}"),
+                h,
+                w,
+                data,
+                element,
+                line,
+            )?;
+        }
+    }
+    if bse.is_none() && root_datasets.iter().any(|d| d == "bse") {
+        bse = Some("bse".to_string());
+    }
+    for d in &root_datasets {
+        let used = d == "maps" || d == "bse" || maps.iter().any(|m| m.source == source(d));
+        if !used && skipped.iter().all(|s| s.name != *d) {
+            skipped.push(Skipped {
+                name: d.clone(),
+                reason: "dataset outside the maps layout".into(),
+            });
+        }
+    }
+    check_metadata(path, &metadata)?;
+    let Some((w, h, _)) = dims else {
+        return Err(bad(path, "contains no element maps".into()));
+    };
+    let stack = MapStack::new(path, w, h, maps, metadata)?;
+    Ok(LoadedField {
+        name: field_name(path),
+        input: path.to_path_buf(),
+        stack,
+        skipped,
+        bse: bse.map(|dataset| BseSource::Hdf5 {
+            file: path.to_path_buf(),
+            dataset,
+        }),
+        files: vec![path.to_path_buf()],
+        warnings: Vec::new(),
+    })
+}

@@ -1,0 +1,475 @@
+//! Single-channel raster images: PNG (8/16-bit) and TIFF (8/16/32-bit integer, 32/64-bit
+//! float) decoded to `f32` counts under size limits, and the few encoders modalmap needs.
+//!
+//! Decoding checks the declared size against [`Limits`] *before* allocating, so a hostile
+//! header that claims 60 000 × 60 000 pixels fails at once with the option that raises the
+//! limit, instead of asking for gigabytes.
+
+use std::io::{BufWriter, Cursor, Write};
+use std::path::Path;
+
+use crate::error::{Error, Result};
+
+/// Decoding limits (style of image-rs `Limits`): checked before any large allocation.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Limits {
+    /// Largest number of pixels accepted in one map or image.
+    pub max_pixels: u64,
+}
+
+impl Limits {
+    /// The default: 300 million pixels per map (a 17 000 × 17 000 montage), which at 4 bytes
+    /// per value keeps one decoded map near 1.2 GB.
+    pub const DEFAULT_MAX_PIXELS: u64 = 300_000_000;
+}
+
+impl Default for Limits {
+    fn default() -> Self {
+        Limits {
+            max_pixels: Self::DEFAULT_MAX_PIXELS,
+        }
+    }
+}
+
+/// A decoded single-channel image.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Raster {
+    /// Width in pixels.
+    pub width: usize,
+    /// Height in pixels.
+    pub height: usize,
+    /// Values, row-major.
+    pub data: Vec<f32>,
+    /// What was decoded, for messages: e.g. `16-bit PNG`.
+    pub format: String,
+}
+
+/// Image file formats modalmap reads.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum RasterFormat {
+    /// Portable Network Graphics.
+    Png,
+    /// Tagged Image File Format.
+    Tiff,
+}
+
+impl RasterFormat {
+    /// The format implied by a file name's extension (case-insensitive).
+    pub fn from_path(path: &Path) -> Option<RasterFormat> {
+        let ext = path.extension()?.to_str()?.to_ascii_lowercase();
+        match ext.as_str() {
+            "png" => Some(RasterFormat::Png),
+            "tif" | "tiff" => Some(RasterFormat::Tiff),
+            _ => None,
+        }
+    }
+}
+
+const GRAY_FIX: &str = "element maps must be single-channel grayscale counts: re-export the \
+     raw counts map (16-bit PNG or TIFF) rather than a coloured picture; converting a colour \
+     picture to gray does not give back the counts";
+
+fn check_size(path: &Path, width: u64, height: u64, limits: &Limits) -> Result<()> {
+    if width == 0 || height == 0 {
+        return Err(Error::input(
+            path,
+            format!("declares {width}×{height} pixels; an image needs at least one pixel"),
+            "re-export the image",
+        ));
+    }
+    let pixels = width.saturating_mul(height);
+    if pixels > limits.max_pixels {
+        return Err(Error::input(
+            path,
+            format!(
+                "declares {width}×{height} = {pixels} pixels, above the limit of {} pixels",
+                limits.max_pixels
+            ),
+            "if the image really is that large, raise the limit with --max-pixels \
+             (memory needed: about 4 bytes per pixel per element)",
+        ));
+    }
+    Ok(())
+}
+
+/// Reads a whole file, refusing files far larger than any image within the limits.
+fn read_bytes(path: &Path, limits: &Limits) -> Result<Vec<u8>> {
+    let meta = std::fs::metadata(path)
+        .map_err(|e| Error::input(path, format!("cannot be read: {e}"), "check the path"))?;
+    // Uncompressed 64-bit samples plus generous room for headers.
+    let max_bytes = limits.max_pixels.saturating_mul(8).saturating_add(1 << 20);
+    if meta.len() > max_bytes {
+        return Err(Error::input(
+            path,
+            format!(
+                "is {} bytes, more than any image within the limits",
+                meta.len()
+            ),
+            "raise the limit with --max-pixels if the image really is that large",
+        ));
+    }
+    std::fs::read(path).map_err(|e| {
+        Error::input(
+            path,
+            format!("cannot be read: {e}"),
+            "check the file's permissions",
+        )
+    })
+}
+
+/// Decodes a PNG or TIFF file to one channel of `f32`.
+pub fn read_raster(path: &Path, limits: &Limits) -> Result<Raster> {
+    let format = RasterFormat::from_path(path).ok_or_else(|| {
+        Error::input(
+            path,
+            "is not a PNG or TIFF file (by its extension)",
+            "give maps as .png, .tif or .tiff",
+        )
+    })?;
+    let bytes = read_bytes(path, limits)?;
+    match format {
+        RasterFormat::Png => decode_png(path, &bytes, limits),
+        RasterFormat::Tiff => decode_tiff(path, &bytes, limits),
+    }
+}
+
+fn corrupt(path: &Path, what: &str, err: impl std::fmt::Display) -> Error {
+    Error::input(
+        path,
+        format!("is not a readable {what} ({err})"),
+        "the file is damaged, truncated or not really this format; export it again",
+    )
+}
+
+fn decode_png(path: &Path, bytes: &[u8], limits: &Limits) -> Result<Raster> {
+    let png_limits = png::Limits {
+        bytes: usize::try_from(limits.max_pixels.saturating_mul(8)).unwrap_or(usize::MAX),
+    };
+    let decoder = png::Decoder::new_with_limits(Cursor::new(bytes), png_limits);
+    let mut reader = decoder.read_info().map_err(|e| corrupt(path, "PNG", e))?;
+    let (w, h, color, depth) = {
+        let info = reader.info();
+        (info.width, info.height, info.color_type, info.bit_depth)
+    };
+    check_size(path, u64::from(w), u64::from(h), limits)?;
+    match color {
+        png::ColorType::Grayscale => {}
+        png::ColorType::GrayscaleAlpha => {
+            return Err(Error::input(
+                path,
+                "is a grayscale PNG with an alpha channel",
+                GRAY_FIX,
+            ))
+        }
+        png::ColorType::Rgb | png::ColorType::Rgba => {
+            return Err(Error::input(path, "is an RGB colour PNG", GRAY_FIX))
+        }
+        png::ColorType::Indexed => {
+            return Err(Error::input(
+                path,
+                "is a palette (indexed-colour) PNG",
+                GRAY_FIX,
+            ))
+        }
+    }
+    let bits = match depth {
+        png::BitDepth::Eight => 8,
+        png::BitDepth::Sixteen => 16,
+        other => {
+            return Err(Error::input(
+                path,
+                format!("is a {}-bit grayscale PNG", other as u8),
+                "export maps as 8- or 16-bit grayscale",
+            ))
+        }
+    };
+    let size = reader
+        .output_buffer_size()
+        .ok_or_else(|| corrupt(path, "PNG", "image too large for this platform"))?;
+    let mut buf = vec![0u8; size];
+    let out = reader
+        .next_frame(&mut buf)
+        .map_err(|e| corrupt(path, "PNG", e))?;
+    let (w, h) = (out.width as usize, out.height as usize);
+    let mut data = Vec::with_capacity(w * h);
+    for row in buf.chunks_exact(out.line_size).take(h) {
+        if bits == 8 {
+            data.extend(row[..w].iter().map(|&v| f32::from(v)));
+        } else {
+            data.extend(
+                row[..2 * w]
+                    .chunks_exact(2)
+                    .map(|b| f32::from(u16::from_be_bytes([b[0], b[1]]))),
+            );
+        }
+    }
+    Ok(Raster {
+        width: w,
+        height: h,
+        data,
+        format: format!("{bits}-bit PNG"),
+    })
+}
+
+fn decode_tiff(path: &Path, bytes: &[u8], limits: &Limits) -> Result<Raster> {
+    use tiff::decoder::{Decoder, DecodingResult};
+    use tiff::ColorType;
+    let mut tl = tiff::decoder::Limits::default();
+    tl.decoding_buffer_size =
+        usize::try_from(limits.max_pixels.saturating_mul(8)).unwrap_or(usize::MAX);
+    tl.intermediate_buffer_size = tl.decoding_buffer_size;
+    let mut dec = Decoder::new(Cursor::new(bytes))
+        .map_err(|e| corrupt(path, "TIFF", e))?
+        .with_limits(tl);
+    let (w, h) = dec.dimensions().map_err(|e| corrupt(path, "TIFF", e))?;
+    check_size(path, u64::from(w), u64::from(h), limits)?;
+    let color = dec.colortype().map_err(|e| corrupt(path, "TIFF", e))?;
+    let bits = match color {
+        ColorType::Gray(b) => b,
+        ColorType::RGB(_) | ColorType::RGBA(_) => {
+            return Err(Error::input(path, "is an RGB colour TIFF", GRAY_FIX))
+        }
+        ColorType::Palette(_) => {
+            return Err(Error::input(
+                path,
+                "is a palette (indexed-colour) TIFF",
+                GRAY_FIX,
+            ))
+        }
+        ColorType::GrayA(_) => {
+            return Err(Error::input(
+                path,
+                "is a grayscale TIFF with an alpha channel",
+                GRAY_FIX,
+            ))
+        }
+        other => {
+            return Err(Error::input(
+                path,
+                format!("has a colour layout modalmap cannot use ({other:?})"),
+                GRAY_FIX,
+            ))
+        }
+    };
+    let result = dec.read_image().map_err(|e| corrupt(path, "TIFF", e))?;
+    let (data, kind): (Vec<f32>, &str) = match result {
+        DecodingResult::U8(v) => (v.into_iter().map(f32::from).collect(), "integer"),
+        DecodingResult::U16(v) => (v.into_iter().map(f32::from).collect(), "integer"),
+        DecodingResult::U32(v) => (v.into_iter().map(|x| x as f32).collect(), "integer"),
+        DecodingResult::U64(v) => (v.into_iter().map(|x| x as f32).collect(), "integer"),
+        DecodingResult::I8(v) => (v.into_iter().map(f32::from).collect(), "signed integer"),
+        DecodingResult::I16(v) => (v.into_iter().map(f32::from).collect(), "signed integer"),
+        DecodingResult::I32(v) => (v.into_iter().map(|x| x as f32).collect(), "signed integer"),
+        DecodingResult::I64(v) => (v.into_iter().map(|x| x as f32).collect(), "signed integer"),
+        DecodingResult::F32(v) => (v, "float"),
+        DecodingResult::F64(v) => (v.into_iter().map(|x| x as f32).collect(), "float"),
+        DecodingResult::F16(v) => (v.into_iter().map(f32::from).collect(), "float"),
+    };
+    let (w, h) = (w as usize, h as usize);
+    if data.len() < w * h {
+        return Err(corrupt(path, "TIFF", "fewer samples than pixels"));
+    }
+    let mut data = data;
+    data.truncate(w * h);
+    Ok(Raster {
+        width: w,
+        height: h,
+        data,
+        format: format!("{bits}-bit {kind} TIFF"),
+    })
+}
+
+fn create(path: &Path) -> Result<BufWriter<std::fs::File>> {
+    let f = std::fs::File::create(path).map_err(|e| {
+        Error::output(
+            path,
+            format!("cannot be created: {e}"),
+            "check that the folder exists and is writable",
+        )
+    })?;
+    Ok(BufWriter::new(f))
+}
+
+fn write_err(path: &Path, e: impl std::fmt::Display) -> Error {
+    Error::output(
+        path,
+        format!("could not be written: {e}"),
+        "check free disk space and permissions",
+    )
+}
+
+/// Writes a 16-bit grayscale PNG.
+pub fn write_png_u16(path: &Path, width: usize, height: usize, data: &[u16]) -> Result<()> {
+    let bytes: Vec<u8> = data.iter().flat_map(|v| v.to_be_bytes()).collect();
+    write_png(
+        path,
+        width,
+        height,
+        png::BitDepth::Sixteen,
+        png::ColorType::Grayscale,
+        &bytes,
+    )
+}
+
+/// Writes an 8-bit grayscale PNG.
+pub fn write_png_u8(path: &Path, width: usize, height: usize, data: &[u8]) -> Result<()> {
+    write_png(
+        path,
+        width,
+        height,
+        png::BitDepth::Eight,
+        png::ColorType::Grayscale,
+        data,
+    )
+}
+
+/// Writes an 8-bit RGB PNG (interleaved RGB bytes).
+pub fn write_png_rgb(path: &Path, width: usize, height: usize, rgb: &[u8]) -> Result<()> {
+    write_png(
+        path,
+        width,
+        height,
+        png::BitDepth::Eight,
+        png::ColorType::Rgb,
+        rgb,
+    )
+}
+
+fn write_png(
+    path: &Path,
+    width: usize,
+    height: usize,
+    depth: png::BitDepth,
+    color: png::ColorType,
+    bytes: &[u8],
+) -> Result<()> {
+    let mut w = create(path)?;
+    {
+        let mut enc = png::Encoder::new(&mut w, width as u32, height as u32);
+        enc.set_color(color);
+        enc.set_depth(depth);
+        enc.set_compression(png::Compression::High);
+        let mut writer = enc.write_header().map_err(|e| write_err(path, e))?;
+        writer
+            .write_image_data(bytes)
+            .map_err(|e| write_err(path, e))?;
+        writer.finish().map_err(|e| write_err(path, e))?;
+    }
+    w.flush().map_err(|e| write_err(path, e))
+}
+
+/// Sample types the TIFF writer accepts.
+pub enum TiffData<'a> {
+    /// 8-bit unsigned.
+    U8(&'a [u8]),
+    /// 16-bit unsigned.
+    U16(&'a [u16]),
+    /// 32-bit unsigned.
+    U32(&'a [u32]),
+    /// 32-bit float.
+    F32(&'a [f32]),
+}
+
+/// Writes a single-channel TIFF.
+pub fn write_tiff(path: &Path, width: usize, height: usize, data: TiffData<'_>) -> Result<()> {
+    use tiff::encoder::{colortype, TiffEncoder};
+    let mut w = create(path)?;
+    {
+        let mut enc = TiffEncoder::new(&mut w).map_err(|e| write_err(path, e))?;
+        let (w32, h32) = (width as u32, height as u32);
+        match data {
+            TiffData::U8(d) => enc.write_image::<colortype::Gray8>(w32, h32, d),
+            TiffData::U16(d) => enc.write_image::<colortype::Gray16>(w32, h32, d),
+            TiffData::U32(d) => enc.write_image::<colortype::Gray32>(w32, h32, d),
+            TiffData::F32(d) => enc.write_image::<colortype::Gray32Float>(w32, h32, d),
+        }
+        .map_err(|e| write_err(path, e))?;
+    }
+    w.flush().map_err(|e| write_err(path, e))
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn png_and_tiff_round_trip_every_depth() {
+        let dir = tempfile::tempdir().unwrap();
+        let (w, h) = (5, 3);
+        let v16: Vec<u16> = (0..15).map(|i| i * 4000 + 7).collect();
+        let v8: Vec<u8> = (0..15).map(|i| (i * 17) as u8).collect();
+        let v32: Vec<u32> = (0..15).map(|i| i * 100_000 + 3).collect();
+        let vf: Vec<f32> = (0..15).map(|i| i as f32 * 0.25).collect();
+        let want16: Vec<f32> = v16.iter().map(|&v| f32::from(v)).collect();
+        let want8: Vec<f32> = v8.iter().map(|&v| f32::from(v)).collect();
+        let want32: Vec<f32> = v32.iter().map(|&v| v as f32).collect();
+
+        type Writer<'a> = Box<dyn Fn(&Path) + 'a>;
+        let cases: Vec<(&str, Writer, &Vec<f32>, &str)> = vec![
+            (
+                "a.png",
+                Box::new(|p: &Path| write_png_u16(p, w, h, &v16).unwrap()),
+                &want16,
+                "16-bit PNG",
+            ),
+            (
+                "b.png",
+                Box::new(|p: &Path| write_png_u8(p, w, h, &v8).unwrap()),
+                &want8,
+                "8-bit PNG",
+            ),
+            (
+                "c.tif",
+                Box::new(|p: &Path| write_tiff(p, w, h, TiffData::U8(&v8)).unwrap()),
+                &want8,
+                "8-bit integer TIFF",
+            ),
+            (
+                "d.tiff",
+                Box::new(|p: &Path| write_tiff(p, w, h, TiffData::U16(&v16)).unwrap()),
+                &want16,
+                "16-bit integer TIFF",
+            ),
+            (
+                "e.tif",
+                Box::new(|p: &Path| write_tiff(p, w, h, TiffData::U32(&v32)).unwrap()),
+                &want32,
+                "32-bit integer TIFF",
+            ),
+            (
+                "f.TIF",
+                Box::new(|p: &Path| write_tiff(p, w, h, TiffData::F32(&vf)).unwrap()),
+                &vf,
+                "32-bit float TIFF",
+            ),
+        ];
+        for (name, write, want, format) in cases {
+            let p = dir.path().join(name);
+            write(&p);
+            let r = read_raster(&p, &Limits::default()).unwrap();
+            assert_eq!((r.width, r.height), (w, h), "{name}");
+            assert_eq!(&r.data, want, "{name}");
+            assert_eq!(r.format, format, "{name}");
+        }
+    }
+
+    #[test]
+    fn limits_are_checked_before_decoding() {
+        let dir = tempfile::tempdir().unwrap();
+        let p = dir.path().join("big.png");
+        write_png_u8(&p, 100, 100, &vec![1; 10_000]).unwrap();
+        let e = read_raster(&p, &Limits { max_pixels: 9_999 }).unwrap_err();
+        assert!(e.problem.contains("above the limit"), "{e}");
+        assert!(e.fix.contains("--max-pixels"), "{e}");
+    }
+
+    #[test]
+    fn colour_images_are_refused_with_advice() {
+        let dir = tempfile::tempdir().unwrap();
+        let p = dir.path().join("rgb.png");
+        write_png_rgb(&p, 2, 2, &[0; 12]).unwrap();
+        let e = read_raster(&p, &Limits::default()).unwrap_err();
+        assert!(e.problem.contains("RGB colour PNG"), "{e}");
+        assert!(e.fix.contains("grayscale"), "{e}");
+    }
+}

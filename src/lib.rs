@@ -1,0 +1,18 @@
+//! modalmap: phase maps from SEM-EDS element maps.
+//!
+//! The pipeline for one field, each stage a module with a typed hand-off:
+//! [`io`] loads a [`stack::MapStack`]; later stages prepare features, cluster pixels into
+//! phases, refine the labels, compute per-phase statistics and write the report.
+//! [`synth`] makes synthetic fields with ground truth for the demo and the accuracy tests.
+//! The command line ([`cli`]) is a thin layer over this library.
+
+pub mod chem;
+pub mod cli;
+pub mod error;
+pub mod inspect;
+pub mod io;
+pub mod physics;
+pub mod stack;
+pub mod synth;
+
+pub use error::{Error, ErrorKind, Result};

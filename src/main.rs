@@ -1,0 +1,22 @@
+//! The `modalmap` binary: parse, run, map errors to exit codes. All work is in the library.
+
+use std::process::ExitCode;
+
+use clap::Parser;
+
+fn main() -> ExitCode {
+    let cli = modalmap::cli::Cli::parse();
+    // A panic is a bug; it must still end with a clear message and the documented code.
+    std::panic::set_hook(Box::new(|info| {
+        eprintln!("error: internal error ({info})");
+        eprintln!("  fix: this is a bug in modalmap; please report it with the command you ran");
+    }));
+    match std::panic::catch_unwind(|| modalmap::cli::run(cli)) {
+        Ok(Ok(code)) => ExitCode::from(code),
+        Ok(Err(e)) => {
+            eprintln!("error: {e}");
+            ExitCode::from(e.kind.exit_code())
+        }
+        Err(_) => ExitCode::from(modalmap::ErrorKind::Internal.exit_code()),
+    }
+}

@@ -1,0 +1,216 @@
+//! `MapStack`: one field's element maps, checked once at construction.
+//!
+//! Every later stage trusts what this type promises: at least one map, all maps the same
+//! non-zero size, each element once, every count finite and non-negative, planes ordered by
+//! atomic number. Loaders build it; nothing downstream re-checks.
+
+use std::path::Path;
+
+use crate::chem::ElementInfo;
+use crate::error::{Error, Result};
+
+/// Acquisition metadata of a field; any of it may be unknown.
+#[derive(Debug, Clone, Default, PartialEq, serde::Serialize, serde::Deserialize)]
+pub struct FieldMetadata {
+    /// Pixel size in micrometres (square pixels).
+    pub pixel_size_um: Option<f64>,
+    /// Beam energy in kV.
+    pub beam_kv: Option<f64>,
+    /// Live time of the acquisition in seconds.
+    pub live_time_s: Option<f64>,
+}
+
+/// One element's intensity map.
+#[derive(Debug, Clone, PartialEq)]
+pub struct ElementMap {
+    /// The element.
+    pub element: ElementInfo,
+    /// The X-ray line the map was built from (e.g. `K`, `L`, `Ka`), if known.
+    pub line: Option<String>,
+    /// Counts per pixel, row-major, `width × height` values.
+    pub counts: Vec<f32>,
+    /// Where the map came from: a file path, or `file.h5:/dataset`.
+    pub source: String,
+}
+
+/// A field: element maps of one size plus metadata.
+#[derive(Debug, Clone, PartialEq)]
+pub struct MapStack {
+    width: usize,
+    height: usize,
+    maps: Vec<ElementMap>,
+    metadata: FieldMetadata,
+}
+
+impl MapStack {
+    /// Checks the invariants and orders the maps by atomic number.
+    ///
+    /// `origin` is the input path used in error messages.
+    pub fn new(
+        origin: &Path,
+        width: usize,
+        height: usize,
+        mut maps: Vec<ElementMap>,
+        metadata: FieldMetadata,
+    ) -> Result<MapStack> {
+        if maps.is_empty() {
+            return Err(Error::input(
+                origin,
+                "contains no element maps",
+                "name each map after its element (e.g. Fe.png, Fe_Ka.tif, Si-K.png); \
+                 see `modalmap inspect --help` for the naming rule",
+            ));
+        }
+        if width == 0 || height == 0 {
+            return Err(Error::input(
+                origin,
+                format!("the maps are {width}×{height} pixels; a map needs at least one pixel"),
+                "re-export the maps",
+            ));
+        }
+        maps.sort_by_key(|m| m.element.z);
+        for pair in maps.windows(2) {
+            if pair[0].element.z == pair[1].element.z {
+                return Err(Error::input(
+                    origin,
+                    format!(
+                        "element {} appears twice: {} and {}",
+                        pair[0].element.symbol, pair[0].source, pair[1].source
+                    ),
+                    "keep one map per element and move or rename the other",
+                ));
+            }
+        }
+        for m in &maps {
+            if m.counts.len() != width * height {
+                return Err(Error::input(
+                    Path::new(&m.source),
+                    format!(
+                        "holds {} values but the field is {width}×{height} = {} pixels",
+                        m.counts.len(),
+                        width * height
+                    ),
+                    "all maps of a field must share one size; re-export them together",
+                ));
+            }
+            if let Some(i) = m.counts.iter().position(|v| !v.is_finite() || *v < 0.0) {
+                let v = m.counts[i];
+                let what = if v.is_nan() {
+                    "NaN".to_string()
+                } else if v.is_infinite() {
+                    "an infinite value".to_string()
+                } else {
+                    format!("a negative value ({v})")
+                };
+                return Err(Error::input(
+                    Path::new(&m.source),
+                    format!(
+                        "has {what} at pixel (x={}, y={}); counts must be finite and ≥ 0",
+                        i % width,
+                        i / width
+                    ),
+                    "export raw counts, not background-subtracted or processed intensities \
+                     (replace NaN/negative pixels with 0 if they mark missing data)",
+                ));
+            }
+        }
+        Ok(MapStack {
+            width,
+            height,
+            maps,
+            metadata,
+        })
+    }
+
+    /// Width in pixels.
+    pub fn width(&self) -> usize {
+        self.width
+    }
+
+    /// Height in pixels.
+    pub fn height(&self) -> usize {
+        self.height
+    }
+
+    /// Number of pixels.
+    pub fn pixels(&self) -> usize {
+        self.width * self.height
+    }
+
+    /// The element maps, ordered by atomic number.
+    pub fn maps(&self) -> &[ElementMap] {
+        &self.maps
+    }
+
+    /// The element symbols, ordered by atomic number.
+    pub fn symbols(&self) -> Vec<&'static str> {
+        self.maps.iter().map(|m| m.element.symbol).collect()
+    }
+
+    /// The map of one element.
+    pub fn map(&self, symbol: &str) -> Option<&ElementMap> {
+        self.maps.iter().find(|m| m.element.symbol == symbol)
+    }
+
+    /// Acquisition metadata.
+    pub fn metadata(&self) -> &FieldMetadata {
+        &self.metadata
+    }
+
+    /// Replaces metadata values with those given (command-line overrides).
+    pub fn override_metadata(&mut self, m: &FieldMetadata) {
+        if m.pixel_size_um.is_some() {
+            self.metadata.pixel_size_um = m.pixel_size_um;
+        }
+        if m.beam_kv.is_some() {
+            self.metadata.beam_kv = m.beam_kv;
+        }
+        if m.live_time_s.is_some() {
+            self.metadata.live_time_s = m.live_time_s;
+        }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::chem::element;
+
+    fn map(sym: &str, counts: Vec<f32>) -> ElementMap {
+        ElementMap {
+            element: element(sym).unwrap(),
+            line: None,
+            counts,
+            source: format!("{sym}.png"),
+        }
+    }
+
+    fn stack(maps: Vec<ElementMap>, w: usize, h: usize) -> Result<MapStack> {
+        MapStack::new(Path::new("field"), w, h, maps, FieldMetadata::default())
+    }
+
+    #[test]
+    fn orders_by_atomic_number() {
+        let s = stack(vec![map("Sn", vec![1.0; 4]), map("Cu", vec![2.0; 4])], 2, 2).unwrap();
+        assert_eq!(s.symbols(), vec!["Cu", "Sn"]);
+        assert_eq!(s.pixels(), 4);
+    }
+
+    #[test]
+    fn rejects_broken_stacks() {
+        let e = stack(vec![], 2, 2).unwrap_err();
+        assert!(e.problem.contains("no element maps"));
+        let e = stack(vec![map("Fe", vec![1.0; 4]), map("Fe", vec![1.0; 4])], 2, 2).unwrap_err();
+        assert!(e.problem.contains("appears twice"), "{e}");
+        let e = stack(vec![map("Fe", vec![1.0; 3])], 2, 2).unwrap_err();
+        assert!(e.problem.contains("share one size") || e.fix.contains("share one size"));
+        let e = stack(vec![map("Fe", vec![1.0, f32::NAN, 1.0, 1.0])], 2, 2).unwrap_err();
+        assert!(e.problem.contains("NaN at pixel (x=1, y=0)"), "{e}");
+        let e = stack(vec![map("Fe", vec![1.0, 1.0, 1.0, -2.0])], 2, 2).unwrap_err();
+        assert!(e.problem.contains("negative value (-2)"), "{e}");
+        let e = stack(vec![map("Fe", vec![f32::INFINITY; 4])], 2, 2).unwrap_err();
+        assert!(e.problem.contains("infinite"), "{e}");
+        let e = stack(vec![map("Fe", vec![])], 0, 2).unwrap_err();
+        assert!(e.problem.contains("0×2"), "{e}");
+    }
+}

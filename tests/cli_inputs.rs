@@ -1,0 +1,303 @@
+//! The binary on good and bad inputs: exit codes and messages that name the file, the
+//! problem and the fix. Never a panic (exit 101), never a silent success on bad data.
+
+use std::path::Path;
+use std::process::Command;
+
+use modalmap::io::raster::{write_png_rgb, write_png_u16, write_png_u8, write_tiff, TiffData};
+
+struct Run {
+    code: i32,
+    stdout: String,
+    stderr: String,
+}
+
+fn modalmap(args: &[&str]) -> Run {
+    let out = Command::new(env!("CARGO_BIN_EXE_modalmap"))
+        .args(args)
+        .output()
+        .expect("binary runs");
+    Run {
+        code: out.status.code().unwrap_or(-1),
+        stdout: String::from_utf8_lossy(&out.stdout).into_owned(),
+        stderr: String::from_utf8_lossy(&out.stderr).into_owned(),
+    }
+}
+
+/// Asserts a clean failure: the exit code, and every key phrase in the message.
+fn assert_refused(r: &Run, code: i32, keys: &[&str]) {
+    assert_eq!(r.code, code, "exit code; stderr:\n{}", r.stderr);
+    assert!(!r.stderr.contains("panicked"), "panic:\n{}", r.stderr);
+    assert!(r.stderr.starts_with("error: "), "{}", r.stderr);
+    assert!(r.stderr.contains("fix: "), "no fix offered:\n{}", r.stderr);
+    for k in keys {
+        assert!(r.stderr.contains(k), "missing `{k}` in:\n{}", r.stderr);
+    }
+}
+
+fn inspect(dir: &Path) -> Run {
+    modalmap(&["inspect", dir.to_str().unwrap()])
+}
+
+fn good_map(dir: &Path, name: &str) {
+    write_png_u16(&dir.join(name), 8, 6, &[12; 48]).unwrap();
+}
+
+#[test]
+fn inspect_reports_the_sample_field() {
+    let sample = Path::new(env!("CARGO_MANIFEST_DIR")).join("sample-maps");
+    let r = modalmap(&["inspect", sample.to_str().unwrap()]);
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    assert!(
+        r.stdout.contains("384 × 288 pixels, 3 element maps"),
+        "{}",
+        r.stdout
+    );
+    assert!(
+        r.stdout.contains("BSE.png: backscattered-electron image"),
+        "{}",
+        r.stdout
+    );
+    let j = modalmap(&["inspect", "--json", sample.to_str().unwrap()]);
+    let v: serde_json::Value = serde_json::from_str(&j.stdout).unwrap();
+    let els: Vec<&str> = v["elements"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|e| e["element"].as_str().unwrap())
+        .collect();
+    assert_eq!(els, vec!["Cu", "Ag", "Sn"]);
+    assert_eq!(v["metadata"]["pixel_size_um"], 0.2);
+}
+
+#[test]
+fn low_counts_are_warned_with_poisson_reasoning() {
+    let dir = tempfile::tempdir().unwrap();
+    write_png_u8(&dir.path().join("Fe.png"), 10, 10, &[2; 100]).unwrap();
+    let r = inspect(dir.path());
+    assert_eq!(r.code, 0);
+    assert!(
+        r.stdout.contains("Fe reaches only 2 counts"),
+        "{}",
+        r.stdout
+    );
+    assert!(
+        r.stdout.contains("Poisson noise is √N = 1.4 counts"),
+        "{}",
+        r.stdout
+    );
+}
+
+#[test]
+fn missing_and_wrong_kind_of_input() {
+    let dir = tempfile::tempdir().unwrap();
+    let r = modalmap(&["inspect", dir.path().join("nope").to_str().unwrap()]);
+    assert_refused(&r, 3, &["nope", "cannot be opened"]);
+
+    good_map(dir.path(), "Fe.png");
+    let r = modalmap(&["inspect", dir.path().join("Fe.png").to_str().unwrap()]);
+    assert_refused(&r, 3, &["Fe.png", "single image", "folder"]);
+
+    std::fs::write(dir.path().join("notes.txt"), "hello").unwrap();
+    let r = modalmap(&["inspect", dir.path().join("notes.txt").to_str().unwrap()]);
+    assert_refused(&r, 3, &["notes.txt", "neither a folder nor an HDF5 file"]);
+}
+
+#[test]
+fn empty_folder_and_folder_without_maps() {
+    let dir = tempfile::tempdir().unwrap();
+    assert_refused(
+        &inspect(dir.path()),
+        3,
+        &["no element maps", "folder is empty"],
+    );
+    write_png_u8(&dir.path().join("SE.png"), 4, 4, &[1; 16]).unwrap();
+    std::fs::write(dir.path().join("readme.txt"), "x").unwrap();
+    assert_refused(
+        &inspect(dir.path()),
+        3,
+        &["no element maps", "SE.png", "Fe.png"],
+    );
+}
+
+#[test]
+fn maps_of_different_sizes() {
+    let dir = tempfile::tempdir().unwrap();
+    good_map(dir.path(), "Fe.png");
+    write_png_u16(&dir.path().join("Si.png"), 16, 12, &[3; 192]).unwrap();
+    assert_refused(
+        &inspect(dir.path()),
+        3,
+        &["Si.png", "16×12", "Fe.png is 8×6", "share one size"],
+    );
+}
+
+#[test]
+fn duplicate_elements() {
+    let dir = tempfile::tempdir().unwrap();
+    good_map(dir.path(), "Fe.png");
+    write_tiff(&dir.path().join("Fe_Ka.tif"), 8, 6, TiffData::U16(&[1; 48])).unwrap();
+    assert_refused(
+        &inspect(dir.path()),
+        3,
+        &["two maps of Fe", "Fe.png", "Fe_Ka.tif"],
+    );
+}
+
+#[test]
+fn corrupt_and_truncated_files() {
+    let dir = tempfile::tempdir().unwrap();
+    good_map(dir.path(), "Fe.png");
+    let bytes = std::fs::read(dir.path().join("Fe.png")).unwrap();
+    std::fs::write(dir.path().join("Fe.png"), &bytes[..bytes.len() / 2]).unwrap();
+    assert_refused(
+        &inspect(dir.path()),
+        3,
+        &["Fe.png", "not a readable PNG", "export it again"],
+    );
+
+    let dir = tempfile::tempdir().unwrap();
+    std::fs::write(dir.path().join("Si.tif"), b"this is not a tiff at all").unwrap();
+    assert_refused(&inspect(dir.path()), 3, &["Si.tif", "not a readable TIFF"]);
+
+    let dir = tempfile::tempdir().unwrap();
+    std::fs::write(dir.path().join("O.png"), b"").unwrap();
+    assert_refused(&inspect(dir.path()), 3, &["O.png", "not a readable PNG"]);
+
+    let dir = tempfile::tempdir().unwrap();
+    write_tiff(
+        &dir.path().join("Si.tif"),
+        64,
+        64,
+        TiffData::U16(&[9; 4096]),
+    )
+    .unwrap();
+    let bytes = std::fs::read(dir.path().join("Si.tif")).unwrap();
+    std::fs::write(dir.path().join("Si.tif"), &bytes[..bytes.len() - 3000]).unwrap();
+    assert_refused(&inspect(dir.path()), 3, &["Si.tif", "not a readable TIFF"]);
+}
+
+#[test]
+fn colour_images_say_how_to_fix() {
+    let dir = tempfile::tempdir().unwrap();
+    write_png_rgb(&dir.path().join("Fe.png"), 4, 4, &[9; 48]).unwrap();
+    assert_refused(
+        &inspect(dir.path()),
+        3,
+        &["Fe.png", "RGB colour PNG", "grayscale"],
+    );
+
+    let dir = tempfile::tempdir().unwrap();
+    let p = dir.path().join("Cu.tif");
+    let f = std::fs::File::create(&p).unwrap();
+    let mut enc = tiff::encoder::TiffEncoder::new(f).unwrap();
+    enc.write_image::<tiff::encoder::colortype::RGB8>(2, 2, &[1u8; 12])
+        .unwrap();
+    drop(enc);
+    assert_refused(&inspect(dir.path()), 3, &["Cu.tif", "RGB colour TIFF"]);
+}
+
+#[test]
+fn nan_inf_and_negative_float_maps() {
+    for (bad, key) in [
+        (f32::NAN, "NaN"),
+        (f32::INFINITY, "infinite"),
+        (-3.0, "negative value (-3)"),
+    ] {
+        let dir = tempfile::tempdir().unwrap();
+        let mut v = vec![1.0f32; 48];
+        v[13] = bad;
+        write_tiff(&dir.path().join("Ti.tif"), 8, 6, TiffData::F32(&v)).unwrap();
+        assert_refused(
+            &inspect(dir.path()),
+            3,
+            &["Ti.tif", key, "pixel (x=5, y=1)"],
+        );
+    }
+}
+
+/// A valid PNG whose header claims `w × h`: the IHDR chunk rewritten with a correct CRC
+/// (PNG specification, ISO/IEC 15948, §5.3: CRC-32 over chunk type and data).
+fn png_claiming(path: &Path, w: u32, h: u32) {
+    write_png_u8(path, 2, 2, &[1; 4]).unwrap();
+    let mut b = std::fs::read(path).unwrap();
+    b[16..20].copy_from_slice(&w.to_be_bytes());
+    b[20..24].copy_from_slice(&h.to_be_bytes());
+    let crc = crc32fast::hash(&b[12..29]);
+    b[29..33].copy_from_slice(&crc.to_be_bytes());
+    std::fs::write(path, b).unwrap();
+}
+
+#[test]
+fn absurd_dimensions_fail_fast() {
+    let dir = tempfile::tempdir().unwrap();
+    png_claiming(&dir.path().join("Fe.png"), 60_000, 60_000);
+    assert_refused(
+        &inspect(dir.path()),
+        3,
+        &["Fe.png", "60000×60000", "above the limit", "--max-pixels"],
+    );
+    // Raising the limit gets past the size check, and the missing data is then reported.
+    let r = modalmap(&[
+        "inspect",
+        "--max-pixels",
+        "4000000000",
+        dir.path().to_str().unwrap(),
+    ]);
+    assert_refused(&r, 3, &["Fe.png", "not a readable PNG"]);
+}
+
+#[test]
+fn bad_sidecar_is_named() {
+    let dir = tempfile::tempdir().unwrap();
+    good_map(dir.path(), "Fe.png");
+    std::fs::write(dir.path().join("field.toml"), "pixel_size = 0.2\n").unwrap();
+    assert_refused(
+        &inspect(dir.path()),
+        3,
+        &["field.toml", "pixel_size", "allowed keys"],
+    );
+    std::fs::write(dir.path().join("field.toml"), "pixel_size_um = -1\n").unwrap();
+    assert_refused(
+        &inspect(dir.path()),
+        3,
+        &["field.toml", "pixel_size_um = -1"],
+    );
+    std::fs::write(dir.path().join("field.toml"), "[lines]\nFE = \"K\"\n").unwrap();
+    assert_refused(&inspect(dir.path()), 3, &["field.toml", "`FE`"]);
+}
+
+#[test]
+fn all_zero_map_warns_and_succeeds() {
+    let dir = tempfile::tempdir().unwrap();
+    good_map(dir.path(), "Fe.png");
+    write_png_u8(&dir.path().join("Cr.png"), 8, 6, &[0; 48]).unwrap();
+    let r = inspect(dir.path());
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    assert!(
+        r.stdout.contains("Cr map") && r.stdout.contains("zero everywhere"),
+        "{}",
+        r.stdout
+    );
+}
+
+#[test]
+fn truncated_hdf5_is_refused() {
+    let src = Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/fixtures/hdf5/group_layout.h5");
+    let bytes = std::fs::read(src).unwrap();
+    let dir = tempfile::tempdir().unwrap();
+    for cut in [bytes.len() / 2, 600, 8] {
+        let p = dir.path().join(format!("cut{cut}.h5"));
+        std::fs::write(&p, &bytes[..cut]).unwrap();
+        let r = modalmap(&["inspect", p.to_str().unwrap()]);
+        assert_refused(&r, 3, &[&format!("cut{cut}.h5")]);
+    }
+}
+
+#[test]
+fn bad_option_values_exit_2() {
+    let r = modalmap(&["inspect", "--max-pixels", "lots", "x"]);
+    assert_eq!(r.code, 2, "{}", r.stderr);
+    let r = modalmap(&["frobnicate"]);
+    assert_eq!(r.code, 2);
+}
