@@ -8,10 +8,15 @@
 
 pub mod chem;
 pub mod cli;
+pub mod cluster;
 pub mod error;
 pub mod inspect;
 pub mod io;
+pub mod phases;
 pub mod physics;
+pub mod pipeline;
+pub mod prepare;
+pub mod refine;
 pub mod stack;
 pub mod synth;
 

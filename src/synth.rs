@@ -273,7 +273,7 @@ pub fn generate(micro: &Microstructure, opts: &SynthOptions) -> Result<SynthFiel
                 .map(|&t| expected[t as usize][ci] as f32)
                 .collect();
             let lam = blur(lam, w, h, det.blur_sigma_px);
-            let mut rng = ChaCha8Rng::seed_from_u64(opts.seed ^ (0x9E37_79B9 * (ci as u64 + 1)));
+            let mut rng = ChaCha8Rng::seed_from_u64(opts.seed ^ 0x9E37_79B9u64.wrapping_mul(ci as u64 + 1));
             let counts = lam
                 .iter()
                 .map(|&l| poisson(&mut rng, f64::from(l)))

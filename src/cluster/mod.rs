@@ -1,0 +1,270 @@
+//! Cluster: group pixels into phases.
+//!
+//! Takes [`Features`](crate::prepare::Features) and checked [`ClusterParams`]; returns a
+//! [`Clusters`] model (k-means centroids or a Gaussian mixture) that scores any pixel
+//! against every phase. Models are fitted on a seeded sample of the pixels when the field
+//! is large, then applied to every pixel in one pass (`refine`).
+//!
+//! The kernels are our own (a measurement showed linfa 8–17× slower than scikit-learn on
+//! this problem; see notebooks-free-docs/architecture.md); tests compare them with
+//! linfa-clustering as the reference.
+
+pub mod gmm;
+pub mod kmeans;
+pub mod poisson;
+pub mod select;
+pub mod simplify;
+
+use serde::{Deserialize, Serialize};
+
+pub use gmm::GaussianMixture;
+pub use kmeans::KMeans;
+pub use poisson::PoissonMixture;
+
+/// Clustering method.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize, clap::ValueEnum)]
+#[serde(rename_all = "snake_case")]
+pub enum Method {
+    /// Mixture of Poisson distributions on the counts themselves (the default).
+    Poisson,
+    /// k-means: every phase a sphere of the same size in feature space.
+    Kmeans,
+    /// Gaussian mixture with full covariances.
+    Gmm,
+}
+
+/// A fitted model that scores pixels against phases.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(tag = "method", rename_all = "snake_case")]
+pub enum Clusters {
+    /// k-means centroids with one isotropic noise variance for every cluster.
+    Kmeans {
+        /// The centroids.
+        model: KMeans,
+        /// Per-dimension noise variance (pooled within-cluster variance).
+        variance: f64,
+    },
+    /// A Gaussian mixture.
+    Gmm {
+        /// The mixture.
+        model: GaussianMixture,
+    },
+    /// A Poisson mixture on counts.
+    Poisson {
+        /// The mixture.
+        model: PoissonMixture,
+    },
+}
+
+impl Clusters {
+    /// Number of phases.
+    pub fn k(&self) -> usize {
+        match self {
+            Clusters::Kmeans { model, .. } => model.k,
+            Clusters::Gmm { model } => model.k,
+            Clusters::Poisson { model } => model.k,
+        }
+    }
+
+    /// Feature dimensions.
+    pub fn d(&self) -> usize {
+        match self {
+            Clusters::Kmeans { model, .. } => model.d,
+            Clusters::Gmm { model } => model.d,
+            Clusters::Poisson { model } => model.d,
+        }
+    }
+
+    /// Mean of phase `c` in feature space.
+    pub fn mean(&self, c: usize) -> &[f64] {
+        let d = self.d();
+        match self {
+            Clusters::Kmeans { model, .. } => &model.centroids[c * d..(c + 1) * d],
+            Clusters::Gmm { model } => &model.means[c * d..(c + 1) * d],
+            Clusters::Poisson { model } => &model.rates[c * d..(c + 1) * d],
+        }
+    }
+
+    /// Rebuilds caches after deserialising.
+    pub fn refresh(&mut self) -> Result<(), gmm::GmmError> {
+        match self {
+            Clusters::Kmeans { .. } => Ok(()),
+            Clusters::Gmm { model } => model.refresh(),
+            Clusters::Poisson { model } => {
+                model.refresh();
+                Ok(())
+            }
+        }
+    }
+
+    /// Expected counts per pixel of each element for phase `c` (means mapped back through
+    /// the transform for the Gaussian models).
+    pub fn expected_counts(&self, c: usize, st: crate::prepare::Stabilise) -> Vec<f64> {
+        match self {
+            Clusters::Poisson { model } => model.rates[c * model.d..(c + 1) * model.d].to_vec(),
+            _ => self.mean(c).iter().map(|&m| st.invert(m).max(0.0)).collect(),
+        }
+    }
+
+    /// The same model without phase `c` (weights renormalised).
+    pub fn without(&self, c: usize) -> Clusters {
+        fn drop_rows(v: &[f64], c: usize, len: usize) -> Vec<f64> {
+            v.chunks(len).enumerate().filter(|(i, _)| *i != c).flat_map(|(_, r)| r.to_vec()).collect()
+        }
+        fn renorm(w: Vec<f64>) -> Vec<f64> {
+            let s: f64 = w.iter().sum();
+            w.into_iter().map(|x| x / s).collect()
+        }
+        match self {
+            Clusters::Kmeans { model, variance } => {
+                let mut m = model.clone();
+                m.centroids = drop_rows(&model.centroids, c, model.d);
+                m.k -= 1;
+                Clusters::Kmeans { model: m, variance: *variance }
+            }
+            Clusters::Gmm { model } => {
+                let mut m = model.clone();
+                m.weights = renorm(drop_rows(&model.weights, c, 1));
+                m.means = drop_rows(&model.means, c, model.d);
+                m.covariances = drop_rows(&model.covariances, c, model.d * model.d);
+                m.k -= 1;
+                m.refresh().expect("the remaining covariances were valid");
+                Clusters::Gmm { model: m }
+            }
+            Clusters::Poisson { model } => {
+                let mut m = model.clone();
+                m.weights = renorm(drop_rows(&model.weights, c, 1));
+                m.rates = drop_rows(&model.rates, c, model.d);
+                m.k -= 1;
+                m.refresh();
+                Clusters::Poisson { model: m }
+            }
+        }
+    }
+
+    /// The same model with phases `a` and `b` combined into one (at index `a`), with the
+    /// pooled weight, mean and (for the mixture) covariance.
+    pub fn merged(&self, a: usize, b: usize) -> Clusters {
+        let (a, b) = (a.min(b), a.max(b));
+        let d = self.d();
+        match self {
+            Clusters::Kmeans { model, variance } => {
+                let mut m = model.clone();
+                for j in 0..d {
+                    m.centroids[a * d + j] = 0.5 * (model.centroids[a * d + j] + model.centroids[b * d + j]);
+                }
+                Clusters::Kmeans { model: m, variance: *variance }.without(b)
+            }
+            Clusters::Gmm { model } => {
+                let mut m = model.clone();
+                let (wa, wb) = (model.weights[a], model.weights[b]);
+                let w = wa + wb;
+                let mean: Vec<f64> = (0..d).map(|j| (wa * model.means[a * d + j] + wb * model.means[b * d + j]) / w).collect();
+                for i in 0..d {
+                    for j in 0..d {
+                        let da = (model.means[a * d + i] - mean[i]) * (model.means[a * d + j] - mean[j]);
+                        let db = (model.means[b * d + i] - mean[i]) * (model.means[b * d + j] - mean[j]);
+                        m.covariances[a * d * d + i * d + j] = (wa * (model.covariances[a * d * d + i * d + j] + da)
+                            + wb * (model.covariances[b * d * d + i * d + j] + db))
+                            / w;
+                    }
+                }
+                m.means[a * d..(a + 1) * d].copy_from_slice(&mean);
+                m.weights[a] = w;
+                m.weights[b] = 0.0;
+                Clusters::Gmm { model: m }.without(b)
+            }
+            Clusters::Poisson { model } => {
+                let mut m = model.clone();
+                let (wa, wb) = (model.weights[a], model.weights[b]);
+                for j in 0..d {
+                    m.rates[a * d + j] = (wa * model.rates[a * d + j] + wb * model.rates[b * d + j]) / (wa + wb);
+                }
+                m.weights[a] = wa + wb;
+                m.weights[b] = 0.0;
+                Clusters::Poisson { model: m }.without(b)
+            }
+        }
+    }
+
+    /// A scorer for the hot loops.
+    pub fn scorer(&self) -> Scorer<'_> {
+        match self {
+            Clusters::Kmeans { model, variance } => {
+                let var = variance.max(1e-12);
+                let d = model.d as f64;
+                Scorer::Kmeans {
+                    centres: model.centres_f32(),
+                    d: model.d,
+                    inv_var: (1.0 / var) as f32,
+                    log_norm: -(model.k as f64).ln() - 0.5 * d * (2.0 * std::f64::consts::PI * var).ln(),
+                }
+            }
+            Clusters::Gmm { model } => Scorer::Gmm(model),
+            Clusters::Poisson { model } => Scorer::Poisson(model),
+        }
+    }
+
+    /// A typical per-dimension noise variance of the phases (for the empty pseudo-phase):
+    /// the k-means pooled variance, or the mixture's weighted mean covariance diagonal.
+    pub fn noise_variance(&self) -> f64 {
+        match self {
+            Clusters::Kmeans { variance, .. } => *variance,
+            Clusters::Gmm { model } => {
+                let d = model.d;
+                (0..model.k)
+                    .map(|c| {
+                        let diag: f64 = (0..d).map(|i| model.covariances[c * d * d + i * d + i]).sum();
+                        model.weights[c] * diag / d as f64
+                    })
+                    .sum()
+            }
+            Clusters::Poisson { .. } => f64::NAN,
+        }
+    }
+}
+
+/// Scores pixels against phases: the log density (weight × Gaussian) of a row under each
+/// phase, and the squared Mahalanobis distance for the outlier test.
+pub enum Scorer<'a> {
+    /// Isotropic Gaussian of one shared variance around each centroid, equal weights.
+    Kmeans {
+        /// Centroids, `k × d`.
+        centres: Vec<f32>,
+        /// Dimensions.
+        d: usize,
+        /// 1 / noise variance.
+        inv_var: f32,
+        /// ln(1/k) − d/2 ln(2π σ²).
+        log_norm: f64,
+    },
+    /// Full-covariance mixture.
+    Gmm(&'a GaussianMixture),
+    /// Poisson mixture on counts.
+    Poisson(&'a PoissonMixture),
+}
+
+impl Scorer<'_> {
+    /// ln (wₖ N(row | phase c)).
+    #[inline]
+    pub fn score(&self, c: usize, row: &[f32]) -> f64 {
+        match self {
+            Scorer::Kmeans { log_norm, .. } => log_norm - 0.5 * self.discrepancy(c, row),
+            Scorer::Gmm(g) => g.weighted_log_density(c, row),
+            Scorer::Poisson(m) => m.weighted_log_density(c, row),
+        }
+    }
+
+    /// Discrepancy of `row` from phase `c`, approximately χ² with d degrees of freedom for
+    /// a pixel of that phase: squared Mahalanobis distance, or Poisson deviance.
+    #[inline]
+    pub fn discrepancy(&self, c: usize, row: &[f32]) -> f64 {
+        match self {
+            Scorer::Kmeans { centres, d, inv_var, .. } => {
+                f64::from(kmeans::dist2(row, &centres[c * d..(c + 1) * d]) * inv_var)
+            }
+            Scorer::Gmm(g) => f64::from(g.mahalanobis2(c, row)),
+            Scorer::Poisson(m) => m.deviance(c, row),
+        }
+    }
+}

@@ -1,0 +1,334 @@
+//! Fitting a model to a field's features, with a fixed phase count or one chosen by BIC.
+
+use serde::{Deserialize, Serialize};
+
+use rand::SeedableRng;
+use rand_chacha::ChaCha8Rng;
+
+use super::gmm::{self, GmmParams};
+use super::kmeans::{self, KMeansParams};
+use super::poisson::{self, PoissonMixture, PoissonParams};
+use super::{Clusters, Method};
+use crate::error::{Error, Result};
+use crate::prepare::Features;
+
+/// How many phases to look for.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum PhaseCount {
+    /// Exactly this many.
+    Fixed(usize),
+    /// Chosen by BIC among 1..=max.
+    Auto {
+        /// Largest count tried.
+        max: usize,
+    },
+}
+
+impl std::str::FromStr for PhaseCount {
+    type Err = String;
+    fn from_str(s: &str) -> std::result::Result<Self, String> {
+        if s == "auto" {
+            return Ok(PhaseCount::Auto { max: 10 });
+        }
+        if let Some(m) = s.strip_prefix("auto:") {
+            return m
+                .parse()
+                .map(|max| PhaseCount::Auto { max })
+                .map_err(|_| format!("`{s}`: write auto or auto:MAX, e.g. auto:12"));
+        }
+        s.parse()
+            .map(PhaseCount::Fixed)
+            .map_err(|_| format!("`{s}` is not a phase count; give a number or `auto`"))
+    }
+}
+
+/// Options of the cluster stage.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+pub struct ClusterParams {
+    /// Method.
+    pub method: Method,
+    /// Phase count.
+    pub phases: PhaseCount,
+    /// Seed of every random choice.
+    pub seed: u64,
+    /// k-means restarts.
+    pub n_init: usize,
+    /// Largest number of pixels the model is fitted on (a seeded sample beyond that).
+    pub sample_size: usize,
+}
+
+impl Default for ClusterParams {
+    fn default() -> Self {
+        ClusterParams {
+            method: Method::Poisson,
+            phases: PhaseCount::Auto { max: 10 },
+            seed: 1,
+            n_init: 4,
+            sample_size: 200_000,
+        }
+    }
+}
+
+/// Checked cluster options.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+#[serde(transparent)]
+pub struct ValidClusterParams(ClusterParams);
+
+impl ValidClusterParams {
+    /// The options.
+    pub fn get(&self) -> &ClusterParams {
+        &self.0
+    }
+}
+
+impl ClusterParams {
+    /// Checks every rule.
+    pub fn check(self) -> Result<ValidClusterParams> {
+        match self.phases {
+            PhaseCount::Fixed(k) if !(1..=64).contains(&k) => {
+                return Err(Error::options(
+                    format!("--phases {k} is out of range"),
+                    "ask for 1 to 64 phases, or --phases auto",
+                ))
+            }
+            PhaseCount::Auto { max } if !(2..=32).contains(&max) => {
+                return Err(Error::options(
+                    format!("auto phase count up to {max} is out of range"),
+                    "use auto:MAX with MAX from 2 to 32",
+                ))
+            }
+            _ => {}
+        }
+        if self.n_init == 0 || self.n_init > 100 {
+            return Err(Error::options(
+                format!("{} k-means restarts is out of range", self.n_init),
+                "use 1 to 100 restarts",
+            ));
+        }
+        if self.sample_size < 1000 {
+            return Err(Error::options(
+                format!("a fitting sample of {} pixels is too small", self.sample_size),
+                "fit on at least 1000 pixels",
+            ));
+        }
+        Ok(ValidClusterParams(self))
+    }
+}
+
+/// One point of the phase-count curve.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+pub struct CurvePoint {
+    /// Phases.
+    pub k: usize,
+    /// BIC of the mixture with k components on the fitting sample.
+    pub bic: f64,
+}
+
+/// A fitted model with how it was chosen.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Fit {
+    /// The model.
+    pub clusters: Clusters,
+    /// BIC per phase count (empty for a fixed count).
+    pub curve: Vec<CurvePoint>,
+    /// Pixels the model was fitted on.
+    pub fitted_pixels: usize,
+}
+
+/// The rows of the pixels that take part, sampled (seeded) down to `max`.
+pub fn fitting_rows(f: &Features, max: usize, seed: u64) -> Vec<f32> {
+    let active: Vec<usize> = (0..f.pixels()).filter(|&i| f.mask[i]).collect();
+    let pick = kmeans::sample_rows(active.len(), max, seed);
+    let mut rows = Vec::with_capacity(pick.len() * f.dims);
+    for &j in &pick {
+        rows.extend_from_slice(f.row(active[j]));
+    }
+    rows
+}
+
+fn distinct_rows(rows: &[f32], d: usize, at_least: usize) -> bool {
+    let mut seen: Vec<&[f32]> = Vec::new();
+    for r in rows.chunks_exact(d) {
+        if !seen.contains(&r) {
+            seen.push(r);
+            if seen.len() >= at_least {
+                return true;
+            }
+        }
+    }
+    false
+}
+
+fn fit_k(rows: &[f32], d: usize, k: usize, p: &ClusterParams) -> Result<Clusters> {
+    let n = rows.len() / d;
+    if p.method == Method::Poisson {
+        return Ok(Clusters::Poisson { model: fit_poisson(rows, d, k, p) });
+    }
+    let km = kmeans::fit(
+        rows,
+        d,
+        &KMeansParams {
+            k,
+            n_init: p.n_init,
+            max_iter: 300,
+            tol: 1e-4,
+            seed: p.seed,
+        },
+    );
+    match p.method {
+        Method::Kmeans => {
+            let variance = km.inertia / (n * d) as f64;
+            Ok(Clusters::Kmeans { model: km, variance })
+        }
+        _ => {
+            let labels = km.predict(rows);
+            let model = gmm::fit(
+                rows,
+                d,
+                &labels,
+                &GmmParams {
+                    k,
+                    max_iter: 200,
+                    tol: 1e-4,
+                    reg_covar: 1e-3,
+                },
+            )
+            .map_err(|e| {
+                Error::options(
+                    format!("the Gaussian mixture with {k} phases failed: {e}"),
+                    "ask for fewer phases (--phases), or use another --method",
+                )
+            })?;
+            Ok(Clusters::Gmm { model })
+        }
+    }
+}
+
+/// Poisson mixture from `n_init` seeded k-means++ seedings (in √counts, where Poisson
+/// noise is even), each refined by EM; the highest likelihood wins. Seeds are used as they
+/// are, without Lloyd iterations, because Lloyd's rule splits a large phase before it
+/// separates two small ones; EM on the true likelihood does not.
+fn fit_poisson(rows: &[f32], d: usize, k: usize, p: &ClusterParams) -> PoissonMixture {
+    let root: Vec<f32> = rows.iter().map(|&x| x.max(0.0).sqrt()).collect();
+    let mut best: Option<PoissonMixture> = None;
+    for run in 0..p.n_init {
+        let mut rng = ChaCha8Rng::seed_from_u64(p.seed.wrapping_add((run as u64).wrapping_mul(0x2545_F491_4F6C_DD1D)));
+        let seeds = kmeans::kmeans_plus_plus(&root, d, k, &mut rng);
+        let start = start_from_centres(rows, &root, d, &seeds);
+        let m = poisson::fit(rows, d, start, &SHORT_EM);
+        if best.as_ref().is_none_or(|b| m.mean_log_likelihood > b.mean_log_likelihood) {
+            best = Some(m);
+        }
+    }
+    poisson::fit(rows, d, best.expect("n_init ≥ 1"), &EM)
+}
+
+const EM: PoissonParams = PoissonParams { max_iter: 300, tol: 1e-5 };
+
+/// A starting mixture from centres in √counts: each row goes to its nearest centre.
+fn start_from_centres(rows: &[f32], root: &[f32], d: usize, centres: &[f32]) -> PoissonMixture {
+    let k = centres.len() / d;
+    let labels: Vec<u16> = root.chunks_exact(d).map(|r| kmeans::nearest(r, centres, d).0 as u16).collect();
+    poisson::from_labels(rows, d, &labels, k)
+}
+
+/// Greedy growth (in the spirit of Verbeek, Vlassis & Kröse 2003, from memory): the
+/// mixture with k + 1 phases starts from the one with k plus a new phase seeded where the
+/// current phases explain the data worst (a draw ∝ D² in √counts, as in k-means++); the
+/// best of `n_init` such seeds after EM is kept. Each step starts near a good solution, so
+/// the BIC curve is smooth and cheap to compute.
+fn grow_poisson(rows: &[f32], d: usize, prev: &PoissonMixture, p: &ClusterParams) -> PoissonMixture {
+    use rand::Rng;
+    let root: Vec<f32> = rows.iter().map(|&x| x.max(0.0).sqrt()).collect();
+    let old: Vec<f32> = prev.rates.iter().map(|&r| r.sqrt() as f32).collect();
+    let d2: Vec<f64> = root.chunks_exact(d).map(|r| f64::from(kmeans::nearest(r, &old, d).1)).collect();
+    let total: f64 = d2.iter().sum();
+    let mut rng = ChaCha8Rng::seed_from_u64(p.seed ^ (prev.k as u64).wrapping_mul(0x9E37_79B9));
+    let mut best: Option<PoissonMixture> = None;
+    for _ in 0..p.n_init {
+        let mut target = rng.random_range(0.0..total.max(f64::MIN_POSITIVE));
+        let pick = d2.iter().position(|&v| {
+            target -= v;
+            target < 0.0
+        });
+        let pick = pick.unwrap_or(d2.len() - 1);
+        let mut centres = old.clone();
+        centres.extend_from_slice(&root[pick * d..(pick + 1) * d]);
+        let start = start_from_centres(rows, &root, d, &centres);
+        // A short EM ranks the candidate seeds; only the winner runs to convergence.
+        let m = poisson::fit(rows, d, start, &SHORT_EM);
+        if best.as_ref().is_none_or(|b| m.mean_log_likelihood > b.mean_log_likelihood) {
+            best = Some(m);
+        }
+    }
+    poisson::fit(rows, d, best.expect("n_init ≥ 1"), &EM)
+}
+
+const SHORT_EM: PoissonParams = PoissonParams { max_iter: 15, tol: 1e-4 };
+
+/// Fits the model of a field.
+pub fn fit(f: &Features, params: &ValidClusterParams) -> Result<Fit> {
+    let p = params.get();
+    let rows = fitting_rows(f, p.sample_size, p.seed);
+    let d = f.dims;
+    let n = rows.len() / d;
+    let need = match p.phases {
+        PhaseCount::Fixed(k) => k,
+        PhaseCount::Auto { .. } => 1,
+    };
+    if n == 0 || !distinct_rows(&rows, d, need) {
+        return Err(Error::options(
+            format!(
+                "the field has {n} non-empty pixels with fewer than {need} distinct values, \
+                 so {need} phases cannot be told apart"
+            ),
+            "ask for fewer phases, or lower --min-counts if real phases were masked as empty",
+        ));
+    }
+    match p.phases {
+        PhaseCount::Fixed(k) => Ok(Fit {
+            clusters: fit_k(&rows, d, k, p)?,
+            curve: Vec::new(),
+            fitted_pixels: n,
+        }),
+        PhaseCount::Auto { max } => {
+            let mut curve = Vec::new();
+            let mut best: Option<(f64, Clusters)> = None;
+            let mut consider = |c: Clusters, b: f64, curve: &mut Vec<CurvePoint>| {
+                curve.push(CurvePoint { k: c.k(), bic: b });
+                if best.as_ref().is_none_or(|(bb, _)| b < *bb) {
+                    best = Some((b, c));
+                }
+            };
+            if p.method == Method::Poisson {
+                let mut m = poisson::fit(rows.as_slice(), d, poisson::from_labels(&rows, d, &vec![0; n], 1), &EM);
+                for k in 1..=max.min(n) {
+                    if k > 1 {
+                        if !distinct_rows(&rows, d, k) {
+                            break;
+                        }
+                        m = grow_poisson(&rows, d, &m, p);
+                    }
+                    let b = m.bic(n);
+                    consider(Clusters::Poisson { model: m.clone() }, b, &mut curve);
+                }
+            } else {
+                // The curve uses the Gaussian mixture's likelihood for both Gaussian methods.
+                for k in 1..=max.min(n) {
+                    if !distinct_rows(&rows, d, k) {
+                        break;
+                    }
+                    let cp = ClusterParams { method: Method::Gmm, ..*p };
+                    let Ok(c) = fit_k(&rows, d, k, &cp) else { break };
+                    let Clusters::Gmm { model } = &c else { unreachable!("asked for a mixture") };
+                    let b = model.bic(n);
+                    consider(c, b, &mut curve);
+                }
+            }
+            let (_, chosen) = best.ok_or_else(|| Error::internal("no phase count could be fitted"))?;
+            let clusters = if p.method == Method::Kmeans { fit_k(&rows, d, chosen.k(), p)? } else { chosen };
+            Ok(Fit { clusters, curve, fitted_pixels: n })
+        }
+    }
+}

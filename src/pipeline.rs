@@ -1,0 +1,173 @@
+//! The main job for one field, stage after stage: prepare → cluster → (simplify) → refine
+//! → phase statistics. No I/O here: loading and writing belong to `io` and `report`.
+
+use serde::{Deserialize, Serialize};
+
+use crate::cluster::select::{self, ClusterParams, CurvePoint, PhaseCount, ValidClusterParams};
+use crate::cluster::simplify::{self, Simplification};
+use crate::cluster::{Clusters, Method};
+use crate::error::{Error, Result};
+use crate::phases::{phase_table, PhaseTable};
+use crate::prepare::{prepare, FeatureTransform, PrepareParams, Stabilise};
+use crate::refine::{interior_fractions, refine, RefineParams, Segmentation, ValidRefineParams};
+use crate::stack::MapStack;
+
+/// Every option of `map`, as given (command line and configuration file merged).
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+pub struct MapOptions {
+    /// Prepare stage (the transform is ignored by the Poisson method, which works on counts).
+    pub prepare: PrepareParams,
+    /// Cluster stage.
+    pub cluster: ClusterParams,
+    /// Refine stage.
+    pub refine: RefineParams,
+    /// With an automatic phase count: phases smaller than this share of the pixels are
+    /// dissolved into their neighbours.
+    pub min_phase_fraction: f64,
+}
+
+impl Default for MapOptions {
+    fn default() -> Self {
+        MapOptions {
+            prepare: PrepareParams::default(),
+            cluster: ClusterParams::default(),
+            refine: RefineParams::default(),
+            min_phase_fraction: 2e-4,
+        }
+    }
+}
+
+/// Checked options.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct ValidMapOptions {
+    transform: FeatureTransform,
+    cluster: ValidClusterParams,
+    refine: ValidRefineParams,
+    min_phase_fraction: f64,
+    given: MapOptions,
+}
+
+impl MapOptions {
+    /// Checks every stage's options; the Poisson method always works on raw counts.
+    pub fn check(self) -> Result<ValidMapOptions> {
+        let mut prep = self.prepare;
+        if self.cluster.method == Method::Poisson {
+            prep.stabilise = Stabilise::None;
+            prep.dequantise = false;
+        }
+        if !(0.0..0.5).contains(&self.min_phase_fraction) {
+            return Err(Error::options(
+                format!("minimum phase size {} is out of range", self.min_phase_fraction),
+                "give a share of the pixels from 0 to below 0.5, e.g. 0.0002",
+            ));
+        }
+        Ok(ValidMapOptions {
+            transform: prep.check()?,
+            cluster: self.cluster.check()?,
+            refine: self.refine.check()?,
+            min_phase_fraction: self.min_phase_fraction,
+            given: MapOptions { prepare: prep, ..self },
+        })
+    }
+}
+
+impl ValidMapOptions {
+    /// The options as they were applied.
+    pub fn options(&self) -> &MapOptions {
+        &self.given
+    }
+}
+
+/// Everything the main job computes for a field.
+#[derive(Debug, Clone)]
+pub struct MapResult {
+    /// The final model (after simplification).
+    pub clusters: Clusters,
+    /// BIC per phase count (empty for a fixed count).
+    pub curve: Vec<CurvePoint>,
+    /// Phases merged or dissolved after BIC, with the reason.
+    pub simplifications: Vec<Simplification>,
+    /// Labels: 0 = unassigned, else the phase id of the table.
+    pub segmentation: Segmentation,
+    /// Per-phase statistics.
+    pub table: PhaseTable,
+    /// Counts on the label grid (binned if asked).
+    pub counts: MapStack,
+    /// The empty-pixel threshold used, total counts per pixel.
+    pub min_counts_used: f64,
+    /// Pixels the model was fitted on.
+    pub fitted_pixels: usize,
+}
+
+/// Runs the main job on one field.
+pub fn map_stack(stack: &MapStack, opts: &ValidMapOptions) -> Result<MapResult> {
+    let f = prepare(stack, &opts.transform)?;
+    let fit = select::fit(&f, &opts.cluster)?;
+    let st = opts.transform.params().stabilise;
+    let auto = matches!(opts.cluster.get().phases, PhaseCount::Auto { .. });
+    let (mut clusters, mut simplifications) = if auto {
+        simplify::merge_indistinguishable(fit.clusters, st)
+    } else {
+        (fit.clusters, Vec::new())
+    };
+    let min_px = (opts.min_phase_fraction * f.pixels() as f64).ceil().max(1.0) as usize;
+    let mut seg = refine(&f, &clusters, &opts.refine);
+    // Dissolve boundary bands and phases below the size floor, then label again.
+    for _ in 0..8 {
+        if !auto || clusters.k() < 2 {
+            break;
+        }
+        let inside = interior_fractions(&seg, clusters.k());
+        let mut ends: Vec<Vec<f64>> = (0..clusters.k()).map(|c| clusters.expected_counts(c, st)).collect();
+        ends.push(vec![0.0; f.dims]);
+        let mut drop: Vec<(usize, Simplification)> = Vec::new();
+        for (c, &(px, interior)) in inside.iter().enumerate() {
+            if px < min_px {
+                drop.push((c, Simplification {
+                    action: format!("dissolved a component of {px} pixels, below the size floor of {min_px}"),
+                    value: px as f64,
+                }));
+            } else if let Some((dev, a, b, t)) = simplify::nearest_mixture(c, &ends) {
+                if dev < simplify::MIXTURE_WITHIN && interior < BOUNDARY_INTERIOR {
+                    let what = |j: usize| if j == clusters.k() { "pores".to_string() } else { simplify::fmt_counts(&ends[j]) };
+                    drop.push((c, Simplification {
+                        action: format!(
+                            "dissolved a band of mixed pixels ({} ≈ {:.0} % {} + {:.0} % {}; {:.1} % interior pixels)",
+                            simplify::fmt_counts(&ends[c]),
+                            100.0 * t,
+                            what(a),
+                            100.0 * (1.0 - t),
+                            what(b),
+                            100.0 * interior
+                        ),
+                        value: dev,
+                    }));
+                }
+            }
+        }
+        if drop.is_empty() || drop.len() >= clusters.k() {
+            break;
+        }
+        for (c, note) in drop.into_iter().rev() {
+            clusters = clusters.without(c);
+            simplifications.push(note);
+        }
+        seg = refine(&f, &clusters, &opts.refine);
+    }
+    let table = phase_table(&mut seg, &f.counts, clusters.k());
+    Ok(MapResult {
+        clusters,
+        curve: fit.curve,
+        simplifications,
+        segmentation: seg,
+        table,
+        counts: f.counts,
+        min_counts_used: f.min_counts_used,
+        fitted_pixels: fit.fitted_pixels,
+    })
+}
+
+/// A component with fewer interior pixels than this share is a boundary band, if it also
+/// lies on a mixing line (common practice, no source; real phases on the sample and test
+/// fields keep 13 % or more even as 3–5 pixel particles).
+pub const BOUNDARY_INTERIOR: f64 = 0.05;

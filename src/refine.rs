@@ -1,0 +1,500 @@
+//! Refine: from per-pixel scores to a clean label image.
+//!
+//! Takes [`Features`], a fitted [`Clusters`] model and checked [`RefineParams`]; returns a
+//! [`Segmentation`]: one label per pixel (0 = unassigned), the posterior probability of that
+//! label, and why pixels were left unassigned.
+//!
+//! - **Empty pixels** (below the prepare stage's count floor) are unassigned and fixed.
+//!   Pixels above the floor may still be mostly void: an *empty pseudo-phase*, a Gaussian
+//!   at the transform of zero counts with the phases' noise variance, competes with the
+//!   real phases, so a pixel on the rim of a pore goes to the pore if most of its volume is
+//!   pore.
+//! - **Outliers**: a pixel whose squared Mahalanobis distance to its best phase exceeds
+//!   the χ² quantile of the chosen tail probability is unlike every phase (an unmapped
+//!   inclusion, a spike) and is left unassigned, *unless* it lies on the mixing curve of
+//!   two phases (or a phase and a pore): then it is a mixed boundary pixel and keeps a
+//!   phase, so boundaries never become a spurious "boundary phase" or a rim of holes.
+//! - **Spatial prior**: iterated conditional modes on a Potts model (Besag 1986) with
+//!   4-neighbours weighted 1 and diagonals 1/√2, times the smoothing strength β. Pixels
+//!   are updated in four interleaved colour classes (no two 8-neighbours share a class),
+//!   so the sweep is parallel and still deterministic. A pixel only considers its most
+//!   likely phase and its neighbours' labels.
+//! - **Minimum feature size** (optional): connected features smaller than N pixels are
+//!   given to the label that borders them most.
+
+use rayon::prelude::*;
+use serde::{Deserialize, Serialize};
+use statrs::distribution::{ChiSquared, ContinuousCDF};
+
+use crate::cluster::kmeans::dist2;
+use crate::cluster::{poisson, Clusters, Scorer};
+use crate::error::{Error, Result};
+use crate::prepare::{Features, Stabilise};
+
+/// Options of the refine stage.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+pub struct RefineParams {
+    /// Potts interaction strength β per 4-neighbour (0 switches the spatial prior off).
+    pub smoothing: f64,
+    /// Tail probability of the χ² outlier test (0 switches it off).
+    pub outlier_tail: f64,
+    /// Connected features smaller than this many pixels are merged into their surroundings
+    /// (0 = keep all).
+    pub min_feature_px: usize,
+    /// Limit on ICM sweeps.
+    pub max_sweeps: usize,
+}
+
+impl Default for RefineParams {
+    fn default() -> Self {
+        RefineParams {
+            smoothing: 1.0,
+            outlier_tail: 1e-6,
+            min_feature_px: 0,
+            max_sweeps: 20,
+        }
+    }
+}
+
+/// Checked refine options.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+#[serde(transparent)]
+pub struct ValidRefineParams(RefineParams);
+
+impl RefineParams {
+    /// Checks every rule.
+    pub fn check(self) -> Result<ValidRefineParams> {
+        if !(0.0..=10.0).contains(&self.smoothing) {
+            return Err(Error::options(
+                format!("smoothing strength {} is out of range", self.smoothing),
+                "use a strength from 0 (off) to 10; 1 is the default",
+            ));
+        }
+        if !(0.0..0.5).contains(&self.outlier_tail) {
+            return Err(Error::options(
+                format!("outlier tail probability {} is out of range", self.outlier_tail),
+                "use a probability from 0 (off) to below 0.5, e.g. 1e-6",
+            ));
+        }
+        if self.max_sweeps > 1000 {
+            return Err(Error::options("too many smoothing sweeps", "use at most 1000"));
+        }
+        Ok(ValidRefineParams(self))
+    }
+}
+
+impl ValidRefineParams {
+    /// The options.
+    pub fn get(&self) -> &RefineParams {
+        &self.0
+    }
+}
+
+/// A label image.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Segmentation {
+    /// Grid width.
+    pub width: usize,
+    /// Grid height.
+    pub height: usize,
+    /// Per pixel: 0 = unassigned, c + 1 = phase c of the model.
+    pub labels: Vec<u16>,
+    /// Posterior probability of the pixel's label among the phases and the empty
+    /// pseudo-phase (0 where unassigned).
+    pub confidence: Vec<f32>,
+    /// Pixels unassigned as empty (pores, holes, shadow).
+    pub empty_pixels: usize,
+    /// Pixels unassigned as unlike every phase.
+    pub outlier_pixels: usize,
+    /// Pixels changed by each smoothing sweep.
+    pub sweep_changes: Vec<usize>,
+    /// Pixels moved by the minimum-feature-size rule.
+    pub small_feature_pixels: usize,
+}
+
+/// Scores the phases plus the empty pseudo-phase (index k), in the model's own space.
+struct FullScorer<'a> {
+    inner: Scorer<'a>,
+    k: usize,
+    space: Space,
+    /// The empty pseudo-phase: counts per pixel of each element in a pore.
+    empty_counts: Vec<f64>,
+    empty_point: Vec<f32>,
+    empty_log_norm: f64,
+}
+
+/// How rows relate to counts.
+#[derive(Clone, Copy)]
+enum Space {
+    /// Rows are counts; phases are Poisson rates.
+    Counts,
+    /// Rows are transformed counts with (about) this noise variance per dimension.
+    Transformed(Stabilise, f64),
+}
+
+impl FullScorer<'_> {
+    /// ln (w N(row | c)), for the phases and the empty pseudo-phase.
+    #[inline]
+    fn score(&self, c: usize, row: &[f32]) -> f64 {
+        if c < self.k {
+            return self.inner.score(c, row);
+        }
+        match self.space {
+            Space::Counts => {
+                self.empty_log_norm
+                    + row
+                        .iter()
+                        .zip(&self.empty_counts)
+                        .map(|(&x, &l)| f64::from(x) * l.ln() - l)
+                        .sum::<f64>()
+            }
+            Space::Transformed(_, var) => {
+                self.empty_log_norm - 0.5 * f64::from(dist2(row, &self.empty_point)) / var
+            }
+        }
+    }
+
+    /// Discrepancy of `row` from a point given in counts (χ²-like, d degrees of freedom).
+    fn discrepancy_to_counts(&self, row: &[f32], counts: &[f64], scratch: &mut Vec<f32>) -> f64 {
+        match self.space {
+            Space::Counts => poisson::deviance(row, counts),
+            Space::Transformed(st, var) => {
+                scratch.clear();
+                scratch.extend(counts.iter().map(|&c| st.apply(c as f32)));
+                f64::from(dist2(row, scratch)) / var
+            }
+        }
+    }
+}
+
+/// Points along the mixing curves of every pair of endpoints (phases and the empty
+/// pseudo-phase), in counts: a mixed pixel's expected counts are t·a + (1 − t)·b.
+fn mixing_points(ends: &[Vec<f64>]) -> Vec<Vec<f64>> {
+    let mut pts = Vec::new();
+    for a in 0..ends.len() {
+        for b in a + 1..ends.len() {
+            for s in 1..20 {
+                let t = s as f64 / 20.0;
+                pts.push(ends[a].iter().zip(&ends[b]).map(|(x, y)| t * x + (1.0 - t) * y).collect());
+            }
+        }
+    }
+    pts
+}
+
+const NEIGHBOURS: [(isize, isize, f64); 8] = [
+    (-1, 0, 1.0),
+    (1, 0, 1.0),
+    (0, -1, 1.0),
+    (0, 1, 1.0),
+    (-1, -1, std::f64::consts::FRAC_1_SQRT_2),
+    (1, -1, std::f64::consts::FRAC_1_SQRT_2),
+    (-1, 1, std::f64::consts::FRAC_1_SQRT_2),
+    (1, 1, std::f64::consts::FRAC_1_SQRT_2),
+];
+
+/// Runs the refine stage.
+pub fn refine(f: &Features, clusters: &Clusters, params: &ValidRefineParams) -> Segmentation {
+    let p = params.get();
+    let (w, h, d, k) = (f.width, f.height, f.dims, clusters.k());
+    let n = w * h;
+    let st = f.transform.params().stabilise;
+    let empty_fraction = (f.mask.iter().filter(|m| !**m).count() as f64 / n as f64).clamp(1e-3, 0.5);
+    let (space, empty_counts, empty_log_norm) = match clusters {
+        Clusters::Poisson { .. } => (
+            Space::Counts,
+            // A pore still picks up a little: stray and scattered X-rays (common practice,
+            // no source: 0.05 counts per pixel and element).
+            vec![0.05; d],
+            empty_fraction.ln(),
+        ),
+        _ => {
+            let var = clusters.noise_variance().max(1e-6);
+            (
+                Space::Transformed(st, var),
+                vec![0.0; d],
+                empty_fraction.ln() - 0.5 * d as f64 * (2.0 * std::f64::consts::PI * var).ln(),
+            )
+        }
+    };
+    let fs = FullScorer {
+        inner: clusters.scorer(),
+        k,
+        space,
+        empty_point: empty_counts.iter().map(|&c| st.apply(c as f32)).collect(),
+        empty_counts,
+        empty_log_norm,
+    };
+    let outlier_threshold = if p.outlier_tail > 0.0 {
+        ChiSquared::new(d as f64).map_or(f64::INFINITY, |c| c.inverse_cdf(1.0 - p.outlier_tail))
+    } else {
+        f64::INFINITY
+    };
+    let mut ends: Vec<Vec<f64>> = (0..k)
+        .map(|c| match space {
+            Space::Counts => clusters.mean(c).to_vec(),
+            Space::Transformed(st, _) => clusters.mean(c).iter().map(|&m| st.invert(m).max(0.0)).collect(),
+        })
+        .collect();
+    ends.push(fs.empty_counts.clone());
+    let curves = mixing_points(&ends);
+    let empty_label = k as u16;
+    let outlier_label = (k + 1) as u16;
+
+    // Most likely label, its posterior, and which pixels are fixed.
+    let first: Vec<(u16, f32)> = (0..n)
+        .into_par_iter()
+        .with_min_len(4096)
+        .map_init(
+            || (vec![0.0f64; k + 1], Vec::new()),
+            |(lp, scratch), i| {
+                if !f.mask[i] {
+                    return (empty_label, 0.0);
+                }
+                let row = f.row(i);
+                let mut best = 0;
+                for c in 0..=k {
+                    lp[c] = fs.score(c, row);
+                    if lp[c] > lp[best] {
+                        best = c;
+                    }
+                }
+                let max = lp[best];
+                let z: f64 = lp.iter().map(|&v| (v - max).exp()).sum();
+                let post = (1.0 / z) as f32;
+                if best < k && fs.inner.discrepancy(best, row) > outlier_threshold {
+                    let mixed = curves
+                        .iter()
+                        .any(|pt| fs.discrepancy_to_counts(row, pt, scratch) <= outlier_threshold);
+                    if !mixed {
+                        return (outlier_label, 0.0);
+                    }
+                }
+                (best as u16, post)
+            },
+        )
+        .collect();
+    let ml: Vec<u16> = first.iter().map(|x| x.0).collect();
+    let mut confidence: Vec<f32> = first.iter().map(|x| x.1).collect();
+    let fixed: Vec<bool> = (0..n).map(|i| !f.mask[i] || ml[i] == outlier_label).collect();
+    let mut labels = ml.clone();
+
+    let mut sweep_changes = Vec::new();
+    if p.smoothing > 0.0 {
+        let beta = p.smoothing;
+        let mut dirty = vec![true; n];
+        for _ in 0..p.max_sweeps {
+            let mut changed_total = 0;
+            let mut next_dirty = vec![false; n];
+            for colour in 0..4usize {
+                let (cx, cy) = (colour % 2, colour / 2);
+                let updates: Vec<(usize, u16)> = (cy..h)
+                    .into_par_iter()
+                    .step_by(2)
+                    .flat_map_iter(|y| {
+                        let labels = &labels;
+                        let dirty = &dirty;
+                        let fixed = &fixed;
+                        let ml = &ml;
+                        let fs = &fs;
+                        (cx..w).step_by(2).filter_map(move |x| {
+                            let i = y * w + x;
+                            if fixed[i] || !dirty[i] {
+                                return None;
+                            }
+                            let mut cands = [u16::MAX; 9];
+                            cands[0] = ml[i];
+                            let mut nc = 1;
+                            let mut votes = [(0u16, 0.0f64); 8];
+                            let mut nv = 0;
+                            for (dx, dy, wt) in NEIGHBOURS {
+                                let (xx, yy) = (x as isize + dx, y as isize + dy);
+                                if xx < 0 || yy < 0 || xx >= w as isize || yy >= h as isize {
+                                    continue;
+                                }
+                                let l = labels[yy as usize * w + xx as usize];
+                                if l == outlier_label {
+                                    continue;
+                                }
+                                votes[nv] = (l, wt);
+                                nv += 1;
+                                if !cands[..nc].contains(&l) {
+                                    cands[nc] = l;
+                                    nc += 1;
+                                }
+                            }
+                            let cur = labels[i];
+                            if nc == 1 && cands[0] == cur {
+                                return None;
+                            }
+                            let row = f.row(i);
+                            let energy = |c: u16| {
+                                let prior: f64 = votes[..nv].iter().filter(|v| v.0 == c).map(|v| v.1).sum();
+                                fs.score(c as usize, row) + beta * prior
+                            };
+                            let mut best = (cur, energy(cur));
+                            for &c in &cands[..nc] {
+                                if c == cur {
+                                    continue;
+                                }
+                                let e = energy(c);
+                                if e > best.1 || (e == best.1 && c < best.0) {
+                                    best = (c, e);
+                                }
+                            }
+                            (best.0 != cur).then_some((i, best.0))
+                        })
+                    })
+                    .collect();
+                for &(i, l) in &updates {
+                    labels[i] = l;
+                    let (x, y) = (i % w, i / w);
+                    for yy in y.saturating_sub(1)..=(y + 1).min(h - 1) {
+                        for xx in x.saturating_sub(1)..=(x + 1).min(w - 1) {
+                            next_dirty[yy * w + xx] = true;
+                        }
+                    }
+                }
+                changed_total += updates.len();
+            }
+            sweep_changes.push(changed_total);
+            dirty = next_dirty;
+            if changed_total == 0 {
+                break;
+            }
+        }
+    }
+
+    let small_feature_pixels = if p.min_feature_px > 1 {
+        remove_small_features(&mut labels, w, h, &fixed, p.min_feature_px, outlier_label)
+    } else {
+        0
+    };
+
+    // Posterior of the final label where smoothing changed it.
+    labels
+        .par_iter()
+        .zip(ml.par_iter())
+        .zip(confidence.par_iter_mut())
+        .enumerate()
+        .for_each(|(i, ((&l, &m), conf))| {
+            if l != m && (l as usize) <= k && f.mask[i] {
+                let row = f.row(i);
+                let s: Vec<f64> = (0..=k).map(|c| fs.score(c, row)).collect();
+                let max = s.iter().cloned().fold(f64::NEG_INFINITY, f64::max);
+                let z: f64 = s.iter().map(|v| (v - max).exp()).sum();
+                *conf = ((s[l as usize] - max).exp() / z) as f32;
+            }
+        });
+
+    let mut empty_pixels = 0;
+    let mut outlier_pixels = 0;
+    let out: Vec<u16> = labels
+        .iter()
+        .map(|&l| {
+            if l == empty_label {
+                empty_pixels += 1;
+                0
+            } else if l == outlier_label {
+                outlier_pixels += 1;
+                0
+            } else {
+                l + 1
+            }
+        })
+        .collect();
+    for (c, &l) in confidence.iter_mut().zip(&out) {
+        if l == 0 {
+            *c = 0.0;
+        }
+    }
+    Segmentation {
+        width: w,
+        height: h,
+        labels: out,
+        confidence,
+        empty_pixels,
+        outlier_pixels,
+        sweep_changes,
+        small_feature_pixels,
+    }
+}
+
+/// Gives connected features (8-connected) smaller than `min_px` to the label that borders
+/// them most. Returns the number of pixels moved.
+fn remove_small_features(labels: &mut [u16], w: usize, h: usize, fixed: &[bool], min_px: usize, outlier: u16) -> usize {
+    use image::{ImageBuffer, Luma};
+    use imageproc::region_labelling::{connected_components, Connectivity};
+    let img: ImageBuffer<Luma<u16>, Vec<u16>> =
+        ImageBuffer::from_raw(w as u32, h as u32, labels.iter().map(|&l| l + 1).collect()).expect("size matches");
+    let comp = connected_components(&img, Connectivity::Eight, Luma([0u16]));
+    let comp = comp.into_raw();
+    let ncomp = comp.iter().copied().max().unwrap_or(0) as usize;
+    let mut size = vec![0usize; ncomp + 1];
+    for &c in &comp {
+        size[c as usize] += 1;
+    }
+    let mut moved = 0;
+    let mut border: std::collections::BTreeMap<u32, Vec<(u16, usize)>> = Default::default();
+    for i in 0..w * h {
+        let c = comp[i];
+        if size[c as usize] >= min_px || fixed[i] {
+            continue;
+        }
+        let (x, y) = (i % w, i / w);
+        for yy in y.saturating_sub(1)..=(y + 1).min(h - 1) {
+            for xx in x.saturating_sub(1)..=(x + 1).min(w - 1) {
+                let j = yy * w + xx;
+                if comp[j] != c && labels[j] != outlier {
+                    let e = border.entry(c).or_default();
+                    match e.iter_mut().find(|(l, _)| *l == labels[j]) {
+                        Some(v) => v.1 += 1,
+                        None => e.push((labels[j], 1)),
+                    }
+                }
+            }
+        }
+    }
+    let target: std::collections::BTreeMap<u32, u16> = border
+        .into_iter()
+        .filter_map(|(c, v)| v.into_iter().max_by_key(|&(l, n)| (n, std::cmp::Reverse(l))).map(|(l, _)| (c, l)))
+        .collect();
+    for i in 0..w * h {
+        if let Some(&l) = target.get(&comp[i]) {
+            if !fixed[i] {
+                labels[i] = l;
+                moved += 1;
+            }
+        }
+    }
+    moved
+}
+
+/// Per phase of the model (index c for label c + 1): pixels, and the fraction of them whose
+/// eight neighbours all carry the same label. A real phase has an inside; a band of mixed
+/// pixels along the boundary of two others has next to none.
+pub fn interior_fractions(seg: &Segmentation, k: usize) -> Vec<(usize, f64)> {
+    let (w, h) = (seg.width, seg.height);
+    let mut pixels = vec![0usize; k];
+    let mut inside = vec![0usize; k];
+    for y in 0..h {
+        for x in 0..w {
+            let l = seg.labels[y * w + x];
+            if l == 0 {
+                continue;
+            }
+            let c = l as usize - 1;
+            pixels[c] += 1;
+            if x == 0 || y == 0 || x + 1 == w || y + 1 == h {
+                continue;
+            }
+            let all = (y - 1..=y + 1).all(|yy| (x - 1..=x + 1).all(|xx| seg.labels[yy * w + xx] == l));
+            if all {
+                inside[c] += 1;
+            }
+        }
+    }
+    (0..k)
+        .map(|c| (pixels[c], if pixels[c] > 0 { inside[c] as f64 / pixels[c] as f64 } else { 0.0 }))
+        .collect()
+}

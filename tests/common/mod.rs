@@ -1,0 +1,65 @@
+//! Helpers shared by the integration tests: scoring a segmentation against ground truth.
+
+#![allow(dead_code)]
+
+/// Agreement of predicted labels with true labels (both 0 = void/unassigned).
+pub struct Score {
+    /// Fraction of pixels whose matched label equals the truth.
+    pub accuracy: f64,
+    /// For each true phase (index = label − 1): (true area fraction, predicted area
+    /// fraction of its matched phase), or None if no predicted phase matched it.
+    pub phases: Vec<(f64, Option<f64>)>,
+    /// Predicted phases with no true phase matched to them.
+    pub extra_phases: usize,
+    /// Predicted label → true label.
+    pub mapping: Vec<(u16, u16)>,
+}
+
+/// Matches predicted to true labels one-to-one by largest overlap (greedy on the confusion
+/// matrix), predicted 0 to true 0, and scores the result.
+pub fn score(pred: &[u16], truth: &[u16]) -> Score {
+    assert_eq!(pred.len(), truth.len());
+    let kp = *pred.iter().max().unwrap() as usize + 1;
+    let kt = *truth.iter().max().unwrap() as usize + 1;
+    let mut conf = vec![vec![0usize; kt]; kp];
+    for (&p, &t) in pred.iter().zip(truth) {
+        conf[p as usize][t as usize] += 1;
+    }
+    let mut pairs: Vec<(usize, usize, usize)> = Vec::new();
+    for p in 1..kp {
+        for t in 1..kt {
+            pairs.push((conf[p][t], p, t));
+        }
+    }
+    pairs.sort_by(|a, b| b.cmp(a));
+    let mut map_p = vec![None; kp];
+    let mut used_t = vec![false; kt];
+    map_p[0] = Some(0usize);
+    used_t[0] = true;
+    for (n, p, t) in pairs {
+        if n > 0 && map_p[p].is_none() && !used_t[t] {
+            map_p[p] = Some(t);
+            used_t[t] = true;
+        }
+    }
+    let n = pred.len() as f64;
+    let correct = pred
+        .iter()
+        .zip(truth)
+        .filter(|(&p, &t)| map_p[p as usize] == Some(t as usize))
+        .count();
+    let count = |v: &[u16], l: usize| v.iter().filter(|&&x| x as usize == l).count() as f64 / n;
+    let phases = (1..kt)
+        .map(|t| {
+            let p = (1..kp).find(|&p| map_p[p] == Some(t));
+            (count(truth, t), p.map(|p| count(pred, p)))
+        })
+        .collect();
+    let mapping = (0..kp).filter_map(|p| map_p[p].map(|t| (p as u16, t as u16))).collect();
+    Score {
+        accuracy: correct as f64 / n,
+        phases,
+        extra_phases: (1..kp).filter(|&p| map_p[p].is_none() && pred.iter().any(|&x| x as usize == p)).count(),
+        mapping,
+    }
+}
