@@ -7,8 +7,16 @@ use std::path::PathBuf;
 
 use clap::{Parser, Subcommand};
 
+use serde::Deserialize;
+
+use crate::cluster::select::{ClusterParams, PhaseCount};
+use crate::cluster::Method;
 use crate::error::{Error, Result};
 use crate::io::{load_field, Limits};
+use crate::pipeline::MapOptions;
+use crate::prepare::{Denoise, MinCounts, PrepareParams, Stabilise};
+use crate::refine::RefineParams;
+use crate::stack::FieldMetadata;
 
 /// Phase maps from SEM-EDS element maps.
 #[derive(Debug, Parser)]
@@ -25,6 +33,12 @@ pub struct LimitArgs {
     /// Largest number of pixels accepted in one map (guards against hostile headers).
     #[arg(long, value_name = "N", default_value_t = Limits::DEFAULT_MAX_PIXELS)]
     pub max_pixels: u64,
+}
+
+impl Default for LimitArgs {
+    fn default() -> Self {
+        LimitArgs { max_pixels: Limits::DEFAULT_MAX_PIXELS }
+    }
 }
 
 /// The subcommands.
@@ -45,6 +59,27 @@ pub enum Command {
         #[command(flatten)]
         limits: LimitArgs,
     },
+    /// The main job: cluster a field's pixels into phases and report each phase.
+    ///
+    /// Writes labels.png, phase-map.png, report.json and phases.csv into OUT, atomically.
+    Map {
+        /// Folder of element maps, or HDF5 file.
+        input: PathBuf,
+        /// Output folder (must be empty or new, unless --force).
+        #[arg(short, long, value_name = "OUT")]
+        output: PathBuf,
+        #[command(flatten)]
+        map: MapArgs,
+    },
+    /// Map the bundled sample field (an invented solder joint) and compare with its truth.
+    Demo {
+        /// Output folder.
+        #[arg(short, long, value_name = "DIR", default_value = "modalmap-demo")]
+        output: PathBuf,
+        /// Replace the folder's contents if it exists.
+        #[arg(long)]
+        force: bool,
+    },
     /// Write a synthetic field with known phases (an invented scenario) as a maps folder.
     Synth {
         /// Folder to write the maps, BSE image and field.toml into.
@@ -54,6 +89,184 @@ pub enum Command {
         #[arg(long, value_name = "FILE")]
         truth: Option<PathBuf>,
     },
+}
+
+/// Options of `map` (each may also come from --config; the command line wins).
+#[derive(Debug, Clone, Default, clap::Args)]
+pub struct MapArgs {
+    /// Number of phases, or `auto` (BIC; `auto:MAX` sets the largest count tried).
+    #[arg(long, value_name = "N|auto")]
+    pub phases: Option<PhaseCount>,
+    /// Clustering method: poisson (mixture of Poisson counts, default), kmeans, gmm.
+    #[arg(long, value_enum)]
+    pub method: Option<Method>,
+    /// Seed of every random choice (same seed, same result).
+    #[arg(long)]
+    pub seed: Option<u64>,
+    /// Pixel size in µm (overrides the field's metadata).
+    #[arg(long, value_name = "UM")]
+    pub pixel_size: Option<f64>,
+    /// Beam energy in kV (overrides the field's metadata).
+    #[arg(long, value_name = "KV")]
+    pub kv: Option<f64>,
+    /// Sum counts over N × N pixel blocks first.
+    #[arg(long, value_name = "N")]
+    pub bin: Option<usize>,
+    /// Denoising before clustering: none, gaussian:SIGMA or median:RADIUS.
+    #[arg(long, value_name = "METHOD")]
+    pub denoise: Option<Denoise>,
+    /// Variance-stabilising transform for kmeans and gmm.
+    #[arg(long, value_enum)]
+    pub transform: Option<Stabilise>,
+    /// Pixels with fewer total counts are empty (default: 15 % of the median total).
+    #[arg(long, value_name = "COUNTS")]
+    pub min_counts: Option<f64>,
+    /// Strength of the spatial prior (0 = off; default 1).
+    #[arg(long, value_name = "BETA")]
+    pub smoothing: Option<f64>,
+    /// Merge features smaller than this many pixels into their surroundings.
+    #[arg(long, value_name = "PX")]
+    pub min_feature: Option<usize>,
+    /// With --phases auto: dissolve phases smaller than this share of the pixels.
+    #[arg(long, value_name = "FRACTION")]
+    pub min_phase: Option<f64>,
+    /// TOML file with any of these options (keys as the long flag names).
+    #[arg(long, value_name = "FILE")]
+    pub config: Option<PathBuf>,
+    /// Worker threads (default: all cores). Results do not depend on it.
+    #[arg(long, value_name = "N")]
+    pub threads: Option<usize>,
+    /// Replace the contents of a non-empty output folder.
+    #[arg(long)]
+    pub force: bool,
+    /// Print nothing but errors.
+    #[arg(long)]
+    pub quiet: bool,
+    #[command(flatten)]
+    pub limits: LimitArgs,
+}
+
+/// The configuration file: the same keys as the flags.
+#[derive(Debug, Clone, Default, Deserialize)]
+#[serde(deny_unknown_fields, rename_all = "kebab-case")]
+struct ConfigFile {
+    phases: Option<String>,
+    method: Option<String>,
+    seed: Option<u64>,
+    pixel_size: Option<f64>,
+    kv: Option<f64>,
+    bin: Option<usize>,
+    denoise: Option<String>,
+    transform: Option<String>,
+    min_counts: Option<f64>,
+    smoothing: Option<f64>,
+    min_feature: Option<usize>,
+    min_phase: Option<f64>,
+    threads: Option<usize>,
+}
+
+fn read_config(path: &std::path::Path) -> Result<ConfigFile> {
+    let text = std::fs::read_to_string(path)
+        .map_err(|e| Error::options_in(path, format!("cannot be read: {e}"), "check the --config path"))?;
+    toml::from_str(&text).map_err(|e| {
+        Error::options_in(
+            path,
+            format!("is not a valid configuration: {}", e.message()),
+            "use the long option names as keys, e.g. phases = \"auto\", method = \"poisson\", bin = 2",
+        )
+    })
+}
+
+fn parse_in<T: std::str::FromStr>(path: &std::path::Path, key: &str, v: Option<String>) -> Result<Option<T>>
+where
+    T::Err: std::fmt::Display,
+{
+    v.map(|s| s.parse::<T>().map_err(|e| Error::options_in(path, format!("{key} = \"{s}\": {e}"), format!("see `modalmap map --help` for the values of --{key}"))))
+        .transpose()
+}
+
+fn parse_value_enum<T: clap::ValueEnum>(path: &std::path::Path, key: &str, v: Option<String>) -> Result<Option<T>> {
+    v.map(|s| T::from_str(&s, false).map_err(|e| Error::options_in(path, format!("{key} = \"{s}\": {e}"), format!("see `modalmap map --help` for the values of --{key}"))))
+        .transpose()
+}
+
+impl MapArgs {
+    /// Merges the flags with the configuration file (flags win) into checked options.
+    pub fn resolve(&self) -> Result<(MapOptions, FieldMetadata, Option<usize>)> {
+        let cfg = match &self.config {
+            Some(p) => Some((p.clone(), read_config(p)?)),
+            None => None,
+        };
+        let (cp, c) = match cfg {
+            Some((p, c)) => (p, c),
+            None => (PathBuf::new(), ConfigFile::default()),
+        };
+        let phases = self.phases.or(parse_in::<PhaseCount>(&cp, "phases", c.phases)?);
+        let method = self.method.or(parse_value_enum::<Method>(&cp, "method", c.method)?);
+        let denoise = self.denoise.or(parse_in::<Denoise>(&cp, "denoise", c.denoise)?);
+        let transform = self.transform.or(parse_value_enum::<Stabilise>(&cp, "transform", c.transform)?);
+        let d = MapOptions::default();
+        let min_counts = self.min_counts.or(c.min_counts);
+        let opts = MapOptions {
+            prepare: PrepareParams {
+                bin: self.bin.or(c.bin).unwrap_or(d.prepare.bin),
+                denoise: denoise.unwrap_or(d.prepare.denoise),
+                stabilise: transform.unwrap_or(d.prepare.stabilise),
+                min_counts: min_counts.map_or(d.prepare.min_counts, |counts| MinCounts::Absolute { counts }),
+                dequantise: d.prepare.dequantise,
+            },
+            cluster: ClusterParams {
+                method: method.unwrap_or(d.cluster.method),
+                phases: phases.unwrap_or(d.cluster.phases),
+                seed: self.seed.or(c.seed).unwrap_or(d.cluster.seed),
+                ..d.cluster
+            },
+            refine: RefineParams {
+                smoothing: self.smoothing.or(c.smoothing).unwrap_or(d.refine.smoothing),
+                min_feature_px: self.min_feature.or(c.min_feature).unwrap_or(d.refine.min_feature_px),
+                ..d.refine
+            },
+            min_phase_fraction: self.min_phase.or(c.min_phase).unwrap_or(d.min_phase_fraction),
+        };
+        let md = FieldMetadata {
+            pixel_size_um: self.pixel_size.or(c.pixel_size),
+            beam_kv: self.kv.or(c.kv),
+            live_time_s: None,
+        };
+        for (name, v) in [("--pixel-size", md.pixel_size_um), ("--kv", md.beam_kv)] {
+            if let Some(v) = v {
+                if !(v.is_finite() && v > 0.0) {
+                    return Err(Error::options(format!("{name} {v} is not a positive number"), format!("give {name} as a positive number")));
+                }
+            }
+        }
+        Ok((opts, md, self.threads.or(c.threads)))
+    }
+}
+
+/// Runs `map` on one field into `out`; returns the report.
+pub fn map_field(input: &std::path::Path, out: &std::path::Path, args: &MapArgs) -> Result<crate::report::Report> {
+    let (opts, md, _) = args.resolve()?;
+    let valid = opts.check()?;
+    let dir = crate::report::prepare_output(out, args.force)?;
+    let mut field = load_field(input, &Limits { max_pixels: args.limits.max_pixels })?;
+    field.stack.override_metadata(&md);
+    let result = crate::pipeline::map_stack(&field.stack, &valid)?;
+    let report = crate::report::build(&field, &result, valid.options(), field.warnings.clone())?;
+    crate::report::write_outputs(&dir, &report, &result)?;
+    dir.commit()?;
+    Ok(report)
+}
+
+fn install_threads(n: Option<usize>) -> Result<()> {
+    if let Some(n) = n.filter(|&n| n > 0) {
+        if n > 1024 {
+            return Err(Error::options(format!("--threads {n} is too many"), "use at most 1024 threads, or leave it out"));
+        }
+        // Fails only if a pool was installed before, which is harmless.
+        let _ = rayon::ThreadPoolBuilder::new().num_threads(n).build_global();
+    }
+    Ok(())
 }
 
 /// Runs a parsed command line; returns the process exit code on success.
@@ -80,6 +293,33 @@ pub fn run(cli: Cli) -> Result<u8> {
             }
             Ok(0)
         }
+        Command::Map { input, output, map } => {
+            install_threads(map.resolve()?.2)?;
+            let report = map_field(&input, &output, &map)?;
+            if !map.quiet {
+                print!("{}", crate::report::summary(&report));
+                println!("\n  outputs in {}", output.display());
+            }
+            Ok(0)
+        }
+        Command::Demo { output, force } => {
+            let field = crate::synth::sample_field()?;
+            let input = output.with_extension("input");
+            let _ = std::fs::remove_dir_all(&input);
+            crate::synth::write_folder(&field, &input)?;
+            let args = MapArgs { force, ..MapArgs::default() };
+            let report = map_field(&input, &output, &args)?;
+            print!("{}", crate::report::summary(&report));
+            let labels = crate::io::read_raster(&output.join("labels.png"), &Limits::default())?;
+            let pred: Vec<u16> = labels.data.iter().map(|&v| v as u16).collect();
+            let agree = pixel_agreement(&pred, &field.truth);
+            println!(
+                "\n  the sample is synthetic, so its true phases are known: {:.1} % of pixels agree with them",
+                100.0 * agree
+            );
+            println!("  sample maps in {}, outputs in {}", input.display(), output.display());
+            Ok(0)
+        }
         Command::Synth { output, truth } => {
             let field = crate::synth::sample_field()?;
             crate::synth::write_folder(&field, &output)?;
@@ -101,4 +341,27 @@ pub fn run(cli: Cli) -> Result<u8> {
             Ok(0)
         }
     }
+}
+
+/// Share of pixels whose label matches the truth after the best one-to-one matching of
+/// labels by overlap (0 matches 0).
+pub fn pixel_agreement(pred: &[u16], truth: &[u16]) -> f64 {
+    let kp = pred.iter().copied().max().unwrap_or(0) as usize + 1;
+    let kt = truth.iter().copied().max().unwrap_or(0) as usize + 1;
+    let mut conf = vec![0usize; kp * kt];
+    for (&p, &t) in pred.iter().zip(truth) {
+        conf[p as usize * kt + t as usize] += 1;
+    }
+    let mut pairs: Vec<(usize, usize, usize)> = (1..kp).flat_map(|p| (1..kt).map(move |t| (p, t))).map(|(p, t)| (conf[p * kt + t], p, t)).collect();
+    pairs.sort_by(|a, b| b.cmp(a));
+    let (mut used_p, mut used_t) = (vec![false; kp], vec![false; kt]);
+    let mut correct = conf[0];
+    for (n, p, t) in pairs {
+        if !used_p[p] && !used_t[t] {
+            used_p[p] = true;
+            used_t[t] = true;
+            correct += n;
+        }
+    }
+    correct as f64 / pred.len().max(1) as f64
 }

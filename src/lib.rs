@@ -17,6 +17,7 @@ pub mod physics;
 pub mod pipeline;
 pub mod prepare;
 pub mod refine;
+pub mod report;
 pub mod stack;
 pub mod synth;
 

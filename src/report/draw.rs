@@ -1,0 +1,192 @@
+//! Drawing the phase map: a colour-blind-safe palette, bitmap text, legend and scale bar.
+
+use font8x8::UnicodeFonts;
+
+/// Okabe & Ito's colour-blind-safe set ("Color Universal Design", 2002) without its black,
+/// followed by further distinct colours for fields with more phases. Black is kept for
+/// unassigned pixels.
+pub const PALETTE: [[u8; 3]; 14] = [
+    [230, 159, 0],   // orange
+    [86, 180, 233],  // sky blue
+    [0, 158, 115],   // bluish green
+    [240, 228, 66],  // yellow
+    [0, 114, 178],   // blue
+    [213, 94, 0],    // vermillion
+    [204, 121, 167], // reddish purple
+    [153, 153, 153], // grey
+    [255, 255, 255], // white
+    [120, 70, 20],   // brown
+    [150, 220, 180], // pale green
+    [110, 60, 150],  // violet
+    [255, 200, 200], // pink
+    [60, 60, 120],   // slate
+];
+
+/// Colour of unassigned pixels.
+pub const UNASSIGNED: [u8; 3] = [0, 0, 0];
+
+/// Colour of phase `id` (1-based).
+pub fn colour(id: u16) -> [u8; 3] {
+    if id == 0 {
+        UNASSIGNED
+    } else {
+        PALETTE[(id as usize - 1) % PALETTE.len()]
+    }
+}
+
+/// An RGB canvas.
+pub struct Canvas {
+    /// Width.
+    pub width: usize,
+    /// Height.
+    pub height: usize,
+    /// Interleaved RGB.
+    pub rgb: Vec<u8>,
+}
+
+impl Canvas {
+    /// A canvas filled with one colour.
+    pub fn new(width: usize, height: usize, fill: [u8; 3]) -> Canvas {
+        Canvas {
+            width,
+            height,
+            rgb: fill.iter().copied().cycle().take(width * height * 3).collect(),
+        }
+    }
+
+    /// Sets a pixel (ignored outside).
+    pub fn put(&mut self, x: usize, y: usize, c: [u8; 3]) {
+        if x < self.width && y < self.height {
+            let i = 3 * (y * self.width + x);
+            self.rgb[i..i + 3].copy_from_slice(&c);
+        }
+    }
+
+    /// Fills a rectangle.
+    pub fn rect(&mut self, x: usize, y: usize, w: usize, h: usize, c: [u8; 3]) {
+        for yy in y..y + h {
+            for xx in x..x + w {
+                self.put(xx, yy, c);
+            }
+        }
+    }
+
+    /// Draws text with the 8 × 8 bitmap font at an integer `scale`; returns the width used.
+    /// Characters the font lacks are drawn as `?`; a dash stands for en and em dashes.
+    pub fn text(&mut self, x: usize, y: usize, s: &str, scale: usize, c: [u8; 3]) -> usize {
+        let mut cx = x;
+        for ch in s.chars() {
+            let ch = match ch {
+                '–' | '—' => '-',
+                other => other,
+            };
+            let glyph = font8x8::BASIC_FONTS
+                .get(ch)
+                .or_else(|| font8x8::LATIN_FONTS.get(ch))
+                .or_else(|| font8x8::BASIC_FONTS.get('?'))
+                .unwrap_or([0; 8]);
+            for (row, bits) in glyph.iter().enumerate() {
+                for col in 0..8 {
+                    if bits & (1 << col) != 0 {
+                        self.rect(cx + col * scale, y + row * scale, scale, scale, c);
+                    }
+                }
+            }
+            cx += 8 * scale;
+        }
+        cx - x
+    }
+}
+
+/// A round scale-bar length (1, 2 or 5 × 10ⁿ µm) close to a fifth of the field width.
+pub fn scale_bar_um(field_width_um: f64) -> f64 {
+    let target = field_width_um / 5.0;
+    let p = 10f64.powf(target.log10().floor());
+    [5.0, 2.0, 1.0].into_iter().map(|m| m * p).find(|&v| v <= target).unwrap_or(p)
+}
+
+/// A legend entry.
+pub struct LegendEntry {
+    /// Phase id (0 = unassigned).
+    pub id: u16,
+    /// Text beside the swatch.
+    pub text: String,
+}
+
+/// Renders labels (0 = unassigned) as a colour image with a legend on the right and, when
+/// the pixel size is known, a scale bar. Small fields are enlarged by pixel replication so
+/// the text stays readable.
+pub fn phase_map(labels: &[u16], w: usize, h: usize, legend: &[LegendEntry], pixel_size_um: Option<f64>, title: &str) -> Canvas {
+    let zoom = (600 / w.max(h)).clamp(1, 8);
+    let (mw, mh) = (w * zoom, h * zoom);
+    let ts = if mw >= 1500 { 3 } else { 2 };
+    let line_h = 12 * ts;
+    let legend_w = 16 * ts + legend.iter().map(|e| e.text.chars().count()).max().unwrap_or(10) * 8 * ts + 8 * ts;
+    let header = line_h + 4 * ts;
+    let width = mw + legend_w + 8 * ts;
+    let height = (mh + header).max(header + legend.len() * line_h + 8 * ts);
+    let bg = [255, 255, 255];
+    let ink = [0, 0, 0];
+    let mut c = Canvas::new(width, height, bg);
+    c.text(4 * ts, 2 * ts, title, ts, ink);
+    for y in 0..h {
+        for x in 0..w {
+            let col = colour(labels[y * w + x]);
+            c.rect(x * zoom, header + y * zoom, zoom, zoom, col);
+        }
+    }
+    let lx = mw + 6 * ts;
+    for (i, e) in legend.iter().enumerate() {
+        let y = header + i * line_h;
+        c.rect(lx - 1, y - 1, 8 * ts + 2, 8 * ts + 2, ink);
+        c.rect(lx, y, 8 * ts, 8 * ts, colour(e.id));
+        c.text(lx + 12 * ts, y, &e.text, ts, ink);
+    }
+    if let Some(px) = pixel_size_um {
+        let field_um = w as f64 * px;
+        let len_um = scale_bar_um(field_um);
+        let len = ((len_um / px) * zoom as f64).round() as usize;
+        let label = if len_um >= 1.0 { format!("{len_um} µm") } else { format!("{} nm", len_um * 1000.0) };
+        let bar_h = 3 * ts;
+        let tw = label.chars().count() * 8 * ts;
+        let (bx, by) = (4 * ts, header + mh - bar_h - 14 * ts);
+        c.rect(bx - ts, by - ts, len.max(tw) + 2 * ts, bar_h + 12 * ts, bg);
+        c.rect(bx, by, len, bar_h, ink);
+        c.text(bx, by + bar_h + 2 * ts, &label, ts, ink);
+    }
+    c
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn scale_bar_is_round() {
+        assert_eq!(scale_bar_um(76.8), 10.0);
+        assert_eq!(scale_bar_um(300.0), 50.0);
+        assert_eq!(scale_bar_um(0.9), 0.1);
+        assert_eq!(scale_bar_um(12.0), 2.0);
+    }
+
+    #[test]
+    fn palette_colours_are_distinct_and_never_black() {
+        for (i, a) in PALETTE.iter().enumerate() {
+            assert_ne!(*a, UNASSIGNED);
+            for b in &PALETTE[i + 1..] {
+                assert_ne!(a, b);
+            }
+        }
+        // Okabe & Ito's orange and sky blue, as published.
+        assert_eq!(colour(1), [230, 159, 0]);
+        assert_eq!(colour(2), [86, 180, 233]);
+    }
+
+    #[test]
+    fn text_draws_ink() {
+        let mut c = Canvas::new(40, 10, [255; 3]);
+        let w = c.text(0, 0, "Fe µ", 1, [0; 3]);
+        assert_eq!(w, 32);
+        assert!(c.rgb.iter().any(|&v| v == 0));
+    }
+}

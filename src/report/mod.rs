@@ -1,0 +1,334 @@
+//! Report: what `map` writes and prints.
+//!
+//! Takes a [`MapResult`] and the [`LoadedField`] it came from; builds the serialisable
+//! [`Report`] (`report.json`, schema `modalmap.report/1`) and writes every output into a
+//! temporary folder beside OUT that is renamed into place at the end, so OUT is never left
+//! half-written.
+
+pub mod draw;
+mod output;
+
+use std::collections::BTreeMap;
+
+use serde::{Deserialize, Serialize};
+use sha2::{Digest, Sha256};
+
+pub use output::{prepare_output, OutputDir};
+
+use crate::cluster::select::{CurvePoint, PhaseCount};
+use crate::cluster::simplify::Simplification;
+use crate::error::{Error, Result};
+use crate::io::LoadedField;
+use crate::pipeline::{MapOptions, MapResult};
+
+/// The report's schema name.
+pub const SCHEMA: &str = "modalmap.report/1";
+
+/// The cautions every report carries.
+pub const CAUTIONS: [&str; 4] = [
+    "Compositions are apparent: counts normalised to 100 % with every k-factor set to 1. They are uncalibrated and semi-quantitative; bulk specimens need standards and matrix (ZAF or phi-rho-z) corrections for accurate numbers.",
+    "Area fractions are measured on this section; they estimate volume fractions only for an isotropic, uniform microstructure sampled over enough fields (ASTM E562, E1245). The interval reflects variation between tiles of this one field.",
+    "Phases near the noise floor of the maps (few pixels or small differences in counts) can be missed, merged or invented; check them against the BSE image and other fields.",
+    "Follow your laboratory's accredited procedures and the applicable standards for results that go into a materials report.",
+];
+
+/// One phase in `report.json`.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct PhaseEntry {
+    /// Phase id (pixel value in labels.png; 1 = largest).
+    pub id: u16,
+    /// Name.
+    pub name: String,
+    /// Pixels.
+    pub pixels: usize,
+    /// Share of all field pixels, 0..1.
+    pub area_fraction: f64,
+    /// 95 % confidence interval from tile-to-tile variation.
+    pub area_fraction_ci95: [f64; 2],
+    /// Mean raw counts per pixel.
+    pub mean: BTreeMap<String, f64>,
+    /// Standard deviation of raw counts per pixel.
+    pub sd: BTreeMap<String, f64>,
+    /// Apparent composition, % (see `composition_basis`).
+    pub composition_wt: BTreeMap<String, f64>,
+    /// How the composition was obtained.
+    pub composition_basis: String,
+    /// Separate features (8-connected).
+    pub particles: usize,
+    /// Mean equivalent-circle diameter, pixels.
+    pub mean_ecd_px: f64,
+    /// Mean equivalent-circle diameter, µm (when the pixel size is known).
+    pub mean_ecd_um: Option<f64>,
+    /// Largest feature, pixels.
+    pub largest_px: usize,
+    /// Mean posterior probability of the pixels' label.
+    pub mean_confidence: f64,
+}
+
+/// How the phase count was reached.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct PhaseCountReport {
+    /// `auto` or `fixed`.
+    pub mode: String,
+    /// Phases found.
+    pub phases: usize,
+    /// BIC per candidate count (auto only).
+    pub curve: Vec<CurvePoint>,
+    /// Count with the lowest BIC (auto only).
+    pub bic_minimum: Option<usize>,
+    /// Components merged or dissolved after BIC.
+    pub simplifications: Vec<Simplification>,
+}
+
+/// One input file and its SHA-256.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct InputFile {
+    /// Path as given.
+    pub path: String,
+    /// SHA-256 of the bytes, hex.
+    pub sha256: String,
+}
+
+/// Where the result came from.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Provenance {
+    /// Always `modalmap`.
+    pub tool: String,
+    /// Tool version.
+    pub version: String,
+    /// The seed of every random choice.
+    pub seed: u64,
+    /// Input files and hashes.
+    pub inputs: Vec<InputFile>,
+}
+
+/// `report.json`.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Report {
+    /// Schema name and version.
+    pub schema: String,
+    /// Field name.
+    pub field: String,
+    /// Element symbols (by atomic number).
+    pub elements: Vec<String>,
+    /// X-ray line per element, where known.
+    pub lines: BTreeMap<String, String>,
+    /// Width of the label image.
+    pub width: usize,
+    /// Height of the label image.
+    pub height: usize,
+    /// Pixel size of the label image, µm.
+    pub pixel_size_um: Option<f64>,
+    /// Beam energy, kV.
+    pub beam_kv: Option<f64>,
+    /// The phases, by decreasing area.
+    pub phases: Vec<PhaseEntry>,
+    /// Share of pixels left unassigned (pores, holes, shadow, unlike any phase).
+    pub unassigned_fraction: f64,
+    /// Unassigned pixels by reason.
+    pub unassigned: BTreeMap<String, usize>,
+    /// How the phase count was reached.
+    pub phase_count: PhaseCountReport,
+    /// How the confidence intervals were computed.
+    pub statistics: BTreeMap<String, serde_json::Value>,
+    /// Options as applied.
+    pub options: MapOptions,
+    /// Version, seed, input hashes.
+    pub provenance: Provenance,
+    /// Limits of what the numbers mean.
+    pub cautions: Vec<String>,
+    /// Things found while loading and mapping.
+    pub warnings: Vec<String>,
+}
+
+fn hash_file(path: &std::path::Path) -> Result<String> {
+    let bytes = std::fs::read(path).map_err(|e| Error::input(path, format!("cannot be read for hashing: {e}"), "check the file"))?;
+    Ok(Sha256::digest(&bytes).iter().map(|b| format!("{b:02x}")).collect())
+}
+
+/// Builds the report of a mapped field.
+pub fn build(field: &LoadedField, result: &MapResult, options: &MapOptions, mut warnings: Vec<String>) -> Result<Report> {
+    use rayon::prelude::*;
+    let t = &result.table;
+    let md = result.counts.metadata();
+    let map = |v: &[f64]| -> BTreeMap<String, f64> { t.elements.iter().cloned().zip(v.iter().copied()).collect() };
+    let phases = t
+        .phases
+        .iter()
+        .map(|p| PhaseEntry {
+            id: p.id,
+            name: p.name.clone(),
+            pixels: p.pixels,
+            area_fraction: p.area_fraction,
+            area_fraction_ci95: p.area_fraction_ci95,
+            mean: map(&p.mean),
+            sd: map(&p.sd),
+            composition_wt: map(&p.composition_wt),
+            composition_basis: "apparent: counts normalised to 100 %, every k-factor = 1 (uncalibrated)".into(),
+            particles: p.particles,
+            mean_ecd_px: p.mean_ecd_px,
+            mean_ecd_um: md.pixel_size_um.map(|s| s * p.mean_ecd_px),
+            largest_px: p.largest_px,
+            mean_confidence: p.mean_confidence,
+        })
+        .collect();
+    let inputs = field
+        .files
+        .par_iter()
+        .map(|p| Ok(InputFile { path: p.display().to_string(), sha256: hash_file(p)? }))
+        .collect::<Result<Vec<_>>>()?;
+    let auto = matches!(options.cluster.phases, PhaseCount::Auto { .. });
+    let bic_minimum = result.curve.iter().min_by(|a, b| a.bic.total_cmp(&b.bic)).map(|c| c.k);
+    for p in &t.phases {
+        if p.area_fraction < 0.005 && p.pixels < 200 {
+            warnings.push(format!(
+                "phase {} ({}) covers {:.2} % of the field in {} pixels: near the noise floor, confirm it on the BSE image",
+                p.id,
+                p.name,
+                100.0 * p.area_fraction,
+                p.pixels
+            ));
+        }
+    }
+    let mut statistics = BTreeMap::new();
+    statistics.insert("tiles".into(), serde_json::json!(t.tiles));
+    statistics.insert("t_quantile".into(), serde_json::json!(t.t_quantile));
+    statistics.insert(
+        "method".into(),
+        serde_json::json!(format!(
+            "95 % interval = p ± t·s/√n over {} × {} equal tiles of the field (Student t, n − 1 degrees of freedom; ASTM E562/E1245 field statistics applied to sub-fields)",
+            t.tiles[0], t.tiles[1]
+        )),
+    );
+    statistics.insert("min_counts_used".into(), serde_json::json!(result.min_counts_used));
+    statistics.insert("fitted_pixels".into(), serde_json::json!(result.fitted_pixels));
+    let mut unassigned = BTreeMap::new();
+    unassigned.insert("empty".into(), result.segmentation.empty_pixels);
+    unassigned.insert("unlike_any_phase".into(), result.segmentation.outlier_pixels);
+    Ok(Report {
+        schema: SCHEMA.into(),
+        field: field.name.clone(),
+        elements: t.elements.clone(),
+        lines: result.counts.maps().iter().filter_map(|m| m.line.clone().map(|l| (m.element.symbol.to_string(), l))).collect(),
+        width: result.segmentation.width,
+        height: result.segmentation.height,
+        pixel_size_um: md.pixel_size_um,
+        beam_kv: md.beam_kv,
+        phases,
+        unassigned_fraction: t.unassigned_fraction,
+        unassigned,
+        phase_count: PhaseCountReport {
+            mode: if auto { "auto".into() } else { "fixed".into() },
+            phases: t.phases.len(),
+            curve: result.curve.clone(),
+            bic_minimum,
+            simplifications: result.simplifications.clone(),
+        },
+        statistics,
+        options: *options,
+        provenance: Provenance {
+            tool: "modalmap".into(),
+            version: env!("CARGO_PKG_VERSION").into(),
+            seed: options.cluster.seed,
+            inputs,
+        },
+        cautions: CAUTIONS.iter().map(|s| s.to_string()).collect(),
+        warnings,
+    })
+}
+
+/// `phases.csv`: one row per phase.
+pub fn phases_csv(r: &Report) -> String {
+    let mut s = String::from("id,name,pixels,area_fraction,area_fraction_ci95_low,area_fraction_ci95_high,particles,mean_ecd_px,mean_confidence");
+    for e in &r.elements {
+        s.push_str(&format!(",mean_{e}"));
+    }
+    for e in &r.elements {
+        s.push_str(&format!(",sd_{e}"));
+    }
+    for e in &r.elements {
+        s.push_str(&format!(",apparent_wt_{e}"));
+    }
+    s.push('\n');
+    for p in &r.phases {
+        let name = if p.name.contains([',', '"']) { format!("\"{}\"", p.name.replace('"', "\"\"")) } else { p.name.clone() };
+        s.push_str(&format!(
+            "{},{},{},{:.6},{:.6},{:.6},{},{:.3},{:.4}",
+            p.id, name, p.pixels, p.area_fraction, p.area_fraction_ci95[0], p.area_fraction_ci95[1], p.particles, p.mean_ecd_px, p.mean_confidence
+        ));
+        for m in [&p.mean, &p.sd, &p.composition_wt] {
+            for e in &r.elements {
+                s.push_str(&format!(",{:.4}", m[e]));
+            }
+        }
+        s.push('\n');
+    }
+    s
+}
+
+/// The short human summary printed by `map`.
+pub fn summary(r: &Report) -> String {
+    let mut s = format!("field {}: {} × {} pixels, {} phases\n\n", r.field, r.width, r.height, r.phases.len());
+    s.push_str(&format!("  {:>3}  {:<16} {:>8} {:>17} {:>9}  {}\n", "id", "phase", "area %", "95 % CI", "features", "apparent composition % (uncalibrated)"));
+    for p in &r.phases {
+        let comp: Vec<String> = r
+            .elements
+            .iter()
+            .filter(|e| p.composition_wt[*e] >= 1.0)
+            .map(|e| format!("{e} {:.0}", p.composition_wt[e]))
+            .collect();
+        s.push_str(&format!(
+            "  {:>3}  {:<16} {:>8.2} {:>17} {:>9}  {}\n",
+            p.id,
+            p.name,
+            100.0 * p.area_fraction,
+            format!("{:.2}–{:.2}", 100.0 * p.area_fraction_ci95[0], 100.0 * p.area_fraction_ci95[1]),
+            p.particles,
+            comp.join(", ")
+        ));
+    }
+    s.push_str(&format!("       {:<16} {:>8.2}\n", "unassigned", 100.0 * r.unassigned_fraction));
+    if r.phase_count.mode == "auto" {
+        if let Some(k) = r.phase_count.bic_minimum {
+            s.push_str(&format!(
+                "\n  phase count: BIC lowest at {k}; {} component(s) merged or dissolved as boundary mixtures or duplicates\n",
+                r.phase_count.simplifications.len()
+            ));
+        }
+    }
+    if !r.warnings.is_empty() {
+        s.push_str("\n  warnings:\n");
+        for w in &r.warnings {
+            s.push_str(&format!("    - {w}\n"));
+        }
+    }
+    s.push_str("\n  cautions:\n");
+    for c in &r.cautions {
+        s.push_str(&format!("    - {c}\n"));
+    }
+    s
+}
+
+/// Writes every output of `map` into `out` (a prepared temporary folder).
+pub fn write_outputs(dir: &OutputDir, r: &Report, result: &MapResult) -> Result<()> {
+    let seg = &result.segmentation;
+    let (w, h) = (seg.width, seg.height);
+    if r.phases.len() <= 255 {
+        let v: Vec<u8> = seg.labels.iter().map(|&l| l as u8).collect();
+        crate::io::raster::write_png_u8(&dir.path("labels.png"), w, h, &v)?;
+    } else {
+        crate::io::raster::write_tiff(&dir.path("labels.tif"), w, h, crate::io::raster::TiffData::U16(&seg.labels))?;
+    }
+    let mut legend: Vec<draw::LegendEntry> = r
+        .phases
+        .iter()
+        .map(|p| draw::LegendEntry { id: p.id, text: format!("{} {}  {:.1} %", p.id, p.name, 100.0 * p.area_fraction) })
+        .collect();
+    legend.push(draw::LegendEntry { id: 0, text: format!("unassigned  {:.1} %", 100.0 * r.unassigned_fraction) });
+    let canvas = draw::phase_map(&seg.labels, w, h, &legend, r.pixel_size_um, &format!("{}: phase map", r.field));
+    crate::io::raster::write_png_rgb(&dir.path("phase-map.png"), canvas.width, canvas.height, &canvas.rgb)?;
+    let json = serde_json::to_string_pretty(r).map_err(|e| Error::internal(format!("report encoding failed: {e}")))?;
+    dir.write("report.json", json.as_bytes())?;
+    dir.write("phases.csv", phases_csv(r).as_bytes())?;
+    Ok(())
+}
