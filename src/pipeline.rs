@@ -9,7 +9,7 @@ use crate::cluster::{Clusters, Method};
 use crate::error::{Error, Result};
 use crate::phases::{phase_table, PhaseTable};
 use crate::prepare::{prepare, FeatureTransform, PrepareParams, Stabilise};
-use crate::refine::{interior_fractions, refine, RefineParams, Segmentation, ValidRefineParams};
+use crate::refine::{interior_fractions, interior_means, refine, RefineParams, Segmentation, ValidRefineParams};
 use crate::stack::MapStack;
 
 /// Every option of `map`, as given (command line and configuration file merged).
@@ -127,17 +127,13 @@ pub fn map_stack(stack: &MapStack, opts: &ValidMapOptions) -> Result<MapResult> 
                     action: format!("dissolved a component of {px} pixels, below the size floor of {min_px}"),
                     value: px as f64,
                 }));
-            } else if let Some((dev, a, b, t)) = simplify::nearest_mixture(c, &ends) {
+            } else if let Some((dev, weights)) = simplify::nearest_mixture(c, &ends) {
                 if dev < simplify::MIXTURE_WITHIN && interior < BOUNDARY_INTERIOR {
-                    let what = |j: usize| if j == clusters.k() { "pores".to_string() } else { simplify::fmt_counts(&ends[j]) };
                     drop.push((c, Simplification {
                         action: format!(
-                            "dissolved a band of mixed pixels ({} ≈ {:.0} % {} + {:.0} % {}; {:.1} % interior pixels)",
+                            "dissolved a band of mixed pixels ({} ≈ {}; {:.1} % interior pixels)",
                             simplify::fmt_counts(&ends[c]),
-                            100.0 * t,
-                            what(a),
-                            100.0 * (1.0 - t),
-                            what(b),
+                            simplify::describe_mixture(&weights, &ends, clusters.k()),
                             100.0 * interior
                         ),
                         value: dev,
@@ -151,6 +147,17 @@ pub fn map_stack(stack: &MapStack, opts: &ValidMapOptions) -> Result<MapResult> 
         for (c, note) in drop.into_iter().rev() {
             clusters = clusters.without(c);
             simplifications.push(note);
+        }
+        seg = refine(&f, &clusters, &opts.refine);
+    }
+    // Per-phase averaging after a first segmentation: re-estimate each phase from its
+    // interior pixels, then label again.
+    let means = interior_means(&f, &seg, clusters.k());
+    if means.iter().any(Option::is_some) {
+        for (c, m) in means.iter().enumerate() {
+            if let Some(m) = m {
+                clusters = clusters.with_mean(c, m);
+            }
         }
         seg = refine(&f, &clusters, &opts.refine);
     }

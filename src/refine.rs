@@ -110,6 +110,8 @@ pub struct Segmentation {
     pub sweep_changes: Vec<usize>,
     /// Pixels moved by the minimum-feature-size rule.
     pub small_feature_pixels: usize,
+    /// Boundary pixels given to the neighbouring phase that fills most of them.
+    pub unmixed_pixels: usize,
 }
 
 /// Scores the phases plus the empty pseudo-phase (index k), in the model's own space.
@@ -206,19 +208,19 @@ pub fn refine(f: &Features, clusters: &Clusters, params: &ValidRefineParams) -> 
             // A pore still picks up a little: stray and scattered X-rays (common practice,
             // no source: 0.05 counts per pixel and element).
             vec![0.05; d],
-            empty_fraction.ln(),
+            if p.smoothing == 0.0 { empty_fraction.ln() } else { 0.0 },
         ),
         _ => {
             let var = clusters.noise_variance().max(1e-6);
             (
                 Space::Transformed(st, var),
                 vec![0.0; d],
-                empty_fraction.ln() - 0.5 * d as f64 * (2.0 * std::f64::consts::PI * var).ln(),
+                if p.smoothing == 0.0 { empty_fraction.ln() } else { 0.0 } - 0.5 * d as f64 * (2.0 * std::f64::consts::PI * var).ln(),
             )
         }
     };
     let fs = FullScorer {
-        inner: clusters.scorer(),
+        inner: clusters.scorer(p.smoothing == 0.0),
         k,
         space,
         empty_point: empty_counts.iter().map(|&c| st.apply(c as f32)).collect(),
@@ -238,46 +240,81 @@ pub fn refine(f: &Features, clusters: &Clusters, params: &ValidRefineParams) -> 
         .collect();
     ends.push(fs.empty_counts.clone());
     let curves = mixing_points(&ends);
+    let kk = k + 1;
+    let far = far_pairs(&ends);
+    // The partial-volume score needs counts as rows and scores on the Poisson scale.
+    let partial_volume = matches!(space, Space::Counts);
     let empty_label = k as u16;
     let outlier_label = (k + 1) as u16;
 
     // Most likely label, its posterior, and which pixels are fixed.
-    let first: Vec<(u16, f32)> = (0..n)
-        .into_par_iter()
+    // Per pixel: the scores of every phase and the empty pseudo-phase, the most likely
+    // label, its posterior, and whether the pixel is unlike every phase.
+    let mut scores = vec![0.0f32; n * kk];
+    let first: Vec<(u16, f32)> = scores
+        .par_chunks_mut(kk)
+        .enumerate()
         .with_min_len(4096)
-        .map_init(
-            || (vec![0.0f64; k + 1], Vec::new()),
-            |(lp, scratch), i| {
-                if !f.mask[i] {
-                    return (empty_label, 0.0);
+        .map_init(Vec::new, |scratch, (i, lp)| {
+            if !f.mask[i] {
+                return (empty_label, 0.0);
+            }
+            let row = f.row(i);
+            let mut best = 0;
+            for c in 0..kk {
+                lp[c] = fs.score(c, row) as f32;
+                if lp[c] > lp[best] {
+                    best = c;
                 }
-                let row = f.row(i);
-                let mut best = 0;
-                for c in 0..=k {
-                    lp[c] = fs.score(c, row);
-                    if lp[c] > lp[best] {
-                        best = c;
-                    }
+            }
+            let max = lp[best];
+            let z: f32 = lp.iter().map(|&v| (v - max).exp()).sum();
+            let post = 1.0 / z;
+            if best < k && fs.inner.discrepancy(best, row) > outlier_threshold {
+                let mixed = curves
+                    .iter()
+                    .any(|pt| fs.discrepancy_to_counts(row, pt, scratch) <= outlier_threshold);
+                if !mixed {
+                    return (outlier_label, 0.0);
                 }
-                let max = lp[best];
-                let z: f64 = lp.iter().map(|&v| (v - max).exp()).sum();
-                let post = (1.0 / z) as f32;
-                if best < k && fs.inner.discrepancy(best, row) > outlier_threshold {
-                    let mixed = curves
-                        .iter()
-                        .any(|pt| fs.discrepancy_to_counts(row, pt, scratch) <= outlier_threshold);
-                    if !mixed {
-                        return (outlier_label, 0.0);
-                    }
-                }
-                (best as u16, post)
-            },
-        )
+            }
+            (best as u16, post)
+        })
         .collect();
     let ml: Vec<u16> = first.iter().map(|x| x.0).collect();
     let mut confidence: Vec<f32> = first.iter().map(|x| x.1).collect();
     let fixed: Vec<bool> = (0..n).map(|i| !f.mask[i] || ml[i] == outlier_label).collect();
-    let mut labels = ml.clone();
+    // With the spatial prior on, start from the label that best explains the pixel *and*
+    // its 3 × 3 neighbourhood: noise-free enough that ICM does not freeze in islands of
+    // wrong labels; the pixel's own best label stays a candidate in every sweep.
+    let mut labels: Vec<u16> = if p.smoothing > 0.0 {
+        (0..n)
+            .into_par_iter()
+            .with_min_len(4096)
+            .map_init(
+                || vec![0.0f32; kk],
+                |acc, i| {
+                    if fixed[i] {
+                        return ml[i];
+                    }
+                    acc.iter_mut().for_each(|a| *a = 0.0);
+                    let (x, y) = (i % w, i / w);
+                    for yy in y.saturating_sub(1)..=(y + 1).min(h - 1) {
+                        for xx in x.saturating_sub(1)..=(x + 1).min(w - 1) {
+                            let j = yy * w + xx;
+                            if !fixed[j] {
+                                acc.iter_mut().zip(&scores[j * kk..(j + 1) * kk]).for_each(|(a, s)| *a += s);
+                            }
+                        }
+                    }
+                    (0..kk).fold(0, |b, c| if acc[c] > acc[b] { c } else { b }) as u16
+                },
+            )
+            .collect()
+    } else {
+        ml.clone()
+    };
+    drop(scores);
 
     let mut sweep_changes = Vec::new();
     if p.smoothing > 0.0 {
@@ -297,6 +334,8 @@ pub fn refine(f: &Features, clusters: &Clusters, params: &ValidRefineParams) -> 
                         let fixed = &fixed;
                         let ml = &ml;
                         let fs = &fs;
+                        let far = &far;
+                        let ends = &ends;
                         (cx..w).step_by(2).filter_map(move |x| {
                             let i = y * w + x;
                             if fixed[i] || !dirty[i] {
@@ -330,7 +369,17 @@ pub fn refine(f: &Features, clusters: &Clusters, params: &ValidRefineParams) -> 
                             let row = f.row(i);
                             let energy = |c: u16| {
                                 let prior: f64 = votes[..nv].iter().filter(|v| v.0 == c).map(|v| v.1).sum();
-                                fs.score(c as usize, row) + beta * prior
+                                let mut s = fs.score(c as usize, row);
+                                if partial_volume {
+                                    // Next to a clearly different phase b, a pixel of phase c
+                                    // may hold some of b: judge c by its best such mixture.
+                                    for &(b, _) in &votes[..nv] {
+                                        if b != c && far[c as usize * kk + b as usize] {
+                                            s = s.max(mix_score(row, &ends[c as usize], &ends[b as usize]));
+                                        }
+                                    }
+                                }
+                                s + beta * prior
                             };
                             let mut best = (cur, energy(cur));
                             for &c in &cands[..nc] {
@@ -360,6 +409,18 @@ pub fn refine(f: &Features, clusters: &Clusters, params: &ValidRefineParams) -> 
             sweep_changes.push(changed_total);
             dirty = next_dirty;
             if changed_total == 0 {
+                break;
+            }
+        }
+    }
+
+    // Boundaries move by at most a pixel per pass; a few passes reach the rims of pores.
+    let mut unmixed_pixels = 0;
+    if p.smoothing > 0.0 {
+        for _ in 0..UNMIX_PASSES {
+            let moved = unmix_boundaries(f, &mut labels, &ends, &fixed, outlier_label);
+            unmixed_pixels += moved;
+            if moved == 0 {
                 break;
             }
         }
@@ -417,7 +478,119 @@ pub fn refine(f: &Features, clusters: &Clusters, params: &ValidRefineParams) -> 
         outlier_pixels,
         sweep_changes,
         small_feature_pixels,
+        unmixed_pixels,
     }
+}
+
+/// Two phases must differ by at least this J divergence (nats per pixel) for boundary
+/// pixels between them to be unmixed; closer phases are left to the spatial prior (common
+/// practice, no source).
+pub const UNMIX_MIN_DIVERGENCE: f64 = 4.0;
+
+/// Which pairs of endpoints (phases and the empty pseudo-phase) differ by at least
+/// [`UNMIX_MIN_DIVERGENCE`], as a flat `n × n` table.
+fn far_pairs(ends: &[Vec<f64>]) -> Vec<bool> {
+    let n = ends.len();
+    let mut far = vec![false; n * n];
+    for a in 0..n {
+        for b in 0..n {
+            far[a * n + b] = a != b && crate::cluster::simplify::j_divergence(&ends[a], &ends[b]) >= UNMIX_MIN_DIVERGENCE;
+        }
+    }
+    far
+}
+
+/// Poisson log-likelihood (without the Σ ln x! term) of counts `row` under the best
+/// mixture t·a + (1 − t)·b with a the majority, t ∈ {½, 0.6, …, 1}.
+fn mix_score(row: &[f32], a: &[f64], b: &[f64]) -> f64 {
+    (5..=10)
+        .map(|s| {
+            let t = s as f64 / 10.0;
+            row.iter()
+                .zip(a.iter().zip(b))
+                .map(|(&x, (&pa, &pb))| {
+                    let m = (t * pa + (1.0 - t) * pb).max(1e-3);
+                    f64::from(x) * m.ln() - m
+                })
+                .sum::<f64>()
+        })
+        .fold(f64::NEG_INFINITY, f64::max)
+}
+
+/// Limit on unmixing passes.
+pub const UNMIX_PASSES: usize = 4;
+
+/// Gives each boundary pixel to the phase that fills most of it.
+///
+/// A pixel on the boundary of phases a and b records counts from both. The likelihood
+/// ratio of *pure* a against *pure* b puts the decision at the point where the two pure
+/// phases explain the counts equally badly, which for a phase with a strong characteristic
+/// element is well short of half its volume: small particles of such a phase would grow by
+/// a rim. Here the mixing fraction t of counts ≈ t·a + (1 − t)·b is estimated by maximum
+/// likelihood (Poisson, on a grid of 1/20) and the pixel keeps a only if t ≥ ½. Applied
+/// once, after the spatial prior, only between clearly different phases (including pores).
+fn unmix_boundaries(f: &Features, labels: &mut [u16], ends: &[Vec<f64>], fixed: &[bool], outlier: u16) -> usize {
+    let (w, h, d) = (f.width, f.height, f.dims);
+    let planes: Vec<&[f32]> = f.counts.maps().iter().map(|m| m.counts.as_slice()).collect();
+    let kk = ends.len();
+    let far = far_pairs(ends);
+    let current: &[u16] = labels;
+    let changes: Vec<(usize, u16)> = (0..w * h)
+        .into_par_iter()
+        .with_min_len(4096)
+        .filter_map(|i| {
+            let a = current[i];
+            if fixed[i] || a == outlier {
+                return None;
+            }
+            let (x, y) = (i % w, i / w);
+            let mut others = [u16::MAX; 4];
+            let mut no = 0;
+            for (dx, dy) in [(-1isize, 0isize), (1, 0), (0, -1), (0, 1)] {
+                let (xx, yy) = (x as isize + dx, y as isize + dy);
+                if xx < 0 || yy < 0 || xx >= w as isize || yy >= h as isize {
+                    continue;
+                }
+                let b = current[yy as usize * w + xx as usize];
+                if b != a && b != outlier && far[a as usize * kk + b as usize] && !others[..no].contains(&b) {
+                    others[no] = b;
+                    no += 1;
+                }
+            }
+            if no == 0 {
+                return None;
+            }
+            let counts: Vec<f64> = (0..d).map(|e| f64::from(planes[e][i])).collect();
+            let mut best: Option<(f64, u16)> = None;
+            for &b in &others[..no] {
+                let (la, lb) = (&ends[a as usize], &ends[b as usize]);
+                let ll = |t: f64| -> f64 {
+                    (0..d)
+                        .map(|e| {
+                            let m = (t * la[e] + (1.0 - t) * lb[e]).max(1e-3);
+                            counts[e] * m.ln() - m
+                        })
+                        .sum()
+                };
+                let t = (0..=20).map(|s| s as f64 / 20.0).fold((f64::NEG_INFINITY, 1.0), |acc, t| {
+                    let v = ll(t);
+                    if v > acc.0 {
+                        (v, t)
+                    } else {
+                        acc
+                    }
+                });
+                if t.1 < 0.5 && best.is_none_or(|bb| t.1 < bb.0) {
+                    best = Some((t.1, b));
+                }
+            }
+            best.map(|(_, b)| (i, b))
+        })
+        .collect();
+    for &(i, b) in &changes {
+        labels[i] = b;
+    }
+    changes.len()
 }
 
 /// Gives connected features (8-connected) smaller than `min_px` to the label that borders
@@ -496,5 +669,39 @@ pub fn interior_fractions(seg: &Segmentation, k: usize) -> Vec<(usize, f64)> {
     }
     (0..k)
         .map(|c| (pixels[c], if pixels[c] > 0 { inside[c] as f64 / pixels[c] as f64 } else { 0.0 }))
+        .collect()
+}
+
+/// Fewest interior pixels from which a phase's mean is re-estimated (common practice, no
+/// source).
+pub const MIN_INTERIOR_PIXELS: usize = 20;
+
+/// Per phase of the model: the mean feature row over its interior pixels (all eight
+/// neighbours share the label), or `None` with fewer than [`MIN_INTERIOR_PIXELS`].
+///
+/// Small features of a phase are mostly boundary pixels whose counts mix in their
+/// surroundings, so a mixture fitted to all pixels places such a phase part-way towards
+/// its neighbours. Its interior pixels are the purest sample of it there is.
+pub fn interior_means(f: &Features, seg: &Segmentation, k: usize) -> Vec<Option<Vec<f64>>> {
+    let (w, h, d) = (seg.width, seg.height, f.dims);
+    let mut sum = vec![0.0f64; k * d];
+    let mut count = vec![0usize; k];
+    for y in 1..h.saturating_sub(1) {
+        for x in 1..w.saturating_sub(1) {
+            let l = seg.labels[y * w + x];
+            if l == 0 {
+                continue;
+            }
+            if (y - 1..=y + 1).all(|yy| (x - 1..=x + 1).all(|xx| seg.labels[yy * w + xx] == l)) {
+                let c = l as usize - 1;
+                count[c] += 1;
+                for (s, &v) in sum[c * d..(c + 1) * d].iter_mut().zip(f.row(y * w + x)) {
+                    *s += f64::from(v);
+                }
+            }
+        }
+    }
+    (0..k)
+        .map(|c| (count[c] >= MIN_INTERIOR_PIXELS).then(|| sum[c * d..(c + 1) * d].iter().map(|s| s / count[c] as f64).collect()))
         .collect()
 }

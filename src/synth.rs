@@ -99,7 +99,8 @@ pub struct Particle {
 }
 
 impl Particle {
-    fn contains(&self, x: f64, y: f64) -> bool {
+    /// True if (x, y) lies inside.
+    pub fn contains(&self, x: f64, y: f64) -> bool {
         let (s, c) = self.angle.sin_cos();
         let (dx, dy) = (x - self.cx, y - self.cy);
         let u = (dx * c + dy * s) / self.a;
@@ -139,6 +140,35 @@ pub fn scatter_particles(
         });
     }
     out
+}
+
+/// Voronoi grains: `count` seeds at random positions in `[0, w) × [0, h)`, each given a
+/// label drawn with probability ∝ `weights` (labels 1..=weights.len()). Returns
+/// (x, y, label) per seed; a point belongs to the grain of its nearest seed.
+pub fn voronoi_seeds(rng: &mut ChaCha8Rng, count: usize, (w, h): (f64, f64), weights: &[f64]) -> Vec<(f64, f64, u16)> {
+    let total: f64 = weights.iter().sum();
+    (0..count)
+        .map(|_| {
+            let mut r = rng.random_range(0.0..total);
+            let mut label = weights.len() as u16;
+            for (i, &wt) in weights.iter().enumerate() {
+                if r < wt {
+                    label = i as u16 + 1;
+                    break;
+                }
+                r -= wt;
+            }
+            (rng.random_range(0.0..w), rng.random_range(0.0..h), label)
+        })
+        .collect()
+}
+
+/// The label of the grain containing (x, y).
+pub fn voronoi_label(seeds: &[(f64, f64, u16)], x: f64, y: f64) -> u16 {
+    seeds
+        .iter()
+        .min_by(|a, b| ((a.0 - x).powi(2) + (a.1 - y).powi(2)).total_cmp(&((b.0 - x).powi(2) + (b.1 - y).powi(2))))
+        .map_or(0, |s| s.2)
 }
 
 /// Detector response: counts per pixel per unit mass fraction for each mapped element.

@@ -40,3 +40,31 @@ fn explore_timing() {
     let r = map_stack(&field.stack, &o).unwrap();
     println!("all {:?} {}", t0.elapsed(), r.clusters.k());
 }
+
+#[path = "accuracy.rs"]
+#[allow(dead_code)]
+mod acc;
+
+#[test]
+#[ignore]
+fn explore_duplex_image() {
+    let field = acc::duplex();
+    let o = MapOptions { cluster: ClusterParams { phases: PhaseCount::Auto { max: 8 }, ..Default::default() }, ..Default::default() }.check().unwrap();
+    let r = map_stack(&field.stack, &o).unwrap();
+    let w = field.stack.width();
+    let h = field.stack.height();
+    let s = common::score(&r.segmentation.labels, &field.truth);
+    let map: std::collections::HashMap<u16, u16> = s.mapping.iter().cloned().collect();
+    let mut rgb = vec![0u8; w * h * 3 * 2];
+    for y in 0..h { for x in 0..w {
+        let t = field.truth[y * w + x];
+        let p = map.get(&r.segmentation.labels[y * w + x]).copied().unwrap_or(9);
+        let col = |l: u16| modalmap::report::draw::colour(l);
+        let i = (y * 2 * w + x) * 3;
+        rgb[i..i + 3].copy_from_slice(&col(t));
+        let j = (y * 2 * w + w + x) * 3;
+        rgb[j..j + 3].copy_from_slice(&if p == t { col(p) } else { [255, 0, 0] });
+    }}
+    modalmap::io::raster::write_png_rgb(std::path::Path::new("/tmp/duplex.png"), 2 * w, h, &rgb).unwrap();
+    println!("acc {}", s.accuracy);
+}

@@ -106,6 +106,25 @@ impl Clusters {
         }
     }
 
+    /// The same model with the mean of phase `c` replaced (feature space; rates for the
+    /// Poisson mixture).
+    pub fn with_mean(&self, c: usize, mean: &[f64]) -> Clusters {
+        let d = self.d();
+        let mut out = self.clone();
+        match &mut out {
+            Clusters::Kmeans { model, .. } => model.centroids[c * d..(c + 1) * d].copy_from_slice(mean),
+            Clusters::Gmm { model } => {
+                model.means[c * d..(c + 1) * d].copy_from_slice(mean);
+                model.refresh().expect("covariances unchanged");
+            }
+            Clusters::Poisson { model } => {
+                model.rates[c * d..(c + 1) * d].copy_from_slice(mean);
+                model.refresh();
+            }
+        }
+        out
+    }
+
     /// The same model without phase `c` (weights renormalised).
     pub fn without(&self, c: usize) -> Clusters {
         fn drop_rows(v: &[f64], c: usize, len: usize) -> Vec<f64> {
@@ -187,22 +206,34 @@ impl Clusters {
         }
     }
 
-    /// A scorer for the hot loops.
-    pub fn scorer(&self) -> Scorer<'_> {
-        match self {
+    /// A scorer for the hot loops. With `weighted`, scores include the mixing weights
+    /// (a Bayes classifier for single pixels); without, they are the phases' likelihoods
+    /// alone, as a spatial model wants, where the label prior is the neighbourhood.
+    pub fn scorer(&self, weighted: bool) -> Scorer<'_> {
+        let kind = match self {
             Clusters::Kmeans { model, variance } => {
                 let var = variance.max(1e-12);
                 let d = model.d as f64;
-                Scorer::Kmeans {
+                ScorerKind::Kmeans {
                     centres: model.centres_f32(),
                     d: model.d,
                     inv_var: (1.0 / var) as f32,
                     log_norm: -(model.k as f64).ln() - 0.5 * d * (2.0 * std::f64::consts::PI * var).ln(),
                 }
             }
-            Clusters::Gmm { model } => Scorer::Gmm(model),
-            Clusters::Poisson { model } => Scorer::Poisson(model),
-        }
+            Clusters::Gmm { model } => ScorerKind::Gmm(model),
+            Clusters::Poisson { model } => ScorerKind::Poisson(model),
+        };
+        let weights: Option<&[f64]> = match self {
+            Clusters::Kmeans { .. } => None,
+            Clusters::Gmm { model } => Some(&model.weights),
+            Clusters::Poisson { model } => Some(&model.weights),
+        };
+        let unweight = match (weighted, weights) {
+            (false, Some(w)) => w.iter().map(|&x| -x.max(1e-300).ln()).collect(),
+            _ => vec![0.0; self.k()],
+        };
+        Scorer { kind, unweight }
     }
 
     /// A typical per-dimension noise variance of the phases (for the empty pseudo-phase):
@@ -224,47 +255,47 @@ impl Clusters {
     }
 }
 
-/// Scores pixels against phases: the log density (weight × Gaussian) of a row under each
-/// phase, and the squared Mahalanobis distance for the outlier test.
-pub enum Scorer<'a> {
-    /// Isotropic Gaussian of one shared variance around each centroid, equal weights.
+/// Scores pixels against phases: log density of a row under each phase, and a χ²-like
+/// discrepancy for the outlier test.
+pub struct Scorer<'a> {
+    kind: ScorerKind<'a>,
+    /// Added to each phase's score: −ln wₖ to drop the mixing weights, or 0.
+    unweight: Vec<f64>,
+}
+
+enum ScorerKind<'a> {
     Kmeans {
-        /// Centroids, `k × d`.
         centres: Vec<f32>,
-        /// Dimensions.
         d: usize,
-        /// 1 / noise variance.
         inv_var: f32,
-        /// ln(1/k) − d/2 ln(2π σ²).
         log_norm: f64,
     },
-    /// Full-covariance mixture.
     Gmm(&'a GaussianMixture),
-    /// Poisson mixture on counts.
     Poisson(&'a PoissonMixture),
 }
 
 impl Scorer<'_> {
-    /// ln (wₖ N(row | phase c)).
+    /// ln (wₖ N(row | phase c)), or ln N(row | phase c) for an unweighted scorer.
     #[inline]
     pub fn score(&self, c: usize, row: &[f32]) -> f64 {
-        match self {
-            Scorer::Kmeans { log_norm, .. } => log_norm - 0.5 * self.discrepancy(c, row),
-            Scorer::Gmm(g) => g.weighted_log_density(c, row),
-            Scorer::Poisson(m) => m.weighted_log_density(c, row),
-        }
+        self.unweight[c]
+            + match &self.kind {
+                ScorerKind::Kmeans { log_norm, .. } => log_norm - 0.5 * self.discrepancy(c, row),
+                ScorerKind::Gmm(g) => g.weighted_log_density(c, row),
+                ScorerKind::Poisson(m) => m.weighted_log_density(c, row),
+            }
     }
 
     /// Discrepancy of `row` from phase `c`, approximately χ² with d degrees of freedom for
     /// a pixel of that phase: squared Mahalanobis distance, or Poisson deviance.
     #[inline]
     pub fn discrepancy(&self, c: usize, row: &[f32]) -> f64 {
-        match self {
-            Scorer::Kmeans { centres, d, inv_var, .. } => {
+        match &self.kind {
+            ScorerKind::Kmeans { centres, d, inv_var, .. } => {
                 f64::from(kmeans::dist2(row, &centres[c * d..(c + 1) * d]) * inv_var)
             }
-            Scorer::Gmm(g) => f64::from(g.mahalanobis2(c, row)),
-            Scorer::Poisson(m) => m.deviance(c, row),
+            ScorerKind::Gmm(g) => f64::from(g.mahalanobis2(c, row)),
+            ScorerKind::Poisson(m) => m.deviance(c, row),
         }
     }
 }

@@ -11,10 +11,10 @@
 //!    pixel tells a from b. Below [`MERGE_BELOW`] nats no pixel can be assigned to one of
 //!    them with confidence, so they are one phase as far as the maps can tell.
 //! 2. **Boundary mixtures dissolve** (decided with the spatial labels, in the pipeline): a
-//!    component whose expected counts lie on the mixing line of two others (within
+//!    component whose expected counts are a mixture of the others (within
 //!    [`MIXTURE_WITHIN`] of deviance) *and* that has almost no interior pixels is a band of
-//!    mixed pixels, not a phase. Intermetallics also lie on the line between their
-//!    elements, which is why the spatial test is needed as well.
+//!    mixed pixels, not a phase. Intermetallics also lie between their elements, which is
+//!    why the spatial test is needed as well.
 
 use crate::cluster::poisson::{self, MIN_RATE};
 use crate::cluster::Clusters;
@@ -40,27 +40,68 @@ pub fn j_divergence(a: &[f64], b: &[f64]) -> f64 {
         .sum()
 }
 
-/// The nearest point of the mixing lines of all pairs of `ends` other than `c` itself:
-/// (deviance, a, b, t) with the mixture t·a + (1 − t)·b.
-pub fn nearest_mixture(c: usize, ends: &[Vec<f64>]) -> Option<(f64, usize, usize, f64)> {
-    let x: Vec<f32> = ends[c].iter().map(|&v| v as f32).collect();
-    let mut best: Option<(f64, usize, usize, f64)> = None;
-    for a in 0..ends.len() {
-        for b in a + 1..ends.len() {
-            if a == c || b == c {
-                continue;
-            }
-            for s in 1..40 {
-                let t = s as f64 / 40.0;
-                let m: Vec<f64> = ends[a].iter().zip(&ends[b]).map(|(p, q)| t * p + (1.0 - t) * q).collect();
-                let dev = poisson::deviance(&x, &m);
-                if best.is_none_or(|bb| dev < bb.0) {
-                    best = Some((dev, a, b, t));
-                }
+/// The nearest mixture of the other endpoints to endpoint `c`: mixing weights π ≥ 0,
+/// Σ π = 1, fitted by maximum likelihood (Poisson; EM updates for mixing proportions).
+/// Returns (deviance of `c` from the mixture, the weights, one per endpoint, 0 for `c`).
+///
+/// Pixels on a boundary mix two phases; pixels on the rim of a small particle that touches
+/// several grains mix three or more, so the test is against every convex mixture.
+pub fn nearest_mixture(c: usize, ends: &[Vec<f64>]) -> Option<(f64, Vec<f64>)> {
+    let others: Vec<usize> = (0..ends.len()).filter(|&j| j != c).collect();
+    if others.len() < 2 {
+        return None;
+    }
+    let x = &ends[c];
+    let d = x.len();
+    let mix = |pi: &[f64]| -> Vec<f64> {
+        (0..d)
+            .map(|e| others.iter().zip(pi).map(|(&j, &p)| p * ends[j][e]).sum::<f64>().max(MIN_RATE))
+            .collect()
+    };
+    let ll = |pi: &[f64]| -> f64 { mix(pi).iter().zip(x).map(|(&m, &xe)| xe * m.ln() - m).sum() };
+    // Frank–Wolfe on the simplex (the log-likelihood is concave in π): move towards the
+    // vertex with the steepest gradient, with a ternary line search.
+    let mut pi = vec![1.0 / others.len() as f64; others.len()];
+    for _ in 0..300 {
+        let m = mix(&pi);
+        let grad: Vec<f64> = others.iter().map(|&j| (0..d).map(|e| x[e] * ends[j][e] / m[e] - ends[j][e]).sum()).collect();
+        let v = (0..grad.len()).fold(0, |b, j| if grad[j] > grad[b] { j } else { b });
+        let toward = |g: f64| -> Vec<f64> { pi.iter().enumerate().map(|(j, &p)| (1.0 - g) * p + if j == v { g } else { 0.0 }).collect() };
+        let (mut lo, mut hi) = (0.0f64, 1.0f64);
+        for _ in 0..40 {
+            let (a, b) = (lo + (hi - lo) / 3.0, hi - (hi - lo) / 3.0);
+            if ll(&toward(a)) < ll(&toward(b)) {
+                lo = a;
+            } else {
+                hi = b;
             }
         }
+        let g = 0.5 * (lo + hi);
+        if g < 1e-9 {
+            break;
+        }
+        pi = toward(g);
     }
-    best
+    let xf: Vec<f32> = x.iter().map(|&v| v as f32).collect();
+    let dev = poisson::deviance(&xf, &mix(&pi));
+    let mut weights = vec![0.0; ends.len()];
+    for (&j, &p) in others.iter().zip(&pi) {
+        weights[j] = p;
+    }
+    Some((dev, weights))
+}
+
+/// Describes a mixture's two largest parts, e.g. `62 % [14.5, 17.2] + 38 % pores`.
+pub fn describe_mixture(weights: &[f64], ends: &[Vec<f64>], pores: usize) -> String {
+    let mut order: Vec<usize> = (0..weights.len()).filter(|&j| weights[j] > 0.0).collect();
+    order.sort_by(|&a, &b| weights[b].total_cmp(&weights[a]));
+    order
+        .iter()
+        .take(3)
+        .filter(|&&j| weights[j] >= 0.05)
+        .map(|&j| format!("{:.0} % {}", 100.0 * weights[j], if j == pores { "pores".to_string() } else { fmt_counts(&ends[j]) }))
+        .collect::<Vec<_>>()
+        .join(" + ")
 }
 
 /// A record of one simplification, for the report.
