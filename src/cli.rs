@@ -37,7 +37,9 @@ pub struct LimitArgs {
 
 impl Default for LimitArgs {
     fn default() -> Self {
-        LimitArgs { max_pixels: Limits::DEFAULT_MAX_PIXELS }
+        LimitArgs {
+            max_pixels: Limits::DEFAULT_MAX_PIXELS,
+        }
     }
 }
 
@@ -69,7 +71,7 @@ pub enum Command {
         #[arg(short, long, value_name = "OUT")]
         output: PathBuf,
         #[command(flatten)]
-        map: MapArgs,
+        map: Box<MapArgs>,
     },
     /// Map the bundled sample field (an invented solder joint) and compare with its truth.
     Demo {
@@ -166,8 +168,13 @@ struct ConfigFile {
 }
 
 fn read_config(path: &std::path::Path) -> Result<ConfigFile> {
-    let text = std::fs::read_to_string(path)
-        .map_err(|e| Error::options_in(path, format!("cannot be read: {e}"), "check the --config path"))?;
+    let text = std::fs::read_to_string(path).map_err(|e| {
+        Error::options_in(
+            path,
+            format!("cannot be read: {e}"),
+            "check the --config path",
+        )
+    })?;
     toml::from_str(&text).map_err(|e| {
         Error::options_in(
             path,
@@ -177,17 +184,41 @@ fn read_config(path: &std::path::Path) -> Result<ConfigFile> {
     })
 }
 
-fn parse_in<T: std::str::FromStr>(path: &std::path::Path, key: &str, v: Option<String>) -> Result<Option<T>>
+fn parse_in<T: std::str::FromStr>(
+    path: &std::path::Path,
+    key: &str,
+    v: Option<String>,
+) -> Result<Option<T>>
 where
     T::Err: std::fmt::Display,
 {
-    v.map(|s| s.parse::<T>().map_err(|e| Error::options_in(path, format!("{key} = \"{s}\": {e}"), format!("see `modalmap map --help` for the values of --{key}"))))
-        .transpose()
+    v.map(|s| {
+        s.parse::<T>().map_err(|e| {
+            Error::options_in(
+                path,
+                format!("{key} = \"{s}\": {e}"),
+                format!("see `modalmap map --help` for the values of --{key}"),
+            )
+        })
+    })
+    .transpose()
 }
 
-fn parse_value_enum<T: clap::ValueEnum>(path: &std::path::Path, key: &str, v: Option<String>) -> Result<Option<T>> {
-    v.map(|s| T::from_str(&s, false).map_err(|e| Error::options_in(path, format!("{key} = \"{s}\": {e}"), format!("see `modalmap map --help` for the values of --{key}"))))
-        .transpose()
+fn parse_value_enum<T: clap::ValueEnum>(
+    path: &std::path::Path,
+    key: &str,
+    v: Option<String>,
+) -> Result<Option<T>> {
+    v.map(|s| {
+        T::from_str(&s, false).map_err(|e| {
+            Error::options_in(
+                path,
+                format!("{key} = \"{s}\": {e}"),
+                format!("see `modalmap map --help` for the values of --{key}"),
+            )
+        })
+    })
+    .transpose()
 }
 
 impl MapArgs {
@@ -201,10 +232,20 @@ impl MapArgs {
             Some((p, c)) => (p, c),
             None => (PathBuf::new(), ConfigFile::default()),
         };
-        let phases = self.phases.or(parse_in::<PhaseCount>(&cp, "phases", c.phases)?);
-        let method = self.method.or(parse_value_enum::<Method>(&cp, "method", c.method)?);
-        let denoise = self.denoise.or(parse_in::<Denoise>(&cp, "denoise", c.denoise)?);
-        let transform = self.transform.or(parse_value_enum::<Stabilise>(&cp, "transform", c.transform)?);
+        let phases = self
+            .phases
+            .or(parse_in::<PhaseCount>(&cp, "phases", c.phases)?);
+        let method = self
+            .method
+            .or(parse_value_enum::<Method>(&cp, "method", c.method)?);
+        let denoise = self
+            .denoise
+            .or(parse_in::<Denoise>(&cp, "denoise", c.denoise)?);
+        let transform = self.transform.or(parse_value_enum::<Stabilise>(
+            &cp,
+            "transform",
+            c.transform,
+        )?);
         let d = MapOptions::default();
         let min_counts = self.min_counts.or(c.min_counts);
         let opts = MapOptions {
@@ -212,7 +253,9 @@ impl MapArgs {
                 bin: self.bin.or(c.bin).unwrap_or(d.prepare.bin),
                 denoise: denoise.unwrap_or(d.prepare.denoise),
                 stabilise: transform.unwrap_or(d.prepare.stabilise),
-                min_counts: min_counts.map_or(d.prepare.min_counts, |counts| MinCounts::Absolute { counts }),
+                min_counts: min_counts.map_or(d.prepare.min_counts, |counts| MinCounts::Absolute {
+                    counts,
+                }),
                 dequantise: d.prepare.dequantise,
             },
             cluster: ClusterParams {
@@ -223,10 +266,16 @@ impl MapArgs {
             },
             refine: RefineParams {
                 smoothing: self.smoothing.or(c.smoothing).unwrap_or(d.refine.smoothing),
-                min_feature_px: self.min_feature.or(c.min_feature).unwrap_or(d.refine.min_feature_px),
+                min_feature_px: self
+                    .min_feature
+                    .or(c.min_feature)
+                    .unwrap_or(d.refine.min_feature_px),
                 ..d.refine
             },
-            min_phase_fraction: self.min_phase.or(c.min_phase).unwrap_or(d.min_phase_fraction),
+            min_phase_fraction: self
+                .min_phase
+                .or(c.min_phase)
+                .unwrap_or(d.min_phase_fraction),
         };
         let md = FieldMetadata {
             pixel_size_um: self.pixel_size.or(c.pixel_size),
@@ -236,7 +285,10 @@ impl MapArgs {
         for (name, v) in [("--pixel-size", md.pixel_size_um), ("--kv", md.beam_kv)] {
             if let Some(v) = v {
                 if !(v.is_finite() && v > 0.0) {
-                    return Err(Error::options(format!("{name} {v} is not a positive number"), format!("give {name} as a positive number")));
+                    return Err(Error::options(
+                        format!("{name} {v} is not a positive number"),
+                        format!("give {name} as a positive number"),
+                    ));
                 }
             }
         }
@@ -245,11 +297,20 @@ impl MapArgs {
 }
 
 /// Runs `map` on one field into `out`; returns the report.
-pub fn map_field(input: &std::path::Path, out: &std::path::Path, args: &MapArgs) -> Result<crate::report::Report> {
+pub fn map_field(
+    input: &std::path::Path,
+    out: &std::path::Path,
+    args: &MapArgs,
+) -> Result<crate::report::Report> {
     let (opts, md, _) = args.resolve()?;
     let valid = opts.check()?;
     let dir = crate::report::prepare_output(out, args.force)?;
-    let mut field = load_field(input, &Limits { max_pixels: args.limits.max_pixels })?;
+    let mut field = load_field(
+        input,
+        &Limits {
+            max_pixels: args.limits.max_pixels,
+        },
+    )?;
     field.stack.override_metadata(&md);
     let result = crate::pipeline::map_stack(&field.stack, &valid)?;
     let report = crate::report::build(&field, &result, valid.options(), field.warnings.clone())?;
@@ -261,10 +322,15 @@ pub fn map_field(input: &std::path::Path, out: &std::path::Path, args: &MapArgs)
 fn install_threads(n: Option<usize>) -> Result<()> {
     if let Some(n) = n.filter(|&n| n > 0) {
         if n > 1024 {
-            return Err(Error::options(format!("--threads {n} is too many"), "use at most 1024 threads, or leave it out"));
+            return Err(Error::options(
+                format!("--threads {n} is too many"),
+                "use at most 1024 threads, or leave it out",
+            ));
         }
         // Fails only if a pool was installed before, which is harmless.
-        let _ = rayon::ThreadPoolBuilder::new().num_threads(n).build_global();
+        let _ = rayon::ThreadPoolBuilder::new()
+            .num_threads(n)
+            .build_global();
     }
     Ok(())
 }
@@ -307,7 +373,10 @@ pub fn run(cli: Cli) -> Result<u8> {
             let input = output.with_extension("input");
             let _ = std::fs::remove_dir_all(&input);
             crate::synth::write_folder(&field, &input)?;
-            let args = MapArgs { force, ..MapArgs::default() };
+            let args = MapArgs {
+                force,
+                ..MapArgs::default()
+            };
             let report = map_field(&input, &output, &args)?;
             print!("{}", crate::report::summary(&report));
             let labels = crate::io::read_raster(&output.join("labels.png"), &Limits::default())?;
@@ -317,7 +386,11 @@ pub fn run(cli: Cli) -> Result<u8> {
                 "\n  the sample is synthetic, so its true phases are known: {:.1} % of pixels agree with them",
                 100.0 * agree
             );
-            println!("  sample maps in {}, outputs in {}", input.display(), output.display());
+            println!(
+                "  sample maps in {}, outputs in {}",
+                input.display(),
+                output.display()
+            );
             Ok(0)
         }
         Command::Synth { output, truth } => {
@@ -352,7 +425,10 @@ pub fn pixel_agreement(pred: &[u16], truth: &[u16]) -> f64 {
     for (&p, &t) in pred.iter().zip(truth) {
         conf[p as usize * kt + t as usize] += 1;
     }
-    let mut pairs: Vec<(usize, usize, usize)> = (1..kp).flat_map(|p| (1..kt).map(move |t| (p, t))).map(|(p, t)| (conf[p * kt + t], p, t)).collect();
+    let mut pairs: Vec<(usize, usize, usize)> = (1..kp)
+        .flat_map(|p| (1..kt).map(move |t| (p, t)))
+        .map(|(p, t)| (conf[p * kt + t], p, t))
+        .collect();
     pairs.sort_by(|a, b| b.cmp(a));
     let (mut used_p, mut used_t) = (vec![false; kp], vec![false; kt]);
     let mut correct = conf[0];

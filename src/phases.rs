@@ -95,7 +95,12 @@ fn name_of(elements: &[String], comp: &[f64]) -> String {
     if comp[order[0]] >= 75.0 {
         return format!("{}-rich", elements[order[0]]);
     }
-    let major: Vec<&str> = order.iter().take(3).filter(|&&i| comp[i] >= 15.0).map(|&i| elements[i].as_str()).collect();
+    let major: Vec<&str> = order
+        .iter()
+        .take(3)
+        .filter(|&&i| comp[i] >= 15.0)
+        .map(|&i| elements[i].as_str())
+        .collect();
     major.join("–")
 }
 
@@ -156,15 +161,32 @@ pub fn phase_table(seg: &mut Segmentation, counts: &MapStack, k: usize) -> Phase
             let np = pixels[c] as f64;
             let mean: Vec<f64> = (0..d).map(|e| sum[c * d + e] / np).collect();
             let sd: Vec<f64> = (0..d)
-                .map(|e| if np > 1.0 { ((sum2[c * d + e] - np * mean[e] * mean[e]) / (np - 1.0)).max(0.0).sqrt() } else { 0.0 })
+                .map(|e| {
+                    if np > 1.0 {
+                        ((sum2[c * d + e] - np * mean[e] * mean[e]) / (np - 1.0))
+                            .max(0.0)
+                            .sqrt()
+                    } else {
+                        0.0
+                    }
+                })
                 .collect();
             let total: f64 = mean.iter().sum();
-            let composition_wt: Vec<f64> = mean.iter().map(|m| if total > 0.0 { 100.0 * m / total } else { 0.0 }).collect();
-            let fractions: Vec<f64> = (0..tx * ty).map(|t| tile_counts[t][id as usize] as f64 / tile_px[t] as f64).collect();
+            let composition_wt: Vec<f64> = mean
+                .iter()
+                .map(|m| if total > 0.0 { 100.0 * m / total } else { 0.0 })
+                .collect();
+            let fractions: Vec<f64> = (0..tx * ty)
+                .map(|t| tile_counts[t][id as usize] as f64 / tile_px[t] as f64)
+                .collect();
             let (_, _, half, tq) = mean_ci(&fractions);
             t_quantile = tq;
             let p = np / n as f64;
-            let (lo, hi) = if half.is_finite() { ((p - half).max(0.0), (p + half).min(1.0)) } else { (p, p) };
+            let (lo, hi) = if half.is_finite() {
+                ((p - half).max(0.0), (p + half).min(1.0))
+            } else {
+                (p, p)
+            };
             let mut name = name_of(&elements, &composition_wt);
             let repeats = names_seen.iter().filter(|s| **s == name).count();
             names_seen.push(name.clone());
@@ -202,7 +224,8 @@ pub fn phase_table(seg: &mut Segmentation, counts: &MapStack, k: usize) -> Phase
 /// Counts the separate features of each phase and their sizes.
 fn particle_statistics(table: &mut PhaseTable, seg: &Segmentation) {
     let img: ImageBuffer<Luma<u16>, Vec<u16>> =
-        ImageBuffer::from_raw(seg.width as u32, seg.height as u32, seg.labels.clone()).expect("size matches");
+        ImageBuffer::from_raw(seg.width as u32, seg.height as u32, seg.labels.clone())
+            .expect("size matches");
     let comp = connected_components(&img, Connectivity::Eight, Luma([0u16])).into_raw();
     let ncomp = comp.iter().copied().max().unwrap_or(0) as usize;
     let mut size = vec![0usize; ncomp + 1];
@@ -212,13 +235,20 @@ fn particle_statistics(table: &mut PhaseTable, seg: &Segmentation) {
         phase_of[c as usize] = seg.labels[i];
     }
     for p in &mut table.phases {
-        let sizes: Vec<usize> = (1..=ncomp).filter(|&c| phase_of[c] == p.id).map(|c| size[c]).collect();
+        let sizes: Vec<usize> = (1..=ncomp)
+            .filter(|&c| phase_of[c] == p.id)
+            .map(|c| size[c])
+            .collect();
         p.particles = sizes.len();
         p.largest_px = sizes.iter().copied().max().unwrap_or(0);
         p.mean_ecd_px = if sizes.is_empty() {
             0.0
         } else {
-            sizes.iter().map(|&a| 2.0 * (a as f64 / std::f64::consts::PI).sqrt()).sum::<f64>() / sizes.len() as f64
+            sizes
+                .iter()
+                .map(|&a| 2.0 * (a as f64 / std::f64::consts::PI).sqrt())
+                .sum::<f64>()
+                / sizes.len() as f64
         };
     }
 }

@@ -9,7 +9,9 @@ use crate::cluster::{Clusters, Method};
 use crate::error::{Error, Result};
 use crate::phases::{phase_table, PhaseTable};
 use crate::prepare::{prepare, FeatureTransform, PrepareParams, Stabilise};
-use crate::refine::{interior_fractions, interior_means, refine, RefineParams, Segmentation, ValidRefineParams};
+use crate::refine::{
+    interior_fractions, interior_means, refine, RefineParams, Segmentation, ValidRefineParams,
+};
 use crate::stack::MapStack;
 
 /// Every option of `map`, as given (command line and configuration file merged).
@@ -57,7 +59,10 @@ impl MapOptions {
         }
         if !(0.0..0.5).contains(&self.min_phase_fraction) {
             return Err(Error::options(
-                format!("minimum phase size {} is out of range", self.min_phase_fraction),
+                format!(
+                    "minimum phase size {} is out of range",
+                    self.min_phase_fraction
+                ),
                 "give a share of the pixels from 0 to below 0.5, e.g. 0.0002",
             ));
         }
@@ -66,7 +71,10 @@ impl MapOptions {
             cluster: self.cluster.check()?,
             refine: self.refine.check()?,
             min_phase_fraction: self.min_phase_fraction,
-            given: MapOptions { prepare: prep, ..self },
+            given: MapOptions {
+                prepare: prep,
+                ..self
+            },
         })
     }
 }
@@ -110,7 +118,9 @@ pub fn map_stack(stack: &MapStack, opts: &ValidMapOptions) -> Result<MapResult> 
     } else {
         (fit.clusters, Vec::new())
     };
-    let min_px = (opts.min_phase_fraction * f.pixels() as f64).ceil().max(1.0) as usize;
+    let min_px = (opts.min_phase_fraction * f.pixels() as f64)
+        .ceil()
+        .max(1.0) as usize;
     let mut seg = refine(&f, &clusters, &opts.refine);
     // Dissolve boundary bands and phases below the size floor, then label again.
     for _ in 0..8 {
@@ -118,7 +128,9 @@ pub fn map_stack(stack: &MapStack, opts: &ValidMapOptions) -> Result<MapResult> 
             break;
         }
         let inside = interior_fractions(&seg, clusters.k());
-        let mut ends: Vec<Vec<f64>> = (0..clusters.k()).map(|c| clusters.expected_counts(c, st)).collect();
+        let mut ends: Vec<Vec<f64>> = (0..clusters.k())
+            .map(|c| clusters.expected_counts(c, st))
+            .collect();
         ends.push(vec![0.0; f.dims]);
         let mut drop: Vec<(usize, Simplification)> = Vec::new();
         for (c, &(px, interior)) in inside.iter().enumerate() {
@@ -129,15 +141,18 @@ pub fn map_stack(stack: &MapStack, opts: &ValidMapOptions) -> Result<MapResult> 
                 }));
             } else if let Some((dev, weights)) = simplify::nearest_mixture(c, &ends) {
                 if dev < simplify::MIXTURE_WITHIN && interior < BOUNDARY_INTERIOR {
-                    drop.push((c, Simplification {
-                        action: format!(
+                    drop.push((
+                        c,
+                        Simplification {
+                            action: format!(
                             "dissolved a band of mixed pixels ({} ≈ {}; {:.1} % interior pixels)",
                             simplify::fmt_counts(&ends[c]),
                             simplify::describe_mixture(&weights, &ends, clusters.k()),
                             100.0 * interior
                         ),
-                        value: dev,
-                    }));
+                            value: dev,
+                        },
+                    ));
                 }
             }
         }

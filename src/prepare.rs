@@ -299,7 +299,9 @@ fn median_filter(data: &[f32], w: usize, h: usize, r: usize) -> Vec<f32> {
             let (x, y) = (i % w, i / w);
             win.clear();
             for yy in y.saturating_sub(r)..=(y + r).min(h - 1) {
-                win.extend_from_slice(&data[yy * w + x.saturating_sub(r)..=yy * w + (x + r).min(w - 1)]);
+                win.extend_from_slice(
+                    &data[yy * w + x.saturating_sub(r)..=yy * w + (x + r).min(w - 1)],
+                );
             }
             let mid = win.len() / 2;
             *win.select_nth_unstable_by(mid, f32::total_cmp).1
@@ -378,13 +380,11 @@ pub fn prepare(stack: &MapStack, transform: &FeatureTransform) -> Result<Feature
         })
         .collect();
     let mut data = vec![0.0f32; n * dims];
-    data.par_chunks_mut(dims)
-        .enumerate()
-        .for_each(|(i, row)| {
-            for (d, plane) in planes.iter().enumerate() {
-                row[d] = plane[i];
-            }
-        });
+    data.par_chunks_mut(dims).enumerate().for_each(|(i, row)| {
+        for (d, plane) in planes.iter().enumerate() {
+            row[d] = plane[i];
+        }
+    });
     Ok(Features {
         width: w,
         height: h,
@@ -422,7 +422,13 @@ mod tests {
     /// Anscombe (1948) values computed from A(x) = 2√(x + 3/8) (REFERENCES.md §10).
     #[test]
     fn anscombe_values() {
-        for (x, a) in [(0.0, 1.2247), (1.0, 2.3452), (4.0, 4.1833), (10.0, 6.4420), (100.0, 20.0375)] {
+        for (x, a) in [
+            (0.0, 1.2247),
+            (1.0, 2.3452),
+            (4.0, 4.1833),
+            (10.0, 6.4420),
+            (100.0, 20.0375),
+        ] {
             assert!((Stabilise::Anscombe.apply(x) - a).abs() < 1e-4, "{x}");
             assert!((Stabilise::Anscombe.invert(f64::from(a)) - f64::from(x)).abs() < 1e-3);
         }
@@ -452,7 +458,15 @@ mod tests {
 
     #[test]
     fn median_keeps_edges_and_removes_spikes() {
-        let s = stack(9, 9, |x, y| if (x, y) == (4, 4) { 100.0 } else if x < 4 { 10.0 } else { 30.0 });
+        let s = stack(9, 9, |x, y| {
+            if (x, y) == (4, 4) {
+                100.0
+            } else if x < 4 {
+                10.0
+            } else {
+                30.0
+            }
+        });
         let out = median_filter(&s.maps()[0].counts, 9, 9, 1);
         assert_eq!(out[4 * 9 + 4], 30.0, "spike removed");
         assert_eq!(out[2 * 9 + 3], 10.0, "edge kept");
@@ -465,18 +479,36 @@ mod tests {
         let bad = [
             PrepareParams { bin: 0, ..base },
             PrepareParams { bin: 65, ..base },
-            PrepareParams { denoise: Denoise::Gaussian { sigma: 0.0 }, ..base },
-            PrepareParams { denoise: Denoise::Gaussian { sigma: f64::NAN }, ..base },
-            PrepareParams { denoise: Denoise::Median { radius: 0 }, ..base },
-            PrepareParams { min_counts: MinCounts::Relative { fraction: 1.5 }, ..base },
-            PrepareParams { min_counts: MinCounts::Absolute { counts: -1.0 }, ..base },
+            PrepareParams {
+                denoise: Denoise::Gaussian { sigma: 0.0 },
+                ..base
+            },
+            PrepareParams {
+                denoise: Denoise::Gaussian { sigma: f64::NAN },
+                ..base
+            },
+            PrepareParams {
+                denoise: Denoise::Median { radius: 0 },
+                ..base
+            },
+            PrepareParams {
+                min_counts: MinCounts::Relative { fraction: 1.5 },
+                ..base
+            },
+            PrepareParams {
+                min_counts: MinCounts::Absolute { counts: -1.0 },
+                ..base
+            },
         ];
         for p in bad {
             let e = p.check().unwrap_err();
             assert_eq!(e.kind, crate::ErrorKind::Options, "{p:?}");
         }
         assert!("gaussian:x".parse::<Denoise>().is_err());
-        assert_eq!("median:2".parse::<Denoise>(), Ok(Denoise::Median { radius: 2 }));
+        assert_eq!(
+            "median:2".parse::<Denoise>(),
+            Ok(Denoise::Median { radius: 2 })
+        );
         assert_eq!("none".parse::<Denoise>(), Ok(Denoise::None));
     }
 }

@@ -72,12 +72,18 @@ impl RefineParams {
         }
         if !(0.0..0.5).contains(&self.outlier_tail) {
             return Err(Error::options(
-                format!("outlier tail probability {} is out of range", self.outlier_tail),
+                format!(
+                    "outlier tail probability {} is out of range",
+                    self.outlier_tail
+                ),
                 "use a probability from 0 (off) to below 0.5, e.g. 1e-6",
             ));
         }
         if self.max_sweeps > 1000 {
-            return Err(Error::options("too many smoothing sweeps", "use at most 1000"));
+            return Err(Error::options(
+                "too many smoothing sweeps",
+                "use at most 1000",
+            ));
         }
         Ok(ValidRefineParams(self))
     }
@@ -177,7 +183,13 @@ fn mixing_points(ends: &[Vec<f64>]) -> Vec<Vec<f64>> {
         for b in a + 1..ends.len() {
             for s in 1..20 {
                 let t = s as f64 / 20.0;
-                pts.push(ends[a].iter().zip(&ends[b]).map(|(x, y)| t * x + (1.0 - t) * y).collect());
+                pts.push(
+                    ends[a]
+                        .iter()
+                        .zip(&ends[b])
+                        .map(|(x, y)| t * x + (1.0 - t) * y)
+                        .collect(),
+                );
             }
         }
     }
@@ -201,21 +213,30 @@ pub fn refine(f: &Features, clusters: &Clusters, params: &ValidRefineParams) -> 
     let (w, h, d, k) = (f.width, f.height, f.dims, clusters.k());
     let n = w * h;
     let st = f.transform.params().stabilise;
-    let empty_fraction = (f.mask.iter().filter(|m| !**m).count() as f64 / n as f64).clamp(1e-3, 0.5);
+    let empty_fraction =
+        (f.mask.iter().filter(|m| !**m).count() as f64 / n as f64).clamp(1e-3, 0.5);
     let (space, empty_counts, empty_log_norm) = match clusters {
         Clusters::Poisson { .. } => (
             Space::Counts,
             // A pore still picks up a little: stray and scattered X-rays (common practice,
             // no source: 0.05 counts per pixel and element).
             vec![0.05; d],
-            if p.smoothing == 0.0 { empty_fraction.ln() } else { 0.0 },
+            if p.smoothing == 0.0 {
+                empty_fraction.ln()
+            } else {
+                0.0
+            },
         ),
         _ => {
             let var = clusters.noise_variance().max(1e-6);
             (
                 Space::Transformed(st, var),
                 vec![0.0; d],
-                if p.smoothing == 0.0 { empty_fraction.ln() } else { 0.0 } - 0.5 * d as f64 * (2.0 * std::f64::consts::PI * var).ln(),
+                if p.smoothing == 0.0 {
+                    empty_fraction.ln()
+                } else {
+                    0.0
+                } - 0.5 * d as f64 * (2.0 * std::f64::consts::PI * var).ln(),
             )
         }
     };
@@ -235,7 +256,11 @@ pub fn refine(f: &Features, clusters: &Clusters, params: &ValidRefineParams) -> 
     let mut ends: Vec<Vec<f64>> = (0..k)
         .map(|c| match space {
             Space::Counts => clusters.mean(c).to_vec(),
-            Space::Transformed(st, _) => clusters.mean(c).iter().map(|&m| st.invert(m).max(0.0)).collect(),
+            Space::Transformed(st, _) => clusters
+                .mean(c)
+                .iter()
+                .map(|&m| st.invert(m).max(0.0))
+                .collect(),
         })
         .collect();
     ends.push(fs.empty_counts.clone());
@@ -283,7 +308,9 @@ pub fn refine(f: &Features, clusters: &Clusters, params: &ValidRefineParams) -> 
         .collect();
     let ml: Vec<u16> = first.iter().map(|x| x.0).collect();
     let mut confidence: Vec<f32> = first.iter().map(|x| x.1).collect();
-    let fixed: Vec<bool> = (0..n).map(|i| !f.mask[i] || ml[i] == outlier_label).collect();
+    let fixed: Vec<bool> = (0..n)
+        .map(|i| !f.mask[i] || ml[i] == outlier_label)
+        .collect();
     // With the spatial prior on, start from the label that best explains the pixel *and*
     // its 3 × 3 neighbourhood: noise-free enough that ICM does not freeze in islands of
     // wrong labels; the pixel's own best label stays a candidate in every sweep.
@@ -303,7 +330,9 @@ pub fn refine(f: &Features, clusters: &Clusters, params: &ValidRefineParams) -> 
                         for xx in x.saturating_sub(1)..=(x + 1).min(w - 1) {
                             let j = yy * w + xx;
                             if !fixed[j] {
-                                acc.iter_mut().zip(&scores[j * kk..(j + 1) * kk]).for_each(|(a, s)| *a += s);
+                                acc.iter_mut()
+                                    .zip(&scores[j * kk..(j + 1) * kk])
+                                    .for_each(|(a, s)| *a += s);
                             }
                         }
                     }
@@ -368,14 +397,19 @@ pub fn refine(f: &Features, clusters: &Clusters, params: &ValidRefineParams) -> 
                             }
                             let row = f.row(i);
                             let energy = |c: u16| {
-                                let prior: f64 = votes[..nv].iter().filter(|v| v.0 == c).map(|v| v.1).sum();
+                                let prior: f64 =
+                                    votes[..nv].iter().filter(|v| v.0 == c).map(|v| v.1).sum();
                                 let mut s = fs.score(c as usize, row);
                                 if partial_volume {
                                     // Next to a clearly different phase b, a pixel of phase c
                                     // may hold some of b: judge c by its best such mixture.
                                     for &(b, _) in &votes[..nv] {
                                         if b != c && far[c as usize * kk + b as usize] {
-                                            s = s.max(mix_score(row, &ends[c as usize], &ends[b as usize]));
+                                            s = s.max(mix_score(
+                                                row,
+                                                &ends[c as usize],
+                                                &ends[b as usize],
+                                            ));
                                         }
                                     }
                                 }
@@ -494,7 +528,9 @@ fn far_pairs(ends: &[Vec<f64>]) -> Vec<bool> {
     let mut far = vec![false; n * n];
     for a in 0..n {
         for b in 0..n {
-            far[a * n + b] = a != b && crate::cluster::simplify::j_divergence(&ends[a], &ends[b]) >= UNMIX_MIN_DIVERGENCE;
+            far[a * n + b] = a != b
+                && crate::cluster::simplify::j_divergence(&ends[a], &ends[b])
+                    >= UNMIX_MIN_DIVERGENCE;
         }
     }
     far
@@ -529,9 +565,20 @@ pub const UNMIX_PASSES: usize = 4;
 /// a rim. Here the mixing fraction t of counts ≈ t·a + (1 − t)·b is estimated by maximum
 /// likelihood (Poisson, on a grid of 1/20) and the pixel keeps a only if t ≥ ½. Applied
 /// once, after the spatial prior, only between clearly different phases (including pores).
-fn unmix_boundaries(f: &Features, labels: &mut [u16], ends: &[Vec<f64>], fixed: &[bool], outlier: u16) -> usize {
+fn unmix_boundaries(
+    f: &Features,
+    labels: &mut [u16],
+    ends: &[Vec<f64>],
+    fixed: &[bool],
+    outlier: u16,
+) -> usize {
     let (w, h, d) = (f.width, f.height, f.dims);
-    let planes: Vec<&[f32]> = f.counts.maps().iter().map(|m| m.counts.as_slice()).collect();
+    let planes: Vec<&[f32]> = f
+        .counts
+        .maps()
+        .iter()
+        .map(|m| m.counts.as_slice())
+        .collect();
     let kk = ends.len();
     let far = far_pairs(ends);
     let current: &[u16] = labels;
@@ -552,7 +599,11 @@ fn unmix_boundaries(f: &Features, labels: &mut [u16], ends: &[Vec<f64>], fixed: 
                     continue;
                 }
                 let b = current[yy as usize * w + xx as usize];
-                if b != a && b != outlier && far[a as usize * kk + b as usize] && !others[..no].contains(&b) {
+                if b != a
+                    && b != outlier
+                    && far[a as usize * kk + b as usize]
+                    && !others[..no].contains(&b)
+                {
                     others[no] = b;
                     no += 1;
                 }
@@ -572,14 +623,17 @@ fn unmix_boundaries(f: &Features, labels: &mut [u16], ends: &[Vec<f64>], fixed: 
                         })
                         .sum()
                 };
-                let t = (0..=20).map(|s| s as f64 / 20.0).fold((f64::NEG_INFINITY, 1.0), |acc, t| {
-                    let v = ll(t);
-                    if v > acc.0 {
-                        (v, t)
-                    } else {
-                        acc
-                    }
-                });
+                let t =
+                    (0..=20)
+                        .map(|s| s as f64 / 20.0)
+                        .fold((f64::NEG_INFINITY, 1.0), |acc, t| {
+                            let v = ll(t);
+                            if v > acc.0 {
+                                (v, t)
+                            } else {
+                                acc
+                            }
+                        });
                 if t.1 < 0.5 && best.is_none_or(|bb| t.1 < bb.0) {
                     best = Some((t.1, b));
                 }
@@ -595,11 +649,19 @@ fn unmix_boundaries(f: &Features, labels: &mut [u16], ends: &[Vec<f64>], fixed: 
 
 /// Gives connected features (8-connected) smaller than `min_px` to the label that borders
 /// them most. Returns the number of pixels moved.
-fn remove_small_features(labels: &mut [u16], w: usize, h: usize, fixed: &[bool], min_px: usize, outlier: u16) -> usize {
+fn remove_small_features(
+    labels: &mut [u16],
+    w: usize,
+    h: usize,
+    fixed: &[bool],
+    min_px: usize,
+    outlier: u16,
+) -> usize {
     use image::{ImageBuffer, Luma};
     use imageproc::region_labelling::{connected_components, Connectivity};
     let img: ImageBuffer<Luma<u16>, Vec<u16>> =
-        ImageBuffer::from_raw(w as u32, h as u32, labels.iter().map(|&l| l + 1).collect()).expect("size matches");
+        ImageBuffer::from_raw(w as u32, h as u32, labels.iter().map(|&l| l + 1).collect())
+            .expect("size matches");
     let comp = connected_components(&img, Connectivity::Eight, Luma([0u16]));
     let comp = comp.into_raw();
     let ncomp = comp.iter().copied().max().unwrap_or(0) as usize;
@@ -630,7 +692,11 @@ fn remove_small_features(labels: &mut [u16], w: usize, h: usize, fixed: &[bool],
     }
     let target: std::collections::BTreeMap<u32, u16> = border
         .into_iter()
-        .filter_map(|(c, v)| v.into_iter().max_by_key(|&(l, n)| (n, std::cmp::Reverse(l))).map(|(l, _)| (c, l)))
+        .filter_map(|(c, v)| {
+            v.into_iter()
+                .max_by_key(|&(l, n)| (n, std::cmp::Reverse(l)))
+                .map(|(l, _)| (c, l))
+        })
         .collect();
     for i in 0..w * h {
         if let Some(&l) = target.get(&comp[i]) {
@@ -661,14 +727,24 @@ pub fn interior_fractions(seg: &Segmentation, k: usize) -> Vec<(usize, f64)> {
             if x == 0 || y == 0 || x + 1 == w || y + 1 == h {
                 continue;
             }
-            let all = (y - 1..=y + 1).all(|yy| (x - 1..=x + 1).all(|xx| seg.labels[yy * w + xx] == l));
+            let all =
+                (y - 1..=y + 1).all(|yy| (x - 1..=x + 1).all(|xx| seg.labels[yy * w + xx] == l));
             if all {
                 inside[c] += 1;
             }
         }
     }
     (0..k)
-        .map(|c| (pixels[c], if pixels[c] > 0 { inside[c] as f64 / pixels[c] as f64 } else { 0.0 }))
+        .map(|c| {
+            (
+                pixels[c],
+                if pixels[c] > 0 {
+                    inside[c] as f64 / pixels[c] as f64
+                } else {
+                    0.0
+                },
+            )
+        })
         .collect()
 }
 
@@ -702,6 +778,13 @@ pub fn interior_means(f: &Features, seg: &Segmentation, k: usize) -> Vec<Option<
         }
     }
     (0..k)
-        .map(|c| (count[c] >= MIN_INTERIOR_PIXELS).then(|| sum[c * d..(c + 1) * d].iter().map(|s| s / count[c] as f64).collect()))
+        .map(|c| {
+            (count[c] >= MIN_INTERIOR_PIXELS).then(|| {
+                sum[c * d..(c + 1) * d]
+                    .iter()
+                    .map(|s| s / count[c] as f64)
+                    .collect()
+            })
+        })
         .collect()
 }

@@ -145,7 +145,12 @@ pub fn scatter_particles(
 /// Voronoi grains: `count` seeds at random positions in `[0, w) × [0, h)`, each given a
 /// label drawn with probability ∝ `weights` (labels 1..=weights.len()). Returns
 /// (x, y, label) per seed; a point belongs to the grain of its nearest seed.
-pub fn voronoi_seeds(rng: &mut ChaCha8Rng, count: usize, (w, h): (f64, f64), weights: &[f64]) -> Vec<(f64, f64, u16)> {
+pub fn voronoi_seeds(
+    rng: &mut ChaCha8Rng,
+    count: usize,
+    (w, h): (f64, f64),
+    weights: &[f64],
+) -> Vec<(f64, f64, u16)> {
     let total: f64 = weights.iter().sum();
     (0..count)
         .map(|_| {
@@ -167,7 +172,10 @@ pub fn voronoi_seeds(rng: &mut ChaCha8Rng, count: usize, (w, h): (f64, f64), wei
 pub fn voronoi_label(seeds: &[(f64, f64, u16)], x: f64, y: f64) -> u16 {
     seeds
         .iter()
-        .min_by(|a, b| ((a.0 - x).powi(2) + (a.1 - y).powi(2)).total_cmp(&((b.0 - x).powi(2) + (b.1 - y).powi(2))))
+        .min_by(|a, b| {
+            ((a.0 - x).powi(2) + (a.1 - y).powi(2))
+                .total_cmp(&((b.0 - x).powi(2) + (b.1 - y).powi(2)))
+        })
         .map_or(0, |s| s.2)
 }
 
@@ -303,7 +311,8 @@ pub fn generate(micro: &Microstructure, opts: &SynthOptions) -> Result<SynthFiel
                 .map(|&t| expected[t as usize][ci] as f32)
                 .collect();
             let lam = blur(lam, w, h, det.blur_sigma_px);
-            let mut rng = ChaCha8Rng::seed_from_u64(opts.seed ^ 0x9E37_79B9u64.wrapping_mul(ci as u64 + 1));
+            let mut rng =
+                ChaCha8Rng::seed_from_u64(opts.seed ^ 0x9E37_79B9u64.wrapping_mul(ci as u64 + 1));
             let counts = lam
                 .iter()
                 .map(|&l| poisson(&mut rng, f64::from(l)))

@@ -70,7 +70,14 @@ pub enum GmmError {
 }
 
 impl GaussianMixture {
-    fn from_parts(k: usize, d: usize, weights: Vec<f64>, means: Vec<f64>, covariances: Vec<f64>) -> Result<Self, GmmError> {
+    /// A mixture from its parameters (covariances `k × d × d`, row-major).
+    pub fn new(
+        k: usize,
+        d: usize,
+        weights: Vec<f64>,
+        means: Vec<f64>,
+        covariances: Vec<f64>,
+    ) -> Result<Self, GmmError> {
         let mut g = GaussianMixture {
             k,
             d,
@@ -105,7 +112,9 @@ impl GaussianMixture {
                     inv_chol[c * d * d + i * d + j] = linv[(i, j)] as f32;
                 }
             }
-            log_norm[c] = self.weights[c].max(1e-300).ln() - 0.5 * d as f64 * (2.0 * std::f64::consts::PI).ln() + logdet;
+            log_norm[c] = self.weights[c].max(1e-300).ln()
+                - 0.5 * d as f64 * (2.0 * std::f64::consts::PI).ln()
+                + logdet;
         }
         self.cache = Cache {
             inv_chol,
@@ -172,7 +181,10 @@ impl GaussianMixture {
         data.par_chunks(CHUNK_ROWS * d)
             .flat_map_iter(|chunk| {
                 let mut lp = vec![0.0; self.k];
-                chunk.chunks_exact(d).map(|r| self.classify(r, &mut lp).0 as u16).collect::<Vec<_>>()
+                chunk
+                    .chunks_exact(d)
+                    .map(|r| self.classify(r, &mut lp).0 as u16)
+                    .collect::<Vec<_>>()
             })
             .collect()
     }
@@ -185,7 +197,10 @@ impl GaussianMixture {
             .par_chunks(CHUNK_ROWS * d)
             .map(|chunk| {
                 let mut lp = vec![0.0; self.k];
-                chunk.chunks_exact(d).map(|r| self.classify(r, &mut lp).2).sum()
+                chunk
+                    .chunks_exact(d)
+                    .map(|r| self.classify(r, &mut lp).2)
+                    .sum()
             })
             .collect();
         parts.iter().sum::<f64>() / n as f64
@@ -212,7 +227,12 @@ struct Stats {
 
 impl Stats {
     fn new(k: usize, d: usize) -> Self {
-        Stats { nk: vec![0.0; k], s1: vec![0.0; k * d], s2: vec![0.0; k * d * d], ll: 0.0 }
+        Stats {
+            nk: vec![0.0; k],
+            s1: vec![0.0; k * d],
+            s2: vec![0.0; k * d * d],
+            ll: 0.0,
+        }
     }
     fn add(mut self, o: Stats) -> Stats {
         self.nk.iter_mut().zip(&o.nk).for_each(|(a, b)| *a += b);
@@ -236,7 +256,14 @@ impl Stats {
     }
 }
 
-fn m_step(st: &Stats, k: usize, d: usize, n: f64, reg: f64, previous: Option<&GaussianMixture>) -> (Vec<f64>, Vec<f64>, Vec<f64>) {
+fn m_step(
+    st: &Stats,
+    k: usize,
+    d: usize,
+    n: f64,
+    reg: f64,
+    previous: Option<&GaussianMixture>,
+) -> (Vec<f64>, Vec<f64>, Vec<f64>) {
     let mut w = vec![0.0; k];
     let mut means = vec![0.0; k * d];
     let mut covs = vec![0.0; k * d * d];
@@ -247,7 +274,8 @@ fn m_step(st: &Stats, k: usize, d: usize, n: f64, reg: f64, previous: Option<&Ga
             w[c] = 1e-12;
             if let Some(p) = previous {
                 means[c * d..(c + 1) * d].copy_from_slice(&p.means[c * d..(c + 1) * d]);
-                covs[c * d * d..(c + 1) * d * d].copy_from_slice(&p.covariances[c * d * d..(c + 1) * d * d]);
+                covs[c * d * d..(c + 1) * d * d]
+                    .copy_from_slice(&p.covariances[c * d * d..(c + 1) * d * d]);
             } else {
                 for i in 0..d {
                     covs[c * d * d + i * d + i] = 1.0;
@@ -274,7 +302,12 @@ fn m_step(st: &Stats, k: usize, d: usize, n: f64, reg: f64, previous: Option<&Ga
 }
 
 /// Fits a mixture by EM, starting from hard `labels` (values `< k`) of the rows of `data`.
-pub fn fit(data: &[f32], d: usize, labels: &[u16], p: &GmmParams) -> Result<GaussianMixture, GmmError> {
+pub fn fit(
+    data: &[f32],
+    d: usize,
+    labels: &[u16],
+    p: &GmmParams,
+) -> Result<GaussianMixture, GmmError> {
     let k = p.k;
     let n = (data.len() / d) as f64;
     // Initial M-step from the hard partition.
@@ -293,7 +326,7 @@ pub fn fit(data: &[f32], d: usize, labels: &[u16], p: &GmmParams) -> Result<Gaus
         .reduce(Stats::add)
         .expect("data not empty");
     let (w, m, c) = m_step(&init, k, d, n, p.reg_covar, None);
-    let mut g = GaussianMixture::from_parts(k, d, w, m, c)?;
+    let mut g = GaussianMixture::new(k, d, w, m, c)?;
     let mut prev_ll = f64::NEG_INFINITY;
     for it in 0..p.max_iter {
         let st: Stats = data
@@ -304,8 +337,8 @@ pub fn fit(data: &[f32], d: usize, labels: &[u16], p: &GmmParams) -> Result<Gaus
                 for row in chunk.chunks_exact(d) {
                     let (_, _, lse) = g.classify(row, &mut lp);
                     s.ll += lse;
-                    for c in 0..k {
-                        let r = (lp[c] - lse).exp();
+                    for (c, &l) in lp.iter().enumerate() {
+                        let r = (l - lse).exp();
                         if r > 1e-10 {
                             s.accumulate(row, c, r, d);
                         }
@@ -319,7 +352,7 @@ pub fn fit(data: &[f32], d: usize, labels: &[u16], p: &GmmParams) -> Result<Gaus
             .expect("data not empty");
         let ll = st.ll / n;
         let (w, m, c) = m_step(&st, k, d, n, p.reg_covar, Some(&g));
-        let mut next = GaussianMixture::from_parts(k, d, w, m, c)?;
+        let mut next = GaussianMixture::new(k, d, w, m, c)?;
         next.iterations = it + 1;
         // `ll` belongs to the parameters that produced these responsibilities.
         next.mean_log_likelihood = ll;
@@ -344,7 +377,13 @@ mod tests {
     /// d = 2 (computed there).
     #[test]
     fn parameter_counts_and_bic() {
-        for ((k, d), p) in [((1, 1), 2), ((2, 2), 11), ((3, 2), 17), ((4, 3), 39), ((5, 4), 74)] {
+        for ((k, d), p) in [
+            ((1, 1), 2),
+            ((2, 2), 11),
+            ((3, 2), 17),
+            ((4, 3), 39),
+            ((5, 4), 74),
+        ] {
             assert_eq!(n_parameters(k, d), p, "k={k} d={d}");
         }
         assert!((bic(-1234.5, 17, 1000) - 2586.432).abs() < 1e-3);
@@ -369,10 +408,25 @@ mod tests {
                 labels.push(0);
             }
         }
-        let g = fit(&data, 2, &labels, &GmmParams { k: 2, max_iter: 100, tol: 1e-8, reg_covar: 1e-6 }).unwrap();
+        let g = fit(
+            &data,
+            2,
+            &labels,
+            &GmmParams {
+                k: 2,
+                max_iter: 100,
+                tol: 1e-8,
+                reg_covar: 1e-6,
+            },
+        )
+        .unwrap();
         assert!((g.weights[1] - 1.0 / 3.0).abs() < 0.02, "{:?}", g.weights);
         assert!((g.covariances[1] - 0.8).abs() < 0.06, "{:?}", g.covariances);
-        assert!((g.covariances[4 + 3] - 4.0).abs() < 0.3, "{:?}", g.covariances);
+        assert!(
+            (g.covariances[4 + 3] - 4.0).abs() < 0.3,
+            "{:?}",
+            g.covariances
+        );
         assert!(g.converged);
         let pred = g.predict(&data);
         let agree = pred.iter().zip(&labels).filter(|(a, b)| a == b).count();

@@ -102,7 +102,11 @@ impl Clusters {
     pub fn expected_counts(&self, c: usize, st: crate::prepare::Stabilise) -> Vec<f64> {
         match self {
             Clusters::Poisson { model } => model.rates[c * model.d..(c + 1) * model.d].to_vec(),
-            _ => self.mean(c).iter().map(|&m| st.invert(m).max(0.0)).collect(),
+            _ => self
+                .mean(c)
+                .iter()
+                .map(|&m| st.invert(m).max(0.0))
+                .collect(),
         }
     }
 
@@ -112,7 +116,9 @@ impl Clusters {
         let d = self.d();
         let mut out = self.clone();
         match &mut out {
-            Clusters::Kmeans { model, .. } => model.centroids[c * d..(c + 1) * d].copy_from_slice(mean),
+            Clusters::Kmeans { model, .. } => {
+                model.centroids[c * d..(c + 1) * d].copy_from_slice(mean)
+            }
             Clusters::Gmm { model } => {
                 model.means[c * d..(c + 1) * d].copy_from_slice(mean);
                 model.refresh().expect("covariances unchanged");
@@ -128,7 +134,11 @@ impl Clusters {
     /// The same model without phase `c` (weights renormalised).
     pub fn without(&self, c: usize) -> Clusters {
         fn drop_rows(v: &[f64], c: usize, len: usize) -> Vec<f64> {
-            v.chunks(len).enumerate().filter(|(i, _)| *i != c).flat_map(|(_, r)| r.to_vec()).collect()
+            v.chunks(len)
+                .enumerate()
+                .filter(|(i, _)| *i != c)
+                .flat_map(|(_, r)| r.to_vec())
+                .collect()
         }
         fn renorm(w: Vec<f64>) -> Vec<f64> {
             let s: f64 = w.iter().sum();
@@ -139,7 +149,10 @@ impl Clusters {
                 let mut m = model.clone();
                 m.centroids = drop_rows(&model.centroids, c, model.d);
                 m.k -= 1;
-                Clusters::Kmeans { model: m, variance: *variance }
+                Clusters::Kmeans {
+                    model: m,
+                    variance: *variance,
+                }
             }
             Clusters::Gmm { model } => {
                 let mut m = model.clone();
@@ -170,20 +183,30 @@ impl Clusters {
             Clusters::Kmeans { model, variance } => {
                 let mut m = model.clone();
                 for j in 0..d {
-                    m.centroids[a * d + j] = 0.5 * (model.centroids[a * d + j] + model.centroids[b * d + j]);
+                    m.centroids[a * d + j] =
+                        0.5 * (model.centroids[a * d + j] + model.centroids[b * d + j]);
                 }
-                Clusters::Kmeans { model: m, variance: *variance }.without(b)
+                Clusters::Kmeans {
+                    model: m,
+                    variance: *variance,
+                }
+                .without(b)
             }
             Clusters::Gmm { model } => {
                 let mut m = model.clone();
                 let (wa, wb) = (model.weights[a], model.weights[b]);
                 let w = wa + wb;
-                let mean: Vec<f64> = (0..d).map(|j| (wa * model.means[a * d + j] + wb * model.means[b * d + j]) / w).collect();
+                let mean: Vec<f64> = (0..d)
+                    .map(|j| (wa * model.means[a * d + j] + wb * model.means[b * d + j]) / w)
+                    .collect();
                 for i in 0..d {
                     for j in 0..d {
-                        let da = (model.means[a * d + i] - mean[i]) * (model.means[a * d + j] - mean[j]);
-                        let db = (model.means[b * d + i] - mean[i]) * (model.means[b * d + j] - mean[j]);
-                        m.covariances[a * d * d + i * d + j] = (wa * (model.covariances[a * d * d + i * d + j] + da)
+                        let da =
+                            (model.means[a * d + i] - mean[i]) * (model.means[a * d + j] - mean[j]);
+                        let db =
+                            (model.means[b * d + i] - mean[i]) * (model.means[b * d + j] - mean[j]);
+                        m.covariances[a * d * d + i * d + j] = (wa
+                            * (model.covariances[a * d * d + i * d + j] + da)
                             + wb * (model.covariances[b * d * d + i * d + j] + db))
                             / w;
                     }
@@ -197,7 +220,8 @@ impl Clusters {
                 let mut m = model.clone();
                 let (wa, wb) = (model.weights[a], model.weights[b]);
                 for j in 0..d {
-                    m.rates[a * d + j] = (wa * model.rates[a * d + j] + wb * model.rates[b * d + j]) / (wa + wb);
+                    m.rates[a * d + j] =
+                        (wa * model.rates[a * d + j] + wb * model.rates[b * d + j]) / (wa + wb);
                 }
                 m.weights[a] = wa + wb;
                 m.weights[b] = 0.0;
@@ -218,7 +242,8 @@ impl Clusters {
                     centres: model.centres_f32(),
                     d: model.d,
                     inv_var: (1.0 / var) as f32,
-                    log_norm: -(model.k as f64).ln() - 0.5 * d * (2.0 * std::f64::consts::PI * var).ln(),
+                    log_norm: -(model.k as f64).ln()
+                        - 0.5 * d * (2.0 * std::f64::consts::PI * var).ln(),
                 }
             }
             Clusters::Gmm { model } => ScorerKind::Gmm(model),
@@ -245,7 +270,9 @@ impl Clusters {
                 let d = model.d;
                 (0..model.k)
                     .map(|c| {
-                        let diag: f64 = (0..d).map(|i| model.covariances[c * d * d + i * d + i]).sum();
+                        let diag: f64 = (0..d)
+                            .map(|i| model.covariances[c * d * d + i * d + i])
+                            .sum();
                         model.weights[c] * diag / d as f64
                     })
                     .sum()
@@ -291,9 +318,12 @@ impl Scorer<'_> {
     #[inline]
     pub fn discrepancy(&self, c: usize, row: &[f32]) -> f64 {
         match &self.kind {
-            ScorerKind::Kmeans { centres, d, inv_var, .. } => {
-                f64::from(kmeans::dist2(row, &centres[c * d..(c + 1) * d]) * inv_var)
-            }
+            ScorerKind::Kmeans {
+                centres,
+                d,
+                inv_var,
+                ..
+            } => f64::from(kmeans::dist2(row, &centres[c * d..(c + 1) * d]) * inv_var),
             ScorerKind::Gmm(g) => f64::from(g.mahalanobis2(c, row)),
             ScorerKind::Poisson(m) => m.deviance(c, row),
         }

@@ -55,7 +55,8 @@ pub fn ln_factorial(x: f64) -> f64 {
     if x < 20.0 {
         (2..=x as u64).map(|i| (i as f64).ln()).sum()
     } else {
-        x * x.ln() - x + 0.5 * (2.0 * std::f64::consts::PI * x).ln() + 1.0 / (12.0 * x) - 1.0 / (360.0 * x.powi(3))
+        x * x.ln() - x + 0.5 * (2.0 * std::f64::consts::PI * x).ln() + 1.0 / (12.0 * x)
+            - 1.0 / (360.0 * x.powi(3))
     }
 }
 
@@ -85,7 +86,10 @@ impl PoissonMixture {
         self.cache = Cache {
             ln_rates: self.rates.iter().map(|&r| r.ln() as f32).collect(),
             offset: (0..self.k)
-                .map(|c| self.weights[c].max(1e-300).ln() - self.rates[c * d..(c + 1) * d].iter().sum::<f64>())
+                .map(|c| {
+                    self.weights[c].max(1e-300).ln()
+                        - self.rates[c * d..(c + 1) * d].iter().sum::<f64>()
+                })
                 .collect(),
         };
     }
@@ -167,7 +171,15 @@ pub fn from_labels(data: &[f32], d: usize, labels: &[u16], k: usize) -> PoissonM
     }
     let n: f64 = nk.iter().sum();
     let weights = nk.iter().map(|&c| (c / n).max(1e-12)).collect();
-    let rates = (0..k * d).map(|i| if nk[i / d] > 0.0 { s[i] / nk[i / d] } else { MIN_RATE }).collect();
+    let rates = (0..k * d)
+        .map(|i| {
+            if nk[i / d] > 0.0 {
+                s[i] / nk[i / d]
+            } else {
+                MIN_RATE
+            }
+        })
+        .collect();
     PoissonMixture::new(k, d, weights, rates)
 }
 
@@ -177,7 +189,10 @@ fn total_log_likelihood(m: &PoissonMixture, data: &[f32]) -> f64 {
     data.par_chunks(CHUNK_ROWS * d)
         .map(|chunk| {
             let mut lp = vec![0.0; m.k];
-            chunk.chunks_exact(d).map(|r| m.classify(r, &mut lp).2).sum::<f64>()
+            chunk
+                .chunks_exact(d)
+                .map(|r| m.classify(r, &mut lp).2)
+                .sum::<f64>()
         })
         .collect::<Vec<_>>()
         .iter()
@@ -232,7 +247,13 @@ pub fn fit(data: &[f32], d: usize, start: PoissonMixture, p: &PoissonParams) -> 
         let ll = (ll - sum_ln_fact) / n;
         let weights = nk.iter().map(|&c| (c / n).max(1e-12)).collect();
         let rates = (0..k * d)
-            .map(|i| if nk[i / d] > 1e-9 { (s[i] / nk[i / d]).max(MIN_RATE) } else { m.rates[i] })
+            .map(|i| {
+                if nk[i / d] > 1e-9 {
+                    (s[i] / nk[i / d]).max(MIN_RATE)
+                } else {
+                    m.rates[i]
+                }
+            })
             .collect();
         let mut next = PoissonMixture::new(k, d, weights, rates);
         next.iterations = it + 1;
@@ -278,7 +299,11 @@ mod tests {
         let mut data = Vec::new();
         let mut labels = Vec::new();
         for i in 0..20_000 {
-            let (l, rates) = if i % 20 == 0 { (1u16, [6.0, 20.0]) } else { (0u16, [2.0, 30.0]) };
+            let (l, rates) = if i % 20 == 0 {
+                (1u16, [6.0, 20.0])
+            } else {
+                (0u16, [2.0, 30.0])
+            };
             for r in rates {
                 data.push(Poisson::new(r).unwrap().sample(&mut rng) as f32);
             }
@@ -287,8 +312,20 @@ mod tests {
         // Start from a poor partition: halves of the data.
         let init: Vec<u16> = (0..20_000).map(|i| u16::from(i >= 10_000)).collect();
         let start = from_labels(&data, 2, &init, 2);
-        let m = fit(&data, 2, start, &PoissonParams { max_iter: 500, tol: 1e-9 });
-        let (small, big) = if m.weights[0] < m.weights[1] { (0, 1) } else { (1, 0) };
+        let m = fit(
+            &data,
+            2,
+            start,
+            &PoissonParams {
+                max_iter: 500,
+                tol: 1e-9,
+            },
+        );
+        let (small, big) = if m.weights[0] < m.weights[1] {
+            (0, 1)
+        } else {
+            (1, 0)
+        };
         assert!((m.weights[small] - 0.05).abs() < 0.01, "{:?}", m.weights);
         assert!((m.rates[big * 2] - 2.0).abs() < 0.05, "{:?}", m.rates);
         assert!((m.rates[small * 2 + 1] - 20.0).abs() < 0.5, "{:?}", m.rates);

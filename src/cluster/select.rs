@@ -108,7 +108,10 @@ impl ClusterParams {
         }
         if self.sample_size < 1000 {
             return Err(Error::options(
-                format!("a fitting sample of {} pixels is too small", self.sample_size),
+                format!(
+                    "a fitting sample of {} pixels is too small",
+                    self.sample_size
+                ),
                 "fit on at least 1000 pixels",
             ));
         }
@@ -163,7 +166,9 @@ fn distinct_rows(rows: &[f32], d: usize, at_least: usize) -> bool {
 fn fit_k(rows: &[f32], d: usize, k: usize, p: &ClusterParams) -> Result<Clusters> {
     let n = rows.len() / d;
     if p.method == Method::Poisson {
-        return Ok(Clusters::Poisson { model: fit_poisson(rows, d, k, p) });
+        return Ok(Clusters::Poisson {
+            model: fit_poisson(rows, d, k, p),
+        });
     }
     let km = kmeans::fit(
         rows,
@@ -179,7 +184,10 @@ fn fit_k(rows: &[f32], d: usize, k: usize, p: &ClusterParams) -> Result<Clusters
     match p.method {
         Method::Kmeans => {
             let variance = km.inertia / (n * d) as f64;
-            Ok(Clusters::Kmeans { model: km, variance })
+            Ok(Clusters::Kmeans {
+                model: km,
+                variance,
+            })
         }
         _ => {
             let labels = km.predict(rows);
@@ -213,23 +221,35 @@ fn fit_poisson(rows: &[f32], d: usize, k: usize, p: &ClusterParams) -> PoissonMi
     let root: Vec<f32> = rows.iter().map(|&x| x.max(0.0).sqrt()).collect();
     let mut best: Option<PoissonMixture> = None;
     for run in 0..p.n_init {
-        let mut rng = ChaCha8Rng::seed_from_u64(p.seed.wrapping_add((run as u64).wrapping_mul(0x2545_F491_4F6C_DD1D)));
+        let mut rng = ChaCha8Rng::seed_from_u64(
+            p.seed
+                .wrapping_add((run as u64).wrapping_mul(0x2545_F491_4F6C_DD1D)),
+        );
         let seeds = kmeans::kmeans_plus_plus(&root, d, k, &mut rng);
         let start = start_from_centres(rows, &root, d, &seeds);
         let m = poisson::fit(rows, d, start, &SHORT_EM);
-        if best.as_ref().is_none_or(|b| m.mean_log_likelihood > b.mean_log_likelihood) {
+        if best
+            .as_ref()
+            .is_none_or(|b| m.mean_log_likelihood > b.mean_log_likelihood)
+        {
             best = Some(m);
         }
     }
     poisson::fit(rows, d, best.expect("n_init ≥ 1"), &EM)
 }
 
-const EM: PoissonParams = PoissonParams { max_iter: 300, tol: 1e-5 };
+const EM: PoissonParams = PoissonParams {
+    max_iter: 300,
+    tol: 1e-5,
+};
 
 /// A starting mixture from centres in √counts: each row goes to its nearest centre.
 fn start_from_centres(rows: &[f32], root: &[f32], d: usize, centres: &[f32]) -> PoissonMixture {
     let k = centres.len() / d;
-    let labels: Vec<u16> = root.chunks_exact(d).map(|r| kmeans::nearest(r, centres, d).0 as u16).collect();
+    let labels: Vec<u16> = root
+        .chunks_exact(d)
+        .map(|r| kmeans::nearest(r, centres, d).0 as u16)
+        .collect();
     poisson::from_labels(rows, d, &labels, k)
 }
 
@@ -238,11 +258,19 @@ fn start_from_centres(rows: &[f32], root: &[f32], d: usize, centres: &[f32]) -> 
 /// current phases explain the data worst (a draw ∝ D² in √counts, as in k-means++); the
 /// best of `n_init` such seeds after EM is kept. Each step starts near a good solution, so
 /// the BIC curve is smooth and cheap to compute.
-fn grow_poisson(rows: &[f32], d: usize, prev: &PoissonMixture, p: &ClusterParams) -> PoissonMixture {
+fn grow_poisson(
+    rows: &[f32],
+    d: usize,
+    prev: &PoissonMixture,
+    p: &ClusterParams,
+) -> PoissonMixture {
     use rand::Rng;
     let root: Vec<f32> = rows.iter().map(|&x| x.max(0.0).sqrt()).collect();
     let old: Vec<f32> = prev.rates.iter().map(|&r| r.sqrt() as f32).collect();
-    let d2: Vec<f64> = root.chunks_exact(d).map(|r| f64::from(kmeans::nearest(r, &old, d).1)).collect();
+    let d2: Vec<f64> = root
+        .chunks_exact(d)
+        .map(|r| f64::from(kmeans::nearest(r, &old, d).1))
+        .collect();
     let total: f64 = d2.iter().sum();
     let mut rng = ChaCha8Rng::seed_from_u64(p.seed ^ (prev.k as u64).wrapping_mul(0x9E37_79B9));
     let mut best: Option<PoissonMixture> = None;
@@ -258,14 +286,20 @@ fn grow_poisson(rows: &[f32], d: usize, prev: &PoissonMixture, p: &ClusterParams
         let start = start_from_centres(rows, &root, d, &centres);
         // A short EM ranks the candidate seeds; only the winner runs to convergence.
         let m = poisson::fit(rows, d, start, &SHORT_EM);
-        if best.as_ref().is_none_or(|b| m.mean_log_likelihood > b.mean_log_likelihood) {
+        if best
+            .as_ref()
+            .is_none_or(|b| m.mean_log_likelihood > b.mean_log_likelihood)
+        {
             best = Some(m);
         }
     }
     poisson::fit(rows, d, best.expect("n_init ≥ 1"), &EM)
 }
 
-const SHORT_EM: PoissonParams = PoissonParams { max_iter: 15, tol: 1e-4 };
+const SHORT_EM: PoissonParams = PoissonParams {
+    max_iter: 15,
+    tol: 1e-4,
+};
 
 /// Fits the model of a field.
 pub fn fit(f: &Features, params: &ValidClusterParams) -> Result<Fit> {
@@ -302,7 +336,12 @@ pub fn fit(f: &Features, params: &ValidClusterParams) -> Result<Fit> {
                 }
             };
             if p.method == Method::Poisson {
-                let mut m = poisson::fit(rows.as_slice(), d, poisson::from_labels(&rows, d, &vec![0; n], 1), &EM);
+                let mut m = poisson::fit(
+                    rows.as_slice(),
+                    d,
+                    poisson::from_labels(&rows, d, &vec![0; n], 1),
+                    &EM,
+                );
                 for k in 1..=max.min(n) {
                     if k > 1 {
                         if !distinct_rows(&rows, d, k) {
@@ -319,16 +358,32 @@ pub fn fit(f: &Features, params: &ValidClusterParams) -> Result<Fit> {
                     if !distinct_rows(&rows, d, k) {
                         break;
                     }
-                    let cp = ClusterParams { method: Method::Gmm, ..*p };
-                    let Ok(c) = fit_k(&rows, d, k, &cp) else { break };
-                    let Clusters::Gmm { model } = &c else { unreachable!("asked for a mixture") };
+                    let cp = ClusterParams {
+                        method: Method::Gmm,
+                        ..*p
+                    };
+                    let Ok(c) = fit_k(&rows, d, k, &cp) else {
+                        break;
+                    };
+                    let Clusters::Gmm { model } = &c else {
+                        unreachable!("asked for a mixture")
+                    };
                     let b = model.bic(n);
                     consider(c, b, &mut curve);
                 }
             }
-            let (_, chosen) = best.ok_or_else(|| Error::internal("no phase count could be fitted"))?;
-            let clusters = if p.method == Method::Kmeans { fit_k(&rows, d, chosen.k(), p)? } else { chosen };
-            Ok(Fit { clusters, curve, fitted_pixels: n })
+            let (_, chosen) =
+                best.ok_or_else(|| Error::internal("no phase count could be fitted"))?;
+            let clusters = if p.method == Method::Kmeans {
+                fit_k(&rows, d, chosen.k(), p)?
+            } else {
+                chosen
+            };
+            Ok(Fit {
+                clusters,
+                curve,
+                fitted_pixels: n,
+            })
         }
     }
 }

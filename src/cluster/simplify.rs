@@ -55,7 +55,14 @@ pub fn nearest_mixture(c: usize, ends: &[Vec<f64>]) -> Option<(f64, Vec<f64>)> {
     let d = x.len();
     let mix = |pi: &[f64]| -> Vec<f64> {
         (0..d)
-            .map(|e| others.iter().zip(pi).map(|(&j, &p)| p * ends[j][e]).sum::<f64>().max(MIN_RATE))
+            .map(|e| {
+                others
+                    .iter()
+                    .zip(pi)
+                    .map(|(&j, &p)| p * ends[j][e])
+                    .sum::<f64>()
+                    .max(MIN_RATE)
+            })
             .collect()
     };
     let ll = |pi: &[f64]| -> f64 { mix(pi).iter().zip(x).map(|(&m, &xe)| xe * m.ln() - m).sum() };
@@ -64,9 +71,17 @@ pub fn nearest_mixture(c: usize, ends: &[Vec<f64>]) -> Option<(f64, Vec<f64>)> {
     let mut pi = vec![1.0 / others.len() as f64; others.len()];
     for _ in 0..300 {
         let m = mix(&pi);
-        let grad: Vec<f64> = others.iter().map(|&j| (0..d).map(|e| x[e] * ends[j][e] / m[e] - ends[j][e]).sum()).collect();
+        let grad: Vec<f64> = others
+            .iter()
+            .map(|&j| (0..d).map(|e| x[e] * ends[j][e] / m[e] - ends[j][e]).sum())
+            .collect();
         let v = (0..grad.len()).fold(0, |b, j| if grad[j] > grad[b] { j } else { b });
-        let toward = |g: f64| -> Vec<f64> { pi.iter().enumerate().map(|(j, &p)| (1.0 - g) * p + if j == v { g } else { 0.0 }).collect() };
+        let toward = |g: f64| -> Vec<f64> {
+            pi.iter()
+                .enumerate()
+                .map(|(j, &p)| (1.0 - g) * p + if j == v { g } else { 0.0 })
+                .collect()
+        };
         let (mut lo, mut hi) = (0.0f64, 1.0f64);
         for _ in 0..40 {
             let (a, b) = (lo + (hi - lo) / 3.0, hi - (hi - lo) / 3.0);
@@ -99,7 +114,17 @@ pub fn describe_mixture(weights: &[f64], ends: &[Vec<f64>], pores: usize) -> Str
         .iter()
         .take(3)
         .filter(|&&j| weights[j] >= 0.05)
-        .map(|&j| format!("{:.0} % {}", 100.0 * weights[j], if j == pores { "pores".to_string() } else { fmt_counts(&ends[j]) }))
+        .map(|&j| {
+            format!(
+                "{:.0} % {}",
+                100.0 * weights[j],
+                if j == pores {
+                    "pores".to_string()
+                } else {
+                    fmt_counts(&ends[j])
+                }
+            )
+        })
         .collect::<Vec<_>>()
         .join(" + ")
 }
@@ -136,7 +161,11 @@ pub fn merge_indistinguishable(mut c: Clusters, st: Stabilise) -> (Clusters, Vec
             break;
         }
         notes.push(Simplification {
-            action: format!("merged two components a single pixel cannot tell apart ({} and {})", fmt_counts(&ends[a]), fmt_counts(&ends[b])),
+            action: format!(
+                "merged two components a single pixel cannot tell apart ({} and {})",
+                fmt_counts(&ends[a]),
+                fmt_counts(&ends[b])
+            ),
             value: j,
         });
         c = c.merged(a, b);

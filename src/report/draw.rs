@@ -50,7 +50,12 @@ impl Canvas {
         Canvas {
             width,
             height,
-            rgb: fill.iter().copied().cycle().take(width * height * 3).collect(),
+            rgb: fill
+                .iter()
+                .copied()
+                .cycle()
+                .take(width * height * 3)
+                .collect(),
         }
     }
 
@@ -102,7 +107,11 @@ impl Canvas {
 pub fn scale_bar_um(field_width_um: f64) -> f64 {
     let target = field_width_um / 5.0;
     let p = 10f64.powf(target.log10().floor());
-    [5.0, 2.0, 1.0].into_iter().map(|m| m * p).find(|&v| v <= target).unwrap_or(p)
+    [5.0, 2.0, 1.0]
+        .into_iter()
+        .map(|m| m * p)
+        .find(|&v| v <= target)
+        .unwrap_or(p)
 }
 
 /// A legend entry.
@@ -116,12 +125,27 @@ pub struct LegendEntry {
 /// Renders labels (0 = unassigned) as a colour image with a legend on the right and, when
 /// the pixel size is known, a scale bar. Small fields are enlarged by pixel replication so
 /// the text stays readable.
-pub fn phase_map(labels: &[u16], w: usize, h: usize, legend: &[LegendEntry], pixel_size_um: Option<f64>, title: &str) -> Canvas {
+pub fn phase_map(
+    labels: &[u16],
+    w: usize,
+    h: usize,
+    legend: &[LegendEntry],
+    pixel_size_um: Option<f64>,
+    title: &str,
+) -> Canvas {
     let zoom = (600 / w.max(h)).clamp(1, 8);
     let (mw, mh) = (w * zoom, h * zoom);
     let ts = if mw >= 1500 { 3 } else { 2 };
     let line_h = 12 * ts;
-    let legend_w = 16 * ts + legend.iter().map(|e| e.text.chars().count()).max().unwrap_or(10) * 8 * ts + 8 * ts;
+    let legend_w = 16 * ts
+        + legend
+            .iter()
+            .map(|e| e.text.chars().count())
+            .max()
+            .unwrap_or(10)
+            * 8
+            * ts
+        + 8 * ts;
     let header = line_h + 4 * ts;
     let width = mw + legend_w + 8 * ts;
     let height = (mh + header).max(header + legend.len() * line_h + 8 * ts);
@@ -146,7 +170,11 @@ pub fn phase_map(labels: &[u16], w: usize, h: usize, legend: &[LegendEntry], pix
         let field_um = w as f64 * px;
         let len_um = scale_bar_um(field_um);
         let len = ((len_um / px) * zoom as f64).round() as usize;
-        let label = if len_um >= 1.0 { format!("{len_um} µm") } else { format!("{} nm", len_um * 1000.0) };
+        let label = if len_um >= 1.0 {
+            format!("{len_um} µm")
+        } else {
+            format!("{} nm", len_um * 1000.0)
+        };
         let bar_h = 3 * ts;
         let tw = label.chars().count() * 8 * ts;
         let (bx, by) = (4 * ts, header + mh - bar_h - 14 * ts);
@@ -187,6 +215,6 @@ mod tests {
         let mut c = Canvas::new(40, 10, [255; 3]);
         let w = c.text(0, 0, "Fe µ", 1, [0; 3]);
         assert_eq!(w, 32);
-        assert!(c.rgb.iter().any(|&v| v == 0));
+        assert!(c.rgb.contains(&0));
     }
 }

@@ -142,16 +142,32 @@ pub struct Report {
 }
 
 fn hash_file(path: &std::path::Path) -> Result<String> {
-    let bytes = std::fs::read(path).map_err(|e| Error::input(path, format!("cannot be read for hashing: {e}"), "check the file"))?;
-    Ok(Sha256::digest(&bytes).iter().map(|b| format!("{b:02x}")).collect())
+    let bytes = std::fs::read(path).map_err(|e| {
+        Error::input(
+            path,
+            format!("cannot be read for hashing: {e}"),
+            "check the file",
+        )
+    })?;
+    Ok(Sha256::digest(&bytes)
+        .iter()
+        .map(|b| format!("{b:02x}"))
+        .collect())
 }
 
 /// Builds the report of a mapped field.
-pub fn build(field: &LoadedField, result: &MapResult, options: &MapOptions, mut warnings: Vec<String>) -> Result<Report> {
+pub fn build(
+    field: &LoadedField,
+    result: &MapResult,
+    options: &MapOptions,
+    mut warnings: Vec<String>,
+) -> Result<Report> {
     use rayon::prelude::*;
     let t = &result.table;
     let md = result.counts.metadata();
-    let map = |v: &[f64]| -> BTreeMap<String, f64> { t.elements.iter().cloned().zip(v.iter().copied()).collect() };
+    let map = |v: &[f64]| -> BTreeMap<String, f64> {
+        t.elements.iter().cloned().zip(v.iter().copied()).collect()
+    };
     let phases = t
         .phases
         .iter()
@@ -164,7 +180,8 @@ pub fn build(field: &LoadedField, result: &MapResult, options: &MapOptions, mut 
             mean: map(&p.mean),
             sd: map(&p.sd),
             composition_wt: map(&p.composition_wt),
-            composition_basis: "apparent: counts normalised to 100 %, every k-factor = 1 (uncalibrated)".into(),
+            composition_basis:
+                "apparent: counts normalised to 100 %, every k-factor = 1 (uncalibrated)".into(),
             particles: p.particles,
             mean_ecd_px: p.mean_ecd_px,
             mean_ecd_um: md.pixel_size_um.map(|s| s * p.mean_ecd_px),
@@ -175,10 +192,19 @@ pub fn build(field: &LoadedField, result: &MapResult, options: &MapOptions, mut 
     let inputs = field
         .files
         .par_iter()
-        .map(|p| Ok(InputFile { path: p.display().to_string(), sha256: hash_file(p)? }))
+        .map(|p| {
+            Ok(InputFile {
+                path: p.display().to_string(),
+                sha256: hash_file(p)?,
+            })
+        })
         .collect::<Result<Vec<_>>>()?;
     let auto = matches!(options.cluster.phases, PhaseCount::Auto { .. });
-    let bic_minimum = result.curve.iter().min_by(|a, b| a.bic.total_cmp(&b.bic)).map(|c| c.k);
+    let bic_minimum = result
+        .curve
+        .iter()
+        .min_by(|a, b| a.bic.total_cmp(&b.bic))
+        .map(|c| c.k);
     for p in &t.phases {
         if p.area_fraction < 0.005 && p.pixels < 200 {
             warnings.push(format!(
@@ -200,16 +226,30 @@ pub fn build(field: &LoadedField, result: &MapResult, options: &MapOptions, mut 
             t.tiles[0], t.tiles[1]
         )),
     );
-    statistics.insert("min_counts_used".into(), serde_json::json!(result.min_counts_used));
-    statistics.insert("fitted_pixels".into(), serde_json::json!(result.fitted_pixels));
+    statistics.insert(
+        "min_counts_used".into(),
+        serde_json::json!(result.min_counts_used),
+    );
+    statistics.insert(
+        "fitted_pixels".into(),
+        serde_json::json!(result.fitted_pixels),
+    );
     let mut unassigned = BTreeMap::new();
     unassigned.insert("empty".into(), result.segmentation.empty_pixels);
-    unassigned.insert("unlike_any_phase".into(), result.segmentation.outlier_pixels);
+    unassigned.insert(
+        "unlike_any_phase".into(),
+        result.segmentation.outlier_pixels,
+    );
     Ok(Report {
         schema: SCHEMA.into(),
         field: field.name.clone(),
         elements: t.elements.clone(),
-        lines: result.counts.maps().iter().filter_map(|m| m.line.clone().map(|l| (m.element.symbol.to_string(), l))).collect(),
+        lines: result
+            .counts
+            .maps()
+            .iter()
+            .filter_map(|m| m.line.clone().map(|l| (m.element.symbol.to_string(), l)))
+            .collect(),
         width: result.segmentation.width,
         height: result.segmentation.height,
         pixel_size_um: md.pixel_size_um,
@@ -251,10 +291,22 @@ pub fn phases_csv(r: &Report) -> String {
     }
     s.push('\n');
     for p in &r.phases {
-        let name = if p.name.contains([',', '"']) { format!("\"{}\"", p.name.replace('"', "\"\"")) } else { p.name.clone() };
+        let name = if p.name.contains([',', '"']) {
+            format!("\"{}\"", p.name.replace('"', "\"\""))
+        } else {
+            p.name.clone()
+        };
         s.push_str(&format!(
             "{},{},{},{:.6},{:.6},{:.6},{},{:.3},{:.4}",
-            p.id, name, p.pixels, p.area_fraction, p.area_fraction_ci95[0], p.area_fraction_ci95[1], p.particles, p.mean_ecd_px, p.mean_confidence
+            p.id,
+            name,
+            p.pixels,
+            p.area_fraction,
+            p.area_fraction_ci95[0],
+            p.area_fraction_ci95[1],
+            p.particles,
+            p.mean_ecd_px,
+            p.mean_confidence
         ));
         for m in [&p.mean, &p.sd, &p.composition_wt] {
             for e in &r.elements {
@@ -268,8 +320,17 @@ pub fn phases_csv(r: &Report) -> String {
 
 /// The short human summary printed by `map`.
 pub fn summary(r: &Report) -> String {
-    let mut s = format!("field {}: {} × {} pixels, {} phases\n\n", r.field, r.width, r.height, r.phases.len());
-    s.push_str(&format!("  {:>3}  {:<16} {:>8} {:>17} {:>9}  {}\n", "id", "phase", "area %", "95 % CI", "features", "apparent composition % (uncalibrated)"));
+    let mut s = format!(
+        "field {}: {} × {} pixels, {} phases\n\n",
+        r.field,
+        r.width,
+        r.height,
+        r.phases.len()
+    );
+    s.push_str(&format!(
+        "  {:>3}  {:<16} {:>8} {:>17} {:>9}  {}\n",
+        "id", "phase", "area %", "95 % CI", "features", "apparent composition % (uncalibrated)"
+    ));
     for p in &r.phases {
         let comp: Vec<String> = r
             .elements
@@ -282,12 +343,20 @@ pub fn summary(r: &Report) -> String {
             p.id,
             p.name,
             100.0 * p.area_fraction,
-            format!("{:.2}–{:.2}", 100.0 * p.area_fraction_ci95[0], 100.0 * p.area_fraction_ci95[1]),
+            format!(
+                "{:.2}–{:.2}",
+                100.0 * p.area_fraction_ci95[0],
+                100.0 * p.area_fraction_ci95[1]
+            ),
             p.particles,
             comp.join(", ")
         ));
     }
-    s.push_str(&format!("       {:<16} {:>8.2}\n", "unassigned", 100.0 * r.unassigned_fraction));
+    s.push_str(&format!(
+        "       {:<16} {:>8.2}\n",
+        "unassigned",
+        100.0 * r.unassigned_fraction
+    ));
     if r.phase_count.mode == "auto" {
         if let Some(k) = r.phase_count.bic_minimum {
             s.push_str(&format!(
@@ -317,17 +386,41 @@ pub fn write_outputs(dir: &OutputDir, r: &Report, result: &MapResult) -> Result<
         let v: Vec<u8> = seg.labels.iter().map(|&l| l as u8).collect();
         crate::io::raster::write_png_u8(&dir.path("labels.png"), w, h, &v)?;
     } else {
-        crate::io::raster::write_tiff(&dir.path("labels.tif"), w, h, crate::io::raster::TiffData::U16(&seg.labels))?;
+        crate::io::raster::write_tiff(
+            &dir.path("labels.tif"),
+            w,
+            h,
+            crate::io::raster::TiffData::U16(&seg.labels),
+        )?;
     }
     let mut legend: Vec<draw::LegendEntry> = r
         .phases
         .iter()
-        .map(|p| draw::LegendEntry { id: p.id, text: format!("{} {}  {:.1} %", p.id, p.name, 100.0 * p.area_fraction) })
+        .map(|p| draw::LegendEntry {
+            id: p.id,
+            text: format!("{} {}  {:.1} %", p.id, p.name, 100.0 * p.area_fraction),
+        })
         .collect();
-    legend.push(draw::LegendEntry { id: 0, text: format!("unassigned  {:.1} %", 100.0 * r.unassigned_fraction) });
-    let canvas = draw::phase_map(&seg.labels, w, h, &legend, r.pixel_size_um, &format!("{}: phase map", r.field));
-    crate::io::raster::write_png_rgb(&dir.path("phase-map.png"), canvas.width, canvas.height, &canvas.rgb)?;
-    let json = serde_json::to_string_pretty(r).map_err(|e| Error::internal(format!("report encoding failed: {e}")))?;
+    legend.push(draw::LegendEntry {
+        id: 0,
+        text: format!("unassigned  {:.1} %", 100.0 * r.unassigned_fraction),
+    });
+    let canvas = draw::phase_map(
+        &seg.labels,
+        w,
+        h,
+        &legend,
+        r.pixel_size_um,
+        &format!("{}: phase map", r.field),
+    );
+    crate::io::raster::write_png_rgb(
+        &dir.path("phase-map.png"),
+        canvas.width,
+        canvas.height,
+        &canvas.rgb,
+    )?;
+    let json = serde_json::to_string_pretty(r)
+        .map_err(|e| Error::internal(format!("report encoding failed: {e}")))?;
     dir.write("report.json", json.as_bytes())?;
     dir.write("phases.csv", phases_csv(r).as_bytes())?;
     Ok(())

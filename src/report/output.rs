@@ -20,11 +20,21 @@ pub struct OutputDir {
 /// refused.
 pub fn prepare_output(target: &Path, force: bool) -> Result<OutputDir> {
     if target.is_file() {
-        return Err(Error::output(target, "is a file, not a folder", "give a folder name for the outputs (-o DIR)"));
+        return Err(Error::output(
+            target,
+            "is a file, not a folder",
+            "give a folder name for the outputs (-o DIR)",
+        ));
     }
     if target.is_dir() {
         let non_empty = std::fs::read_dir(target)
-            .map_err(|e| Error::output(target, format!("cannot be read: {e}"), "check the folder's permissions"))?
+            .map_err(|e| {
+                Error::output(
+                    target,
+                    format!("cannot be read: {e}"),
+                    "check the folder's permissions",
+                )
+            })?
             .next()
             .is_some();
         if non_empty && !force {
@@ -40,15 +50,31 @@ pub fn prepare_output(target: &Path, force: bool) -> Result<OutputDir> {
         _ => PathBuf::from("."),
     };
     if !parent.is_dir() {
-        return Err(Error::output(target, "cannot be created: its parent folder does not exist", "create the parent folder first"));
+        return Err(Error::output(
+            target,
+            "cannot be created: its parent folder does not exist",
+            "create the parent folder first",
+        ));
     }
-    let name = target.file_name().map(|n| n.to_string_lossy().into_owned()).unwrap_or_else(|| "out".into());
+    let name = target
+        .file_name()
+        .map(|n| n.to_string_lossy().into_owned())
+        .unwrap_or_else(|| "out".into());
     let tmp = parent.join(format!(".{name}.modalmap-tmp-{}", std::process::id()));
     let _ = std::fs::remove_dir_all(&tmp);
     std::fs::create_dir(&tmp).map_err(|e| {
-        Error::output(&tmp, format!("cannot be created: {e}"), "check that the output's parent folder is writable")
+        Error::output(
+            &tmp,
+            format!("cannot be created: {e}"),
+            "check that the output's parent folder is writable",
+        )
     })?;
-    Ok(OutputDir { tmp, target: target.to_path_buf(), force, committed: false })
+    Ok(OutputDir {
+        tmp,
+        target: target.to_path_buf(),
+        force,
+        committed: false,
+    })
 }
 
 impl OutputDir {
@@ -60,16 +86,31 @@ impl OutputDir {
     /// Writes a whole file inside the temporary folder.
     pub fn write(&self, name: &str, bytes: &[u8]) -> Result<()> {
         let p = self.path(name);
-        std::fs::write(&p, bytes).map_err(|e| Error::output(&p, format!("could not be written: {e}"), "check free disk space"))
+        std::fs::write(&p, bytes).map_err(|e| {
+            Error::output(
+                &p,
+                format!("could not be written: {e}"),
+                "check free disk space",
+            )
+        })
     }
 
     /// Moves the finished folder into place. With `force`, the old contents are moved
     /// aside first and deleted only after the new folder is in place.
     pub fn commit(mut self) -> Result<PathBuf> {
-        let err = |e: std::io::Error| Error::output(&self.target, format!("could not be replaced: {e}"), "check permissions of the output folder and its parent");
+        let err = |e: std::io::Error| {
+            Error::output(
+                &self.target,
+                format!("could not be replaced: {e}"),
+                "check permissions of the output folder and its parent",
+            )
+        };
         let mut old = None;
         if self.target.is_dir() {
-            let empty = std::fs::read_dir(&self.target).map_err(err)?.next().is_none();
+            let empty = std::fs::read_dir(&self.target)
+                .map_err(err)?
+                .next()
+                .is_none();
             if empty {
                 std::fs::remove_dir(&self.target).map_err(err)?;
             } else if self.force {
@@ -77,7 +118,11 @@ impl OutputDir {
                 std::fs::rename(&self.target, &aside).map_err(err)?;
                 old = Some(aside);
             } else {
-                return Err(Error::output(&self.target, "appeared while modalmap was running", "run again with another output folder"));
+                return Err(Error::output(
+                    &self.target,
+                    "appeared while modalmap was running",
+                    "run again with another output folder",
+                ));
             }
         }
         if let Err(e) = std::fs::rename(&self.tmp, &self.target) {

@@ -25,12 +25,12 @@ pub fn score(pred: &[u16], truth: &[u16]) -> Score {
     for (&p, &t) in pred.iter().zip(truth) {
         conf[p as usize][t as usize] += 1;
     }
-    let mut pairs: Vec<(usize, usize, usize)> = Vec::new();
-    for p in 1..kp {
-        for t in 1..kt {
-            pairs.push((conf[p][t], p, t));
-        }
-    }
+    let mut pairs: Vec<(usize, usize, usize)> = conf
+        .iter()
+        .enumerate()
+        .skip(1)
+        .flat_map(|(p, row)| row.iter().enumerate().skip(1).map(move |(t, &n)| (n, p, t)))
+        .collect();
     pairs.sort_by(|a, b| b.cmp(a));
     let mut map_p = vec![None; kp];
     let mut used_t = vec![false; kt];
@@ -55,11 +55,15 @@ pub fn score(pred: &[u16], truth: &[u16]) -> Score {
             (count(truth, t), p.map(|p| count(pred, p)))
         })
         .collect();
-    let mapping = (0..kp).filter_map(|p| map_p[p].map(|t| (p as u16, t as u16))).collect();
+    let mapping = (0..kp)
+        .filter_map(|p| map_p[p].map(|t| (p as u16, t as u16)))
+        .collect();
     Score {
         accuracy: correct as f64 / n,
         phases,
-        extra_phases: (1..kp).filter(|&p| map_p[p].is_none() && pred.iter().any(|&x| x as usize == p)).count(),
+        extra_phases: (1..kp)
+            .filter(|&p| map_p[p].is_none() && pred.iter().any(|&x| x as usize == p))
+            .count(),
         mapping,
     }
 }

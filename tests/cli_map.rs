@@ -1,0 +1,295 @@
+//! The `map` and `demo` commands end to end: outputs, their consistency, atomic writes,
+//! options and configuration, and determinism whatever the thread count.
+
+use std::path::{Path, PathBuf};
+use std::process::Command;
+
+struct Run {
+    code: i32,
+    stdout: String,
+    stderr: String,
+}
+
+fn modalmap(args: &[&str]) -> Run {
+    let out = Command::new(env!("CARGO_BIN_EXE_modalmap"))
+        .args(args)
+        .output()
+        .expect("binary runs");
+    Run {
+        code: out.status.code().unwrap_or(-1),
+        stdout: String::from_utf8_lossy(&out.stdout).into_owned(),
+        stderr: String::from_utf8_lossy(&out.stderr).into_owned(),
+    }
+}
+
+fn sample() -> String {
+    Path::new(env!("CARGO_MANIFEST_DIR"))
+        .join("sample-maps")
+        .display()
+        .to_string()
+}
+
+fn s(p: &Path) -> &str {
+    p.to_str().unwrap()
+}
+
+fn report(dir: &Path) -> serde_json::Value {
+    serde_json::from_str(&std::fs::read_to_string(dir.join("report.json")).unwrap()).unwrap()
+}
+
+#[test]
+fn map_writes_consistent_outputs() {
+    let tmp = tempfile::tempdir().unwrap();
+    let out = tmp.path().join("out");
+    let r = modalmap(&["map", &sample(), "-o", s(&out)]);
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    for f in ["labels.png", "phase-map.png", "report.json", "phases.csv"] {
+        assert!(out.join(f).is_file(), "{f} missing");
+    }
+    let rep = report(&out);
+    assert_eq!(rep["schema"], "modalmap.report/1");
+    let phases = rep["phases"].as_array().unwrap();
+    assert_eq!(phases.len(), 5, "the sample field has five phases");
+    assert_eq!(rep["elements"], serde_json::json!(["Cu", "Ag", "Sn"]));
+    // Fractions and unassigned add up to the whole field; ids are 1..=5 by decreasing area.
+    let total: f64 = phases
+        .iter()
+        .map(|p| p["area_fraction"].as_f64().unwrap())
+        .sum::<f64>()
+        + rep["unassigned_fraction"].as_f64().unwrap();
+    assert!((total - 1.0).abs() < 1e-9, "{total}");
+    let areas: Vec<f64> = phases
+        .iter()
+        .map(|p| p["area_fraction"].as_f64().unwrap())
+        .collect();
+    assert!(areas.windows(2).all(|w| w[0] >= w[1]));
+    for (i, p) in phases.iter().enumerate() {
+        assert_eq!(p["id"], i + 1);
+        let ci = p["area_fraction_ci95"].as_array().unwrap();
+        let (lo, hi, a) = (
+            ci[0].as_f64().unwrap(),
+            ci[1].as_f64().unwrap(),
+            p["area_fraction"].as_f64().unwrap(),
+        );
+        assert!(lo <= a && a <= hi, "{p}");
+        let comp: f64 = p["composition_wt"]
+            .as_object()
+            .unwrap()
+            .values()
+            .map(|v| v.as_f64().unwrap())
+            .sum();
+        assert!((comp - 100.0).abs() < 1e-6);
+        assert!(p["composition_basis"]
+            .as_str()
+            .unwrap()
+            .contains("uncalibrated"));
+    }
+    // The label image agrees with the table.
+    let labels = modalmap::io::read_raster(&out.join("labels.png"), &Default::default()).unwrap();
+    assert_eq!((labels.width, labels.height), (384, 288));
+    for p in phases {
+        let id = p["id"].as_f64().unwrap() as f32;
+        let n = labels.data.iter().filter(|&&v| v == id).count();
+        assert_eq!(n as u64, p["pixels"].as_u64().unwrap());
+    }
+    // The CSV has a header and one row per phase.
+    let csv = std::fs::read_to_string(out.join("phases.csv")).unwrap();
+    assert_eq!(csv.lines().count(), 6);
+    assert!(csv.starts_with("id,name,pixels,area_fraction"));
+    // Provenance: the hash of every map file, as SHA-256 (FIPS 180-4) of its bytes.
+    let inputs = rep["provenance"]["inputs"].as_array().unwrap();
+    assert_eq!(inputs.len(), 3);
+    for i in inputs {
+        use sha2::Digest;
+        let bytes = std::fs::read(i["path"].as_str().unwrap()).unwrap();
+        let hex: String = sha2::Sha256::digest(&bytes)
+            .iter()
+            .map(|b| format!("{b:02x}"))
+            .collect();
+        assert_eq!(i["sha256"], hex);
+    }
+    assert!(rep["cautions"].as_array().unwrap().len() >= 3);
+    // The human summary names every phase.
+    for p in phases {
+        assert!(
+            r.stdout.contains(p["name"].as_str().unwrap()),
+            "{}",
+            r.stdout
+        );
+    }
+    assert!(r.stdout.contains("semi-quantitative"));
+}
+
+#[test]
+fn output_folder_rules() {
+    let tmp = tempfile::tempdir().unwrap();
+    let out = tmp.path().join("out");
+    std::fs::create_dir(&out).unwrap();
+    std::fs::write(out.join("keep.txt"), "mine").unwrap();
+    let r = modalmap(&["map", &sample(), "-o", s(&out), "--phases", "5"]);
+    assert_eq!(r.code, 4, "{}", r.stderr);
+    assert!(
+        r.stderr.contains("already holds files") && r.stderr.contains("--force"),
+        "{}",
+        r.stderr
+    );
+    assert_eq!(
+        std::fs::read_to_string(out.join("keep.txt")).unwrap(),
+        "mine",
+        "untouched"
+    );
+    let r = modalmap(&["map", &sample(), "-o", s(&out), "--phases", "5", "--force"]);
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    assert!(!out.join("keep.txt").exists() && out.join("report.json").exists());
+    // No temporary folders are left beside OUT.
+    let leftovers: Vec<PathBuf> = std::fs::read_dir(tmp.path())
+        .unwrap()
+        .map(|e| e.unwrap().path())
+        .filter(|p| p != &out)
+        .collect();
+    assert!(leftovers.is_empty(), "{leftovers:?}");
+    // OUT that is a file.
+    let file = tmp.path().join("afile");
+    std::fs::write(&file, "x").unwrap();
+    let r = modalmap(&["map", &sample(), "-o", s(&file)]);
+    assert_eq!(r.code, 4);
+    assert!(r.stderr.contains("is a file"), "{}", r.stderr);
+    // A failed run (bad input) leaves no output folder behind.
+    let out2 = tmp.path().join("out2");
+    let r = modalmap(&["map", s(&tmp.path().join("missing")), "-o", s(&out2)]);
+    assert_eq!(r.code, 3);
+    assert!(!out2.exists());
+    assert_eq!(
+        std::fs::read_dir(tmp.path()).unwrap().count(),
+        2,
+        "only out and afile: no temporary folder left"
+    );
+}
+
+#[test]
+fn config_file_and_flags() {
+    let tmp = tempfile::tempdir().unwrap();
+    let cfg = tmp.path().join("run.toml");
+    std::fs::write(
+        &cfg,
+        "phases = \"5\"\nseed = 3\nsmoothing = 0.5\nmethod = \"poisson\"\n",
+    )
+    .unwrap();
+    let out = tmp.path().join("out");
+    let r = modalmap(&[
+        "map",
+        &sample(),
+        "-o",
+        s(&out),
+        "--config",
+        s(&cfg),
+        "--seed",
+        "4",
+    ]);
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    let rep = report(&out);
+    assert_eq!(rep["options"]["cluster"]["seed"], 4, "the flag wins");
+    assert_eq!(
+        rep["options"]["cluster"]["phases"],
+        serde_json::json!({"fixed": 5}),
+        "from the file"
+    );
+    assert_eq!(rep["options"]["refine"]["smoothing"], 0.5);
+    assert_eq!(rep["phase_count"]["mode"], "fixed");
+
+    std::fs::write(&cfg, "phase = 5\n").unwrap();
+    let r = modalmap(&[
+        "map",
+        &sample(),
+        "-o",
+        s(&tmp.path().join("o2")),
+        "--config",
+        s(&cfg),
+    ]);
+    assert_eq!(r.code, 2, "{}", r.stderr);
+    assert!(
+        r.stderr.contains("run.toml") && r.stderr.contains("phase"),
+        "{}",
+        r.stderr
+    );
+    std::fs::write(&cfg, "method = \"spectral\"\n").unwrap();
+    let r = modalmap(&[
+        "map",
+        &sample(),
+        "-o",
+        s(&tmp.path().join("o3")),
+        "--config",
+        s(&cfg),
+    ]);
+    assert_eq!(r.code, 2, "{}", r.stderr);
+    assert!(r.stderr.contains("spectral"), "{}", r.stderr);
+}
+
+#[test]
+fn bad_option_values_exit_2_before_any_work() {
+    let tmp = tempfile::tempdir().unwrap();
+    for (args, key) in [
+        (vec!["--phases", "0"], "--phases 0"),
+        (vec!["--phases", "lots"], "lots"),
+        (vec!["--bin", "0"], "--bin 0"),
+        (vec!["--smoothing=-1"], "smoothing"),
+        (vec!["--denoise", "gaussian:0"], "σ"),
+        (vec!["--denoise", "blur"], "blur"),
+        (vec!["--pixel-size=-2"], "--pixel-size"),
+        (vec!["--min-phase", "0.7"], "minimum phase size"),
+    ] {
+        let out = tmp.path().join("o");
+        let mut a = vec!["map", "/nonexistent-input", "-o", s(&out)];
+        a.extend(args.iter());
+        let r = modalmap(&a);
+        assert_eq!(r.code, 2, "{args:?}: {}", r.stderr);
+        assert!(r.stderr.contains(key), "{args:?}: {}", r.stderr);
+        assert!(!out.exists());
+    }
+}
+
+#[test]
+fn same_result_whatever_the_thread_count() {
+    let tmp = tempfile::tempdir().unwrap();
+    let mut reports = Vec::new();
+    let mut labels = Vec::new();
+    for t in ["1", "2", "4"] {
+        let out = tmp.path().join(format!("t{t}"));
+        let r = modalmap(&["map", &sample(), "-o", s(&out), "--threads", t]);
+        assert_eq!(r.code, 0, "{}", r.stderr);
+        reports.push(std::fs::read(out.join("report.json")).unwrap());
+        labels.push(std::fs::read(out.join("labels.png")).unwrap());
+    }
+    assert!(
+        reports.windows(2).all(|w| w[0] == w[1]),
+        "report.json differs between thread counts"
+    );
+    assert!(
+        labels.windows(2).all(|w| w[0] == w[1]),
+        "labels.png differs between thread counts"
+    );
+}
+
+#[test]
+fn demo_maps_the_sample_and_checks_it_against_the_truth() {
+    let tmp = tempfile::tempdir().unwrap();
+    let out = tmp.path().join("demo");
+    let r = modalmap(&["demo", "-o", s(&out)]);
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    let line = r
+        .stdout
+        .lines()
+        .find(|l| l.contains("agree with them"))
+        .expect(&r.stdout);
+    let pct: f64 = line
+        .split('%')
+        .next()
+        .unwrap()
+        .split_whitespace()
+        .last()
+        .unwrap()
+        .parse()
+        .unwrap();
+    assert!(pct >= 98.0, "{line}");
+    assert_eq!(report(&out)["phases"].as_array().unwrap().len(), 5);
+}
