@@ -90,7 +90,22 @@ pub enum Command {
         /// Also write the true labels (16-bit PNG, 0 = void) to this file.
         #[arg(long, value_name = "FILE")]
         truth: Option<PathBuf>,
+        /// Which invented scenario: the bundled solder joint, or a large rock for benchmarks.
+        #[arg(long, value_enum, default_value = "solder-joint")]
+        scenario: Scenario,
+        /// Width and height of the benchmark rock, pixels.
+        #[arg(long, default_value_t = 2048)]
+        size: usize,
     },
+}
+
+/// Synthetic scenarios.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, clap::ValueEnum)]
+pub enum Scenario {
+    /// The bundled sample field.
+    SolderJoint,
+    /// A six-mineral rock in ten elements, for benchmarks.
+    BenchmarkRock,
 }
 
 /// Options of `map` (each may also come from --config; the command line wins).
@@ -305,15 +320,27 @@ pub fn map_field(
     let (opts, md, _) = args.resolve()?;
     let valid = opts.check()?;
     let dir = crate::report::prepare_output(out, args.force)?;
+    let t = crate::profile::stage("load");
     let mut field = load_field(
         input,
         &Limits {
             max_pixels: args.limits.max_pixels,
         },
     )?;
+    drop(t);
     field.stack.override_metadata(&md);
-    let result = crate::pipeline::map_stack(&field.stack, &valid)?;
-    let report = crate::report::build(&field, &result, valid.options(), field.warnings.clone())?;
+    let crate::io::LoadedField {
+        stack,
+        name,
+        files,
+        warnings,
+        ..
+    } = field;
+    let result = crate::pipeline::map_stack(stack, &valid)?;
+    let t = crate::profile::stage("report (hashes)");
+    let report = crate::report::build(&name, &files, &result, valid.options(), warnings)?;
+    drop(t);
+    let _t = crate::profile::stage("write outputs");
     crate::report::write_outputs(&dir, &report, &result)?;
     dir.commit()?;
     Ok(report)
@@ -393,8 +420,25 @@ pub fn run(cli: Cli) -> Result<u8> {
             );
             Ok(0)
         }
-        Command::Synth { output, truth } => {
-            let field = crate::synth::sample_field()?;
+        Command::Synth {
+            output,
+            truth,
+            scenario,
+            size,
+        } => {
+            let field = match scenario {
+                Scenario::SolderJoint => crate::synth::sample_field()?,
+                Scenario::BenchmarkRock => {
+                    if !(16..=20_000).contains(&size) {
+                        return Err(Error::options(
+                            format!("--size {size} is out of range"),
+                            "use 16 to 20000 pixels",
+                        ));
+                    }
+                    let (micro, opts) = crate::synth::benchmark_rock(size, 2048);
+                    crate::synth::generate(&micro, &opts)?
+                }
+            };
             crate::synth::write_folder(&field, &output)?;
             if let Some(t) = truth {
                 crate::io::raster::write_png_u16(

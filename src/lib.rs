@@ -16,6 +16,7 @@ pub mod phases;
 pub mod physics;
 pub mod pipeline;
 pub mod prepare;
+pub mod profile;
 pub mod refine;
 pub mod report;
 pub mod stack;

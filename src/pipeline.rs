@@ -10,7 +10,8 @@ use crate::error::{Error, Result};
 use crate::phases::{phase_table, PhaseTable};
 use crate::prepare::{prepare, FeatureTransform, PrepareParams, Stabilise};
 use crate::refine::{
-    interior_fractions, interior_means, refine, RefineParams, Segmentation, ValidRefineParams,
+    interior_fractions, interior_means, refine, refine_from, RefineParams, Segmentation,
+    ValidRefineParams,
 };
 use crate::stack::MapStack;
 
@@ -108,9 +109,13 @@ pub struct MapResult {
 }
 
 /// Runs the main job on one field.
-pub fn map_stack(stack: &MapStack, opts: &ValidMapOptions) -> Result<MapResult> {
+pub fn map_stack(stack: MapStack, opts: &ValidMapOptions) -> Result<MapResult> {
+    let t = crate::profile::stage("prepare");
     let f = prepare(stack, &opts.transform)?;
+    drop(t);
+    let t = crate::profile::stage("fit");
     let fit = select::fit(&f, &opts.cluster)?;
+    drop(t);
     let st = opts.transform.params().stabilise;
     let auto = matches!(opts.cluster.get().phases, PhaseCount::Auto { .. });
     let (mut clusters, mut simplifications) = if auto {
@@ -121,7 +126,9 @@ pub fn map_stack(stack: &MapStack, opts: &ValidMapOptions) -> Result<MapResult> 
     let min_px = (opts.min_phase_fraction * f.pixels() as f64)
         .ceil()
         .max(1.0) as usize;
+    let t = crate::profile::stage("refine");
     let mut seg = refine(&f, &clusters, &opts.refine);
+    drop(t);
     // Dissolve boundary bands and phases below the size floor, then label again.
     for _ in 0..8 {
         if !auto || clusters.k() < 2 {
@@ -174,8 +181,10 @@ pub fn map_stack(stack: &MapStack, opts: &ValidMapOptions) -> Result<MapResult> 
                 clusters = clusters.with_mean(c, m);
             }
         }
-        seg = refine(&f, &clusters, &opts.refine);
+        let _t = crate::profile::stage("refine again");
+        seg = refine_from(&f, &clusters, &opts.refine, Some(&seg));
     }
+    let _t = crate::profile::stage("phase table");
     let table = phase_table(&mut seg, &f.counts, clusters.k());
     Ok(MapResult {
         clusters,

@@ -250,9 +250,9 @@ impl Features {
 }
 
 /// Sums counts over `bin × bin` blocks; a remainder at the right or bottom edge is dropped.
-pub fn bin_stack(stack: &MapStack, bin: usize) -> Result<MapStack> {
+pub fn bin_stack(stack: MapStack, bin: usize) -> Result<MapStack> {
     if bin == 1 {
-        return Ok(stack.clone());
+        return Ok(stack);
     }
     let (w, h) = (stack.width() / bin, stack.height() / bin);
     if w == 0 || h == 0 {
@@ -334,7 +334,7 @@ fn median_total(totals: &[f32]) -> f64 {
 }
 
 /// Runs the prepare stage.
-pub fn prepare(stack: &MapStack, transform: &FeatureTransform) -> Result<Features> {
+pub fn prepare(stack: MapStack, transform: &FeatureTransform) -> Result<Features> {
     let p = transform.params;
     let counts = bin_stack(stack, p.bin)?;
     let (w, h) = (counts.width(), counts.height());
@@ -437,7 +437,7 @@ mod tests {
     #[test]
     fn binning_sums_counts_and_scales_pixel_size() {
         let s = stack(5, 4, |x, y| (x + 10 * y) as f32);
-        let b = bin_stack(&s, 2).unwrap();
+        let b = bin_stack(s.clone(), 2).unwrap();
         assert_eq!((b.width(), b.height()), (2, 2), "remainder column dropped");
         // Block (0,0): 0 + 1 + 10 + 11.
         assert_eq!(b.maps()[0].counts, vec![22.0, 30.0, 102.0, 110.0]);
@@ -451,7 +451,7 @@ mod tests {
         // Median total is 40; 15 % of it is 6: the 3-count pixel is empty, the 7 is not.
         let s = stack(4, 1, |x, _| [40.0, 3.0, 7.0, 50.0][x]);
         let t = PrepareParams::default().check().unwrap();
-        let f = prepare(&s, &t).unwrap();
+        let f = prepare(s, &t).unwrap();
         assert_eq!(f.mask, vec![true, false, true, true]);
         assert!((f.min_counts_used - 0.15 * 40.0).abs() < 1e-9);
     }

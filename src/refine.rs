@@ -209,6 +209,18 @@ const NEIGHBOURS: [(isize, isize, f64); 8] = [
 
 /// Runs the refine stage.
 pub fn refine(f: &Features, clusters: &Clusters, params: &ValidRefineParams) -> Segmentation {
+    refine_from(f, clusters, params, None)
+}
+
+/// Runs the refine stage starting the spatial prior from an earlier segmentation of the
+/// same phases (labels 1..=k), when one is given: after a small update of the model the
+/// old labels are a far better start than a fresh one.
+pub fn refine_from(
+    f: &Features,
+    clusters: &Clusters,
+    params: &ValidRefineParams,
+    start: Option<&Segmentation>,
+) -> Segmentation {
     let p = params.get();
     let (w, h, d, k) = (f.width, f.height, f.dims, clusters.k());
     let n = w * h;
@@ -275,37 +287,55 @@ pub fn refine(f: &Features, clusters: &Clusters, params: &ValidRefineParams) -> 
     // Most likely label, its posterior, and which pixels are fixed.
     // Per pixel: the scores of every phase and the empty pseudo-phase, the most likely
     // label, its posterior, and whether the pixel is unlike every phase.
-    let mut scores = vec![0.0f32; n * kk];
-    let first: Vec<(u16, f32)> = scores
-        .par_chunks_mut(kk)
-        .enumerate()
-        .with_min_len(4096)
-        .map_init(Vec::new, |scratch, (i, lp)| {
-            if !f.mask[i] {
-                return (empty_label, 0.0);
+    let t = crate::profile::stage("  refine: scores");
+    let start =
+        start.filter(|s| s.labels.len() == n && s.labels.iter().all(|&l| (l as usize) <= k));
+    // The scores of every pixel are kept only to build the first labels.
+    let keep_scores = p.smoothing > 0.0 && start.is_none();
+    let mut scores = vec![0.0f32; if keep_scores { n * kk } else { kk }];
+    let compute = |i: usize, lp: &mut [f32], scratch: &mut Vec<f32>| -> (u16, f32) {
+        if !f.mask[i] {
+            return (empty_label, 0.0);
+        }
+        let row = f.row(i);
+        let mut best = 0;
+        for c in 0..kk {
+            lp[c] = fs.score(c, row) as f32;
+            if lp[c] > lp[best] {
+                best = c;
             }
-            let row = f.row(i);
-            let mut best = 0;
-            for c in 0..kk {
-                lp[c] = fs.score(c, row) as f32;
-                if lp[c] > lp[best] {
-                    best = c;
-                }
+        }
+        let max = lp[best];
+        let z: f32 = lp.iter().map(|&v| (v - max).exp()).sum();
+        if best < k && fs.inner.discrepancy(best, row) > outlier_threshold {
+            let mixed = curves
+                .iter()
+                .any(|pt| fs.discrepancy_to_counts(row, pt, scratch) <= outlier_threshold);
+            if !mixed {
+                return (outlier_label, 0.0);
             }
-            let max = lp[best];
-            let z: f32 = lp.iter().map(|&v| (v - max).exp()).sum();
-            let post = 1.0 / z;
-            if best < k && fs.inner.discrepancy(best, row) > outlier_threshold {
-                let mixed = curves
-                    .iter()
-                    .any(|pt| fs.discrepancy_to_counts(row, pt, scratch) <= outlier_threshold);
-                if !mixed {
-                    return (outlier_label, 0.0);
-                }
-            }
-            (best as u16, post)
-        })
-        .collect();
+        }
+        (best as u16, 1.0 / z)
+    };
+    let first: Vec<(u16, f32)> = if keep_scores {
+        scores
+            .par_chunks_mut(kk)
+            .enumerate()
+            .with_min_len(4096)
+            .map_init(Vec::new, |scratch, (i, lp)| compute(i, lp, scratch))
+            .collect()
+    } else {
+        (0..n)
+            .into_par_iter()
+            .with_min_len(4096)
+            .map_init(
+                || (Vec::new(), vec![0.0f32; kk]),
+                |(scratch, lp), i| compute(i, lp, scratch),
+            )
+            .collect()
+    };
+    drop(t);
+    let t = crate::profile::stage("  refine: init");
     let ml: Vec<u16> = first.iter().map(|x| x.0).collect();
     let mut confidence: Vec<f32> = first.iter().map(|x| x.1).collect();
     let fixed: Vec<bool> = (0..n)
@@ -314,7 +344,18 @@ pub fn refine(f: &Features, clusters: &Clusters, params: &ValidRefineParams) -> 
     // With the spatial prior on, start from the label that best explains the pixel *and*
     // its 3 × 3 neighbourhood: noise-free enough that ICM does not freeze in islands of
     // wrong labels; the pixel's own best label stays a candidate in every sweep.
-    let mut labels: Vec<u16> = if p.smoothing > 0.0 {
+    let mut labels: Vec<u16> = if let Some(st) = start {
+        // Earlier labels (1..=k) where the pixel is still a phase pixel.
+        (0..n)
+            .map(|i| {
+                if fixed[i] || st.labels[i] == 0 {
+                    ml[i]
+                } else {
+                    st.labels[i] - 1
+                }
+            })
+            .collect()
+    } else if p.smoothing > 0.0 {
         (0..n)
             .into_par_iter()
             .with_min_len(4096)
@@ -345,6 +386,8 @@ pub fn refine(f: &Features, clusters: &Clusters, params: &ValidRefineParams) -> 
     };
     drop(scores);
 
+    drop(t);
+    let t = crate::profile::stage("  refine: icm");
     let mut sweep_changes = Vec::new();
     if p.smoothing > 0.0 {
         let beta = p.smoothing;
@@ -375,6 +418,9 @@ pub fn refine(f: &Features, clusters: &Clusters, params: &ValidRefineParams) -> 
                             let mut nc = 1;
                             let mut votes = [(0u16, 0.0f64); 8];
                             let mut nv = 0;
+                            // Distinct neighbour labels: the possible partners of a mixture.
+                            let mut nbrs = [u16::MAX; 8];
+                            let mut nb = 0;
                             for (dx, dy, wt) in NEIGHBOURS {
                                 let (xx, yy) = (x as isize + dx, y as isize + dy);
                                 if xx < 0 || yy < 0 || xx >= w as isize || yy >= h as isize {
@@ -386,6 +432,10 @@ pub fn refine(f: &Features, clusters: &Clusters, params: &ValidRefineParams) -> 
                                 }
                                 votes[nv] = (l, wt);
                                 nv += 1;
+                                if !nbrs[..nb].contains(&l) {
+                                    nbrs[nb] = l;
+                                    nb += 1;
+                                }
                                 if !cands[..nc].contains(&l) {
                                     cands[nc] = l;
                                     nc += 1;
@@ -403,13 +453,13 @@ pub fn refine(f: &Features, clusters: &Clusters, params: &ValidRefineParams) -> 
                                 if partial_volume {
                                     // Next to a clearly different phase b, a pixel of phase c
                                     // may hold some of b: judge c by its best such mixture.
-                                    for &(b, _) in &votes[..nv] {
+                                    for &b in &nbrs[..nb] {
                                         if b != c && far[c as usize * kk + b as usize] {
-                                            s = s.max(mix_score(
-                                                row,
-                                                &ends[c as usize],
-                                                &ends[b as usize],
-                                            ));
+                                            if let Some(m) =
+                                                mix_score(row, &ends[c as usize], &ends[b as usize])
+                                            {
+                                                s = s.max(m);
+                                            }
                                         }
                                     }
                                 }
@@ -448,18 +498,31 @@ pub fn refine(f: &Features, clusters: &Clusters, params: &ValidRefineParams) -> 
         }
     }
 
+    drop(t);
+    let t = crate::profile::stage("  refine: unmix");
     // Boundaries move by at most a pixel per pass; a few passes reach the rims of pores.
     let mut unmixed_pixels = 0;
     if p.smoothing > 0.0 {
+        let mut dirty: Option<Vec<bool>> = None;
         for _ in 0..UNMIX_PASSES {
-            let moved = unmix_boundaries(f, &mut labels, &ends, &fixed, outlier_label);
+            let (moved, next) = unmix_boundaries(
+                f,
+                &mut labels,
+                &ends,
+                &fixed,
+                outlier_label,
+                dirty.as_deref(),
+            );
             unmixed_pixels += moved;
             if moved == 0 {
                 break;
             }
+            dirty = Some(next);
         }
     }
 
+    drop(t);
+    let _t = crate::profile::stage("  refine: finish");
     let small_feature_pixels = if p.min_feature_px > 1 {
         remove_small_features(&mut labels, w, h, &fixed, p.min_feature_px, outlier_label)
     } else {
@@ -537,20 +600,46 @@ fn far_pairs(ends: &[Vec<f64>]) -> Vec<bool> {
 }
 
 /// Poisson log-likelihood (without the Σ ln x! term) of counts `row` under the best
-/// mixture t·a + (1 − t)·b with a the majority, t ∈ {½, 0.6, …, 1}.
-fn mix_score(row: &[f32], a: &[f64], b: &[f64]) -> f64 {
-    (5..=10)
-        .map(|s| {
-            let t = s as f64 / 10.0;
-            row.iter()
-                .zip(a.iter().zip(b))
-                .map(|(&x, (&pa, &pb))| {
-                    let m = (t * pa + (1.0 - t) * pb).max(1e-3);
-                    f64::from(x) * m.ln() - m
-                })
-                .sum::<f64>()
-        })
-        .fold(f64::NEG_INFINITY, f64::max)
+/// mixture t·a + (1 − t)·b with a the majority, t ∈ [½, 1], or `None` when the best is
+/// t = 1 (pure a, which the caller has already scored). The log-likelihood is concave in
+/// t, so its slope g′(t) = Σ x(a − b)/m − Σ(a − b) decides: g′(1) ≥ 0 means pure a; else
+/// the maximum is where the slope vanishes, found by bisection, with one evaluation.
+fn mix_score(row: &[f32], a: &[f64], b: &[f64]) -> Option<f64> {
+    let slope = |t: f64| -> f64 {
+        row.iter()
+            .zip(a.iter().zip(b))
+            .map(|(&x, (&pa, &pb))| {
+                let m = (t * pa + (1.0 - t) * pb).max(1e-3);
+                (f64::from(x) / m - 1.0) * (pa - pb)
+            })
+            .sum()
+    };
+    if slope(1.0) >= 0.0 {
+        return None;
+    }
+    let t = if slope(0.5) <= 0.0 {
+        0.5
+    } else {
+        let (mut lo, mut hi) = (0.5, 1.0);
+        for _ in 0..12 {
+            let mid = 0.5 * (lo + hi);
+            if slope(mid) > 0.0 {
+                lo = mid;
+            } else {
+                hi = mid;
+            }
+        }
+        0.5 * (lo + hi)
+    };
+    Some(
+        row.iter()
+            .zip(a.iter().zip(b))
+            .map(|(&x, (&pa, &pb))| {
+                let m = (t * pa + (1.0 - t) * pb).max(1e-3);
+                f64::from(x) * m.ln() - m
+            })
+            .sum(),
+    )
 }
 
 /// Limit on unmixing passes.
@@ -562,16 +651,20 @@ pub const UNMIX_PASSES: usize = 4;
 /// ratio of *pure* a against *pure* b puts the decision at the point where the two pure
 /// phases explain the counts equally badly, which for a phase with a strong characteristic
 /// element is well short of half its volume: small particles of such a phase would grow by
-/// a rim. Here the mixing fraction t of counts ≈ t·a + (1 − t)·b is estimated by maximum
-/// likelihood (Poisson, on a grid of 1/20) and the pixel keeps a only if t ≥ ½. Applied
-/// once, after the spatial prior, only between clearly different phases (including pores).
+/// a rim. Here the pixel keeps a only if the maximum-likelihood mixing fraction t of
+/// counts ≈ t·a + (1 − t)·b is at least ½. The Poisson log-likelihood is concave in t, so
+/// t̂ < ½ exactly when its slope at ½ is negative: Σₑ xₑ(aₑ − bₑ)/mₑ − Σₑ (aₑ − bₑ) < 0
+/// with m = (a + b)/2 — one dot product per candidate, no search. Applied only between
+/// clearly different phases (including pores); `dirty` limits a pass to pixels next to a
+/// change of the previous one. Returns the pixels moved and the new dirty set.
 fn unmix_boundaries(
     f: &Features,
     labels: &mut [u16],
     ends: &[Vec<f64>],
     fixed: &[bool],
     outlier: u16,
-) -> usize {
+    dirty: Option<&[bool]>,
+) -> (usize, Vec<bool>) {
     let (w, h, d) = (f.width, f.height, f.dims);
     let planes: Vec<&[f32]> = f
         .counts
@@ -581,70 +674,61 @@ fn unmix_boundaries(
         .collect();
     let kk = ends.len();
     let far = far_pairs(ends);
+    // Per ordered pair (a, b): q = (a − b)/m and Σ (a − b).
+    let mut q = vec![0.0f32; kk * kk * d];
+    let mut offset = vec![0.0f64; kk * kk];
+    for a in 0..kk {
+        for b in 0..kk {
+            for e in 0..d {
+                let diff = ends[a][e] - ends[b][e];
+                let m = (0.5 * (ends[a][e] + ends[b][e])).max(1e-3);
+                q[(a * kk + b) * d + e] = (diff / m) as f32;
+                offset[a * kk + b] += diff;
+            }
+        }
+    }
     let current: &[u16] = labels;
     let changes: Vec<(usize, u16)> = (0..w * h)
         .into_par_iter()
         .with_min_len(4096)
         .filter_map(|i| {
             let a = current[i];
-            if fixed[i] || a == outlier {
+            if fixed[i] || a == outlier || dirty.is_some_and(|dt| !dt[i]) {
                 return None;
             }
             let (x, y) = (i % w, i / w);
-            let mut others = [u16::MAX; 4];
-            let mut no = 0;
+            let mut best: Option<(f64, u16)> = None;
             for (dx, dy) in [(-1isize, 0isize), (1, 0), (0, -1), (0, 1)] {
                 let (xx, yy) = (x as isize + dx, y as isize + dy);
                 if xx < 0 || yy < 0 || xx >= w as isize || yy >= h as isize {
                     continue;
                 }
                 let b = current[yy as usize * w + xx as usize];
-                if b != a
-                    && b != outlier
-                    && far[a as usize * kk + b as usize]
-                    && !others[..no].contains(&b)
-                {
-                    others[no] = b;
-                    no += 1;
+                if b == a || b == outlier || !far[a as usize * kk + b as usize] {
+                    continue;
                 }
-            }
-            if no == 0 {
-                return None;
-            }
-            let counts: Vec<f64> = (0..d).map(|e| f64::from(planes[e][i])).collect();
-            let mut best: Option<(f64, u16)> = None;
-            for &b in &others[..no] {
-                let (la, lb) = (&ends[a as usize], &ends[b as usize]);
-                let ll = |t: f64| -> f64 {
-                    (0..d)
-                        .map(|e| {
-                            let m = (t * la[e] + (1.0 - t) * lb[e]).max(1e-3);
-                            counts[e] * m.ln() - m
-                        })
-                        .sum()
-                };
-                let t =
-                    (0..=20)
-                        .map(|s| s as f64 / 20.0)
-                        .fold((f64::NEG_INFINITY, 1.0), |acc, t| {
-                            let v = ll(t);
-                            if v > acc.0 {
-                                (v, t)
-                            } else {
-                                acc
-                            }
-                        });
-                if t.1 < 0.5 && best.is_none_or(|bb| t.1 < bb.0) {
-                    best = Some((t.1, b));
+                let pair = a as usize * kk + b as usize;
+                let qa = &q[pair * d..(pair + 1) * d];
+                let slope: f64 =
+                    (0..d).map(|e| f64::from(planes[e][i] * qa[e])).sum::<f64>() - offset[pair];
+                if slope < 0.0 && best.is_none_or(|bb| slope < bb.0) {
+                    best = Some((slope, b));
                 }
             }
             best.map(|(_, b)| (i, b))
         })
         .collect();
+    let mut next = vec![false; w * h];
     for &(i, b) in &changes {
         labels[i] = b;
+        let (x, y) = (i % w, i / w);
+        for yy in y.saturating_sub(1)..=(y + 1).min(h - 1) {
+            for xx in x.saturating_sub(1)..=(x + 1).min(w - 1) {
+                next[yy * w + xx] = true;
+            }
+        }
     }
-    changes.len()
+    (changes.len(), next)
 }
 
 /// Gives connected features (8-connected) smaller than `min_px` to the label that borders

@@ -543,6 +543,181 @@ pub fn solder_joint() -> (Microstructure, SynthOptions) {
     (Microstructure::new(phases, shape), opts)
 }
 
+/// A jittered grid of sites: one random point per `cell × cell` square, so the nearest
+/// site of any point lies in the 5 × 5 cells around it (Voronoi lookups in O(1), for
+/// fields of millions of pixels).
+pub struct JitteredSites {
+    cell: f64,
+    cols: usize,
+    rows: usize,
+    /// (x, y, label, radius) per cell; radius 0 for grain sites.
+    sites: Vec<(f64, f64, u16, f64)>,
+}
+
+impl JitteredSites {
+    /// Grain sites with labels drawn ∝ `weights` (labels 1..).
+    pub fn grains(rng: &mut ChaCha8Rng, cell: f64, (w, h): (f64, f64), weights: &[f64]) -> Self {
+        let (cols, rows) = (
+            (w / cell).ceil() as usize + 1,
+            (h / cell).ceil() as usize + 1,
+        );
+        let total: f64 = weights.iter().sum();
+        let sites = (0..cols * rows)
+            .map(|i| {
+                let (cx, cy) = ((i % cols) as f64 * cell, (i / cols) as f64 * cell);
+                let mut r = rng.random_range(0.0..total);
+                let mut label = weights.len() as u16;
+                for (j, &wt) in weights.iter().enumerate() {
+                    if r < wt {
+                        label = j as u16 + 1;
+                        break;
+                    }
+                    r -= wt;
+                }
+                (
+                    cx + rng.random_range(0.0..cell),
+                    cy + rng.random_range(0.0..cell),
+                    label,
+                    0.0,
+                )
+            })
+            .collect();
+        JitteredSites {
+            cell,
+            cols,
+            rows,
+            sites,
+        }
+    }
+
+    /// Round inclusions: in each cell, with probability `p`, a disk of radius in
+    /// `[r_min, r_max]` (well inside the cell) labelled `label`.
+    pub fn inclusions(
+        rng: &mut ChaCha8Rng,
+        cell: f64,
+        (w, h): (f64, f64),
+        p: f64,
+        label: u16,
+        (r_min, r_max): (f64, f64),
+    ) -> Self {
+        let (cols, rows) = (
+            (w / cell).ceil() as usize + 1,
+            (h / cell).ceil() as usize + 1,
+        );
+        let sites = (0..cols * rows)
+            .map(|i| {
+                let (cx, cy) = ((i % cols) as f64 * cell, (i / cols) as f64 * cell);
+                let r = if rng.random_bool(p) {
+                    rng.random_range(r_min..=r_max)
+                } else {
+                    0.0
+                };
+                let m = r.min(cell / 2.0);
+                (
+                    cx + m + rng.random_range(0.0..(cell - 2.0 * m).max(1e-9)),
+                    cy + m + rng.random_range(0.0..(cell - 2.0 * m).max(1e-9)),
+                    label,
+                    r,
+                )
+            })
+            .collect();
+        JitteredSites {
+            cell,
+            cols,
+            rows,
+            sites,
+        }
+    }
+
+    fn near(&self, x: f64, y: f64, reach: isize) -> impl Iterator<Item = &(f64, f64, u16, f64)> {
+        let (cx, cy) = (
+            (x / self.cell).floor() as isize,
+            (y / self.cell).floor() as isize,
+        );
+        (-reach..=reach)
+            .flat_map(move |dy| (-reach..=reach).map(move |dx| (cx + dx, cy + dy)))
+            .filter(move |&(i, j)| {
+                i >= 0 && j >= 0 && (i as usize) < self.cols && (j as usize) < self.rows
+            })
+            .map(move |(i, j)| &self.sites[j as usize * self.cols + i as usize])
+    }
+
+    /// The label of the nearest grain site.
+    pub fn grain_at(&self, x: f64, y: f64) -> u16 {
+        self.near(x, y, 2)
+            .min_by(|a, b| {
+                ((a.0 - x).powi(2) + (a.1 - y).powi(2))
+                    .total_cmp(&((b.0 - x).powi(2) + (b.1 - y).powi(2)))
+            })
+            .map_or(0, |s| s.2)
+    }
+
+    /// The label of an inclusion covering (x, y), if any.
+    pub fn inclusion_at(&self, x: f64, y: f64) -> Option<u16> {
+        self.near(x, y, 1)
+            .find(|s| s.3 > 0.0 && (s.0 - x).powi(2) + (s.1 - y).powi(2) <= s.3 * s.3)
+            .map(|s| s.2)
+    }
+}
+
+/// A large field for benchmarks: a rock of six minerals in ten mapped elements (quartz,
+/// two feldspars, a pyroxene as grains; rutile and magnetite as inclusions) with pores,
+/// `size × size` pixels, majors at 10–40 counts per pixel.
+pub fn benchmark_rock(size: usize, seed: u64) -> (Microstructure, SynthOptions) {
+    let s = size as f64;
+    let mut rng = ChaCha8Rng::seed_from_u64(seed);
+    let phases = vec![
+        SynthPhase::formula("SiO2"),
+        SynthPhase::formula("KAlSi3O8"),
+        SynthPhase::formula("NaAlSi3O8"),
+        SynthPhase::formula("CaMgSi2O6"),
+        SynthPhase::formula("TiO2"),
+        SynthPhase::formula("Fe3O4"),
+    ];
+    let grains = JitteredSites::grains(&mut rng, 48.0, (s, s), &[0.35, 0.25, 0.25, 0.15]);
+    let rutile = JitteredSites::inclusions(&mut rng, 40.0, (s, s), 0.25, 5, (2.0, 5.0));
+    let magnetite = JitteredSites::inclusions(&mut rng, 64.0, (s, s), 0.3, 6, (3.0, 8.0));
+    let pores = JitteredSites::inclusions(&mut rng, 128.0, (s, s), 0.3, 0, (3.0, 9.0));
+    let shape = move |x: f64, y: f64| -> u16 {
+        if pores.inclusion_at(x, y).is_some() {
+            return 0;
+        }
+        magnetite
+            .inclusion_at(x, y)
+            .or_else(|| rutile.inclusion_at(x, y))
+            .unwrap_or_else(|| grains.grain_at(x, y))
+    };
+    let detector = Detector::new(
+        &[
+            ("O", "Ka", 30.0),
+            ("Na", "Ka", 35.0),
+            ("Mg", "Ka", 35.0),
+            ("Al", "Ka", 40.0),
+            ("Si", "Ka", 40.0),
+            ("K", "Ka", 45.0),
+            ("Ca", "Ka", 45.0),
+            ("Ti", "Ka", 45.0),
+            ("Mn", "Ka", 40.0),
+            ("Fe", "Ka", 40.0),
+        ],
+        1.0,
+        1.0,
+    );
+    let opts = SynthOptions {
+        width: size,
+        height: size,
+        detector,
+        seed: seed ^ 0xBE7C,
+        metadata: FieldMetadata {
+            pixel_size_um: Some(0.5),
+            beam_kv: Some(15.0),
+            live_time_s: Some(1200.0),
+        },
+        bse: None,
+    };
+    (Microstructure::new(phases, shape), opts)
+}
+
 /// Generates the bundled sample field (see [`solder_joint`]).
 pub fn sample_field() -> Result<SynthField> {
     let (micro, opts) = solder_joint();

@@ -197,7 +197,7 @@ struct Outcome {
 }
 
 fn check(name: &str, field: &SynthField, options: MapOptions, expect_k: usize) -> Outcome {
-    let r = map_stack(&field.stack, &options.check().unwrap()).unwrap();
+    let r = map_stack(field.stack.clone(), &options.check().unwrap()).unwrap();
     let s = common::score(&r.segmentation.labels, &field.truth);
     println!(
         "{name}: k = {} accuracy {:.4} simpl {:?} unmixed {} empty {} outl {}",
@@ -423,7 +423,10 @@ fn modalmap_beats_the_obvious_pipeline_on_every_field() {
     let opts = auto().check().unwrap();
     for (name, f) in &fields {
         let ours = common::score(
-            &map_stack(&f.stack, &opts).unwrap().segmentation.labels,
+            &map_stack(f.stack.clone(), &opts)
+                .unwrap()
+                .segmentation
+                .labels,
             &f.truth,
         );
         for (method, gmm) in [("k-means", false), ("GMM", true)] {

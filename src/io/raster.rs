@@ -348,7 +348,7 @@ fn write_png(
         let mut enc = png::Encoder::new(&mut w, width as u32, height as u32);
         enc.set_color(color);
         enc.set_depth(depth);
-        enc.set_compression(png::Compression::High);
+        enc.set_compression(png::Compression::Fast);
         let mut writer = enc.write_header().map_err(|e| write_err(path, e))?;
         writer
             .write_image_data(bytes)

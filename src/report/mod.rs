@@ -18,7 +18,6 @@ pub use output::{prepare_output, OutputDir};
 use crate::cluster::select::{CurvePoint, PhaseCount};
 use crate::cluster::simplify::Simplification;
 use crate::error::{Error, Result};
-use crate::io::LoadedField;
 use crate::pipeline::{MapOptions, MapResult};
 
 /// The report's schema name.
@@ -157,7 +156,8 @@ fn hash_file(path: &std::path::Path) -> Result<String> {
 
 /// Builds the report of a mapped field.
 pub fn build(
-    field: &LoadedField,
+    field_name: &str,
+    files: &[std::path::PathBuf],
     result: &MapResult,
     options: &MapOptions,
     mut warnings: Vec<String>,
@@ -189,8 +189,7 @@ pub fn build(
             mean_confidence: p.mean_confidence,
         })
         .collect();
-    let inputs = field
-        .files
+    let inputs = files
         .par_iter()
         .map(|p| {
             Ok(InputFile {
@@ -242,7 +241,7 @@ pub fn build(
     );
     Ok(Report {
         schema: SCHEMA.into(),
-        field: field.name.clone(),
+        field: field_name.to_string(),
         elements: t.elements.clone(),
         lines: result
             .counts
