@@ -141,6 +141,13 @@ pub fn map_stack(stack: MapStack, opts: &ValidMapOptions) -> Result<MapResult> {
         ends.push(vec![0.0; f.dims]);
         let mut drop: Vec<(usize, Simplification)> = Vec::new();
         for (c, &(px, interior)) in inside.iter().enumerate() {
+            if std::env::var_os("MODALMAP_DEBUG").is_some() {
+                eprintln!(
+                    "c{c} {} px {px} interior {interior:.3} mix {:?}",
+                    simplify::fmt_counts(&ends[c]),
+                    simplify::nearest_mixture(c, &ends).map(|m| m.0)
+                );
+            }
             if px < min_px {
                 drop.push((c, Simplification {
                     action: format!("dissolved a component of {px} pixels, below the size floor of {min_px}"),
@@ -198,7 +205,7 @@ pub fn map_stack(stack: MapStack, opts: &ValidMapOptions) -> Result<MapResult> {
     })
 }
 
-/// A component with fewer interior pixels than this share is a boundary band, if it also
-/// lies on a mixing line (common practice, no source; real phases on the sample and test
-/// fields keep 13 % or more even as 3–5 pixel particles).
-pub const BOUNDARY_INTERIOR: f64 = 0.05;
+/// A component with fewer interior pixels (two or more pixels from any other label) than
+/// this share is a boundary band, if it is also a mixture of the others (common practice,
+/// no source; a five-pixel layer keeps about a fifth of its pixels inside).
+pub const BOUNDARY_INTERIOR: f64 = 0.02;

@@ -118,6 +118,9 @@ pub struct Segmentation {
     pub small_feature_pixels: usize,
     /// Boundary pixels given to the neighbouring phase that fills most of them.
     pub unmixed_pixels: usize,
+    /// Labels after the spatial prior but before unmixing: 0 = unassigned, c + 1 = phase c
+    /// of the model (never renumbered).
+    pub smoothed_labels: Vec<u16>,
 }
 
 /// Scores the phases plus the empty pseudo-phase (index k), in the model's own space.
@@ -500,27 +503,21 @@ pub fn refine_from(
 
     drop(t);
     let t = crate::profile::stage("  refine: unmix");
-    // Boundaries move by at most a pixel per pass; a few passes reach the rims of pores.
-    let mut unmixed_pixels = 0;
-    if p.smoothing > 0.0 {
-        let mut dirty: Option<Vec<bool>> = None;
-        for _ in 0..UNMIX_PASSES {
-            let (moved, next) = unmix_boundaries(
-                f,
-                &mut labels,
-                &ends,
-                &fixed,
-                outlier_label,
-                dirty.as_deref(),
-            );
-            unmixed_pixels += moved;
-            if moved == 0 {
-                break;
-            }
-            dirty = Some(next);
-        }
-    }
-
+    // The labels before unmixing decide which components are bands of mixed pixels
+    // (`interior_fractions`): unmixing moves exactly those pixels.
+    let before_unmixing = labels.clone();
+    let unmixed_pixels = if p.smoothing > 0.0 {
+        unmix_boundaries(
+            f,
+            &mut labels,
+            &ends,
+            &fixed,
+            outlier_label,
+            p.smoothing * 0.25,
+        )
+    } else {
+        0
+    };
     drop(t);
     let _t = crate::profile::stage("  refine: finish");
     let small_feature_pixels = if p.min_feature_px > 1 {
@@ -576,6 +573,16 @@ pub fn refine_from(
         sweep_changes,
         small_feature_pixels,
         unmixed_pixels,
+        smoothed_labels: before_unmixing
+            .iter()
+            .map(|&l| {
+                if l == empty_label || l == outlier_label {
+                    0
+                } else {
+                    l + 1
+                }
+            })
+            .collect(),
     }
 }
 
@@ -642,8 +649,8 @@ fn mix_score(row: &[f32], a: &[f64], b: &[f64]) -> Option<f64> {
     )
 }
 
-/// Limit on unmixing passes.
-pub const UNMIX_PASSES: usize = 4;
+/// Limit on unmixing sweeps (each moves a boundary by at most a pixel).
+pub const UNMIX_PASSES: usize = 6;
 
 /// Gives each boundary pixel to the phase that fills most of it.
 ///
@@ -651,20 +658,20 @@ pub const UNMIX_PASSES: usize = 4;
 /// ratio of *pure* a against *pure* b puts the decision at the point where the two pure
 /// phases explain the counts equally badly, which for a phase with a strong characteristic
 /// element is well short of half its volume: small particles of such a phase would grow by
-/// a rim. Here the pixel keeps a only if the maximum-likelihood mixing fraction t of
-/// counts ≈ t·a + (1 − t)·b is at least ½. The Poisson log-likelihood is concave in t, so
-/// t̂ < ½ exactly when its slope at ½ is negative: Σₑ xₑ(aₑ − bₑ)/mₑ − Σₑ (aₑ − bₑ) < 0
-/// with m = (a + b)/2 — one dot product per candidate, no search. Applied only between
-/// clearly different phases (including pores); `dirty` limits a pass to pixels next to a
-/// change of the previous one. Returns the pixels moved and the new dirty set.
+/// a rim. Here the data term compares the best mixture t·a + (1 − t)·b with a in the
+/// majority (t ≥ ½) against the best with b in the majority (Poisson likelihood, concave
+/// in t, maximised by bisection on its slope), and the Potts prior of the neighbours is
+/// added as in the smoothing sweeps, so boundaries sit at half volume *and* stay smooth.
+/// Only between clearly different phases (including pores); sweeps in four colour classes
+/// until nothing changes. Returns the pixels moved.
 fn unmix_boundaries(
     f: &Features,
     labels: &mut [u16],
     ends: &[Vec<f64>],
     fixed: &[bool],
     outlier: u16,
-    dirty: Option<&[bool]>,
-) -> (usize, Vec<bool>) {
+    beta: f64,
+) -> usize {
     let (w, h, d) = (f.width, f.height, f.dims);
     let planes: Vec<&[f32]> = f
         .counts
@@ -674,61 +681,121 @@ fn unmix_boundaries(
         .collect();
     let kk = ends.len();
     let far = far_pairs(ends);
-    // Per ordered pair (a, b): q = (a − b)/m and Σ (a − b).
-    let mut q = vec![0.0f32; kk * kk * d];
-    let mut offset = vec![0.0f64; kk * kk];
-    for a in 0..kk {
-        for b in 0..kk {
-            for e in 0..d {
-                let diff = ends[a][e] - ends[b][e];
-                let m = (0.5 * (ends[a][e] + ends[b][e])).max(1e-3);
-                q[(a * kk + b) * d + e] = (diff / m) as f32;
-                offset[a * kk + b] += diff;
+    let mut dirty = vec![true; w * h];
+    let mut moved = 0;
+    for _ in 0..UNMIX_PASSES {
+        let mut next_dirty = vec![false; w * h];
+        let mut changed = 0;
+        for colour in 0..4usize {
+            let (cx, cy) = (colour % 2, colour / 2);
+            let current: &[u16] = labels;
+            let dirty_now = &dirty;
+            let updates: Vec<(usize, u16)> = (cy..h)
+                .into_par_iter()
+                .step_by(2)
+                .flat_map_iter(|y| {
+                    let planes = &planes;
+                    let far = &far;
+                    (cx..w).step_by(2).filter_map(move |x| {
+                        let i = y * w + x;
+                        let a = current[i];
+                        if fixed[i] || a == outlier || !dirty_now[i] {
+                            return None;
+                        }
+                        let mut votes = [(0u16, 0.0f64); 8];
+                        let mut nv = 0;
+                        for (dx, dy, wt) in NEIGHBOURS {
+                            let (xx, yy) = (x as isize + dx, y as isize + dy);
+                            if xx < 0 || yy < 0 || xx >= w as isize || yy >= h as isize {
+                                continue;
+                            }
+                            let l = current[yy as usize * w + xx as usize];
+                            if l != outlier {
+                                votes[nv] = (l, wt);
+                                nv += 1;
+                            }
+                        }
+                        let vote = |c: u16| -> f64 {
+                            votes[..nv].iter().filter(|v| v.0 == c).map(|v| v.1).sum()
+                        };
+                        let x_e: Vec<f64> = (0..d).map(|e| f64::from(planes[e][i])).collect();
+                        let mut best: Option<(f64, u16)> = None;
+                        let mut seen = [u16::MAX; 8];
+                        for (n, &(b, _)) in votes[..nv].iter().enumerate() {
+                            if b == a
+                                || !far[a as usize * kk + b as usize]
+                                || seen[..n].contains(&b)
+                            {
+                                continue;
+                            }
+                            seen[n] = b;
+                            let (pa, pb) = (&ends[a as usize], &ends[b as usize]);
+                            let mix = |t: f64, e: usize| (t * pa[e] + (1.0 - t) * pb[e]).max(1e-3);
+                            let slope = |t: f64| -> f64 {
+                                (0..d)
+                                    .map(|e| (x_e[e] / mix(t, e) - 1.0) * (pa[e] - pb[e]))
+                                    .sum()
+                            };
+                            let g = |t: f64| -> f64 {
+                                (0..d).map(|e| x_e[e] * mix(t, e).ln() - mix(t, e)).sum()
+                            };
+                            let argmax = |lo: f64, hi: f64| -> f64 {
+                                if slope(hi) >= 0.0 {
+                                    return hi;
+                                }
+                                if slope(lo) <= 0.0 {
+                                    return lo;
+                                }
+                                let (mut l, mut r) = (lo, hi);
+                                for _ in 0..12 {
+                                    let m = 0.5 * (l + r);
+                                    if slope(m) > 0.0 {
+                                        l = m;
+                                    } else {
+                                        r = m;
+                                    }
+                                }
+                                0.5 * (l + r)
+                            };
+                            let (la, lb) = if slope(0.5) < 0.0 {
+                                (g(0.5), g(argmax(0.0, 0.5)))
+                            } else {
+                                (g(argmax(0.5, 1.0)), g(0.5))
+                            };
+                            // No prior across the rim of a pore: the Potts prior shrinks small
+                            // convex regions, and pores are often only a few pixels across.
+                            let prior = if a as usize == kk - 1 || b as usize == kk - 1 {
+                                0.0
+                            } else {
+                                beta * (vote(b) - vote(a))
+                            };
+                            let delta = lb - la + prior;
+                            if delta > 0.0 && best.is_none_or(|bb| delta > bb.0) {
+                                best = Some((delta, b));
+                            }
+                        }
+                        best.map(|(_, b)| (i, b))
+                    })
+                })
+                .collect();
+            for &(i, b) in &updates {
+                labels[i] = b;
+                let (x, y) = (i % w, i / w);
+                for yy in y.saturating_sub(1)..=(y + 1).min(h - 1) {
+                    for xx in x.saturating_sub(1)..=(x + 1).min(w - 1) {
+                        next_dirty[yy * w + xx] = true;
+                    }
+                }
             }
+            changed += updates.len();
+        }
+        moved += changed;
+        dirty = next_dirty;
+        if changed == 0 {
+            break;
         }
     }
-    let current: &[u16] = labels;
-    let changes: Vec<(usize, u16)> = (0..w * h)
-        .into_par_iter()
-        .with_min_len(4096)
-        .filter_map(|i| {
-            let a = current[i];
-            if fixed[i] || a == outlier || dirty.is_some_and(|dt| !dt[i]) {
-                return None;
-            }
-            let (x, y) = (i % w, i / w);
-            let mut best: Option<(f64, u16)> = None;
-            for (dx, dy) in [(-1isize, 0isize), (1, 0), (0, -1), (0, 1)] {
-                let (xx, yy) = (x as isize + dx, y as isize + dy);
-                if xx < 0 || yy < 0 || xx >= w as isize || yy >= h as isize {
-                    continue;
-                }
-                let b = current[yy as usize * w + xx as usize];
-                if b == a || b == outlier || !far[a as usize * kk + b as usize] {
-                    continue;
-                }
-                let pair = a as usize * kk + b as usize;
-                let qa = &q[pair * d..(pair + 1) * d];
-                let slope: f64 =
-                    (0..d).map(|e| f64::from(planes[e][i] * qa[e])).sum::<f64>() - offset[pair];
-                if slope < 0.0 && best.is_none_or(|bb| slope < bb.0) {
-                    best = Some((slope, b));
-                }
-            }
-            best.map(|(_, b)| (i, b))
-        })
-        .collect();
-    let mut next = vec![false; w * h];
-    for &(i, b) in &changes {
-        labels[i] = b;
-        let (x, y) = (i % w, i / w);
-        for yy in y.saturating_sub(1)..=(y + 1).min(h - 1) {
-            for xx in x.saturating_sub(1)..=(x + 1).min(w - 1) {
-                next[yy * w + xx] = true;
-            }
-        }
-    }
-    (changes.len(), next)
+    moved
 }
 
 /// Gives connected features (8-connected) smaller than `min_px` to the label that borders
@@ -793,27 +860,31 @@ fn remove_small_features(
     moved
 }
 
-/// Per phase of the model (index c for label c + 1): pixels, and the fraction of them whose
-/// eight neighbours all carry the same label. A real phase has an inside; a band of mixed
-/// pixels along the boundary of two others has next to none.
+/// Per phase of the model (index c for label c + 1): pixels, and the fraction of them at
+/// least two pixels from any other label (their 5 × 5 neighbourhood all carries the same
+/// label), on the labels before unmixing. A real phase has an inside; a band of mixed
+/// pixels along the boundary of two others is one or two pixels wide and has none.
 pub fn interior_fractions(seg: &Segmentation, k: usize) -> Vec<(usize, f64)> {
     let (w, h) = (seg.width, seg.height);
+    let labels = &seg.smoothed_labels;
     let mut pixels = vec![0usize; k];
     let mut inside = vec![0usize; k];
     for y in 0..h {
         for x in 0..w {
-            let l = seg.labels[y * w + x];
+            let l = labels[y * w + x];
             if l == 0 {
                 continue;
             }
             let c = l as usize - 1;
             pixels[c] += 1;
-            if x == 0 || y == 0 || x + 1 == w || y + 1 == h {
+            if x < 2 || y < 2 || x + 2 >= w || y + 2 >= h {
                 continue;
             }
-            let all =
-                (y - 1..=y + 1).all(|yy| (x - 1..=x + 1).all(|xx| seg.labels[yy * w + xx] == l));
-            if all {
+            if (y - 2..=y + 2).all(|yy| {
+                labels[yy * w + x - 2..=yy * w + x + 2]
+                    .iter()
+                    .all(|&v| v == l)
+            }) {
                 inside[c] += 1;
             }
         }
