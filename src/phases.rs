@@ -14,6 +14,7 @@
 
 use image::{ImageBuffer, Luma};
 use imageproc::region_labelling::{connected_components, Connectivity};
+use rayon::prelude::*;
 use serde::{Deserialize, Serialize};
 use statrs::distribution::{ContinuousCDF, StudentsT};
 
@@ -111,24 +112,61 @@ pub fn phase_table(seg: &mut Segmentation, counts: &MapStack, k: usize) -> Phase
     let d = counts.maps().len();
     let elements: Vec<String> = counts.symbols().iter().map(|s| s.to_string()).collect();
 
-    let mut pixels = vec![0usize; k];
-    let mut sum = vec![0.0f64; k * d];
-    let mut sum2 = vec![0.0f64; k * d];
-    let mut conf = vec![0.0f64; k];
-    for i in 0..n {
-        let l = seg.labels[i];
-        if l == 0 {
-            continue;
-        }
-        let c = l as usize - 1;
-        pixels[c] += 1;
-        conf[c] += f64::from(seg.confidence[i]);
-        for (e, m) in counts.maps().iter().enumerate() {
-            let v = f64::from(m.counts[i]);
-            sum[c * d + e] += v;
-            sum2[c * d + e] += v * v;
-        }
+    // Per-phase sums over fixed chunks of pixels, added in chunk order (deterministic).
+    struct Acc {
+        pixels: Vec<usize>,
+        sum: Vec<f64>,
+        sum2: Vec<f64>,
+        conf: Vec<f64>,
     }
+    let planes: Vec<&[f32]> = counts.maps().iter().map(|m| m.counts.as_slice()).collect();
+    let labels = &seg.labels;
+    let confidence = &seg.confidence;
+    const CHUNK: usize = 1 << 16;
+    let acc = (0..n.div_ceil(CHUNK))
+        .into_par_iter()
+        .map(|chunk| {
+            let mut a = Acc {
+                pixels: vec![0; k],
+                sum: vec![0.0; k * d],
+                sum2: vec![0.0; k * d],
+                conf: vec![0.0; k],
+            };
+            for i in chunk * CHUNK..((chunk + 1) * CHUNK).min(n) {
+                let l = labels[i];
+                if l == 0 {
+                    continue;
+                }
+                let c = l as usize - 1;
+                a.pixels[c] += 1;
+                a.conf[c] += f64::from(confidence[i]);
+                for (e, p) in planes.iter().enumerate() {
+                    let v = f64::from(p[i]);
+                    a.sum[c * d + e] += v;
+                    a.sum2[c * d + e] += v * v;
+                }
+            }
+            a
+        })
+        .collect::<Vec<_>>()
+        .into_iter()
+        .reduce(|mut a, b| {
+            a.pixels
+                .iter_mut()
+                .zip(&b.pixels)
+                .for_each(|(x, y)| *x += y);
+            a.sum.iter_mut().zip(&b.sum).for_each(|(x, y)| *x += y);
+            a.sum2.iter_mut().zip(&b.sum2).for_each(|(x, y)| *x += y);
+            a.conf.iter_mut().zip(&b.conf).for_each(|(x, y)| *x += y);
+            a
+        })
+        .expect("at least one pixel");
+    let Acc {
+        pixels,
+        sum,
+        sum2,
+        conf,
+    } = acc;
     let mut order: Vec<usize> = (0..k).filter(|&c| pixels[c] > 0).collect();
     order.sort_by(|&a, &b| pixels[b].cmp(&pixels[a]).then(a.cmp(&b)));
     let mut new_id = vec![0u16; k + 1];

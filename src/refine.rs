@@ -715,6 +715,12 @@ fn unmix_boundaries(
                                 nv += 1;
                             }
                         }
+                        if !votes[..nv]
+                            .iter()
+                            .any(|v| v.0 != a && far[a as usize * kk + v.0 as usize])
+                        {
+                            return None;
+                        }
                         let vote = |c: u16| -> f64 {
                             votes[..nv].iter().filter(|v| v.0 == c).map(|v| v.1).sum()
                         };
