@@ -336,7 +336,16 @@ pub fn map_field(
         warnings,
         ..
     } = field;
-    let result = crate::pipeline::map_stack(stack, &valid)?;
+    let spinner = spinner(args.quiet);
+    let result = crate::pipeline::map_stack_with_progress(stack, &valid, &mut |stage| {
+        if let Some(s) = &spinner {
+            s.set_message(stage.to_string());
+        }
+    });
+    if let Some(s) = spinner {
+        s.finish_and_clear();
+    }
+    let result = result?;
     let t = crate::profile::stage("report (hashes)");
     let report = crate::report::build(&name, &files, &result, valid.options(), warnings)?;
     drop(t);
@@ -344,6 +353,18 @@ pub fn map_field(
     crate::report::write_outputs(&dir, &report, &result)?;
     dir.commit()?;
     Ok(report)
+}
+
+/// A spinner with the current stage on standard error, only when it is a terminal and the
+/// user did not ask for quiet.
+fn spinner(quiet: bool) -> Option<indicatif::ProgressBar> {
+    use std::io::IsTerminal;
+    if quiet || !std::io::stderr().is_terminal() {
+        return None;
+    }
+    let s = indicatif::ProgressBar::new_spinner();
+    s.enable_steady_tick(std::time::Duration::from_millis(120));
+    Some(s)
 }
 
 fn install_threads(n: Option<usize>) -> Result<()> {

@@ -110,9 +110,21 @@ pub struct MapResult {
 
 /// Runs the main job on one field.
 pub fn map_stack(stack: MapStack, opts: &ValidMapOptions) -> Result<MapResult> {
+    map_stack_with_progress(stack, opts, &mut |_| {})
+}
+
+/// Runs the main job, telling `progress` the name of each stage as it starts (the command
+/// line shows it; the library never prints).
+pub fn map_stack_with_progress(
+    stack: MapStack,
+    opts: &ValidMapOptions,
+    progress: &mut dyn FnMut(&str),
+) -> Result<MapResult> {
+    progress("preparing features");
     let t = crate::profile::stage("prepare");
     let f = prepare(stack, &opts.transform)?;
     drop(t);
+    progress("fitting the phase model");
     let t = crate::profile::stage("fit");
     let fit = select::fit(&f, &opts.cluster)?;
     drop(t);
@@ -126,6 +138,7 @@ pub fn map_stack(stack: MapStack, opts: &ValidMapOptions) -> Result<MapResult> {
     let min_px = (opts.min_phase_fraction * f.pixels() as f64)
         .ceil()
         .max(1.0) as usize;
+    progress("labelling pixels");
     let t = crate::profile::stage("refine");
     let mut seg = refine(&f, &clusters, &opts.refine);
     drop(t);
@@ -191,6 +204,7 @@ pub fn map_stack(stack: MapStack, opts: &ValidMapOptions) -> Result<MapResult> {
         let _t = crate::profile::stage("refine again");
         seg = refine_from(&f, &clusters, &opts.refine, Some(&seg));
     }
+    progress("phase statistics");
     let _t = crate::profile::stage("phase table");
     let table = phase_table(&mut seg, &f.counts, clusters.k());
     Ok(MapResult {
