@@ -147,6 +147,13 @@ pub struct MapArgs {
     /// With --phases auto: dissolve phases smaller than this share of the pixels.
     #[arg(long, value_name = "FRACTION")]
     pub min_phase: Option<f64>,
+    /// BSE image of the field for the contrast check (default: a `BSE…` image found with
+    /// the maps, or the HDF5 input's `bse` dataset).
+    #[arg(long, value_name = "IMAGE")]
+    pub bse: Option<PathBuf>,
+    /// Skip the BSE check even when a BSE image is found with the maps.
+    #[arg(long, conflicts_with = "bse")]
+    pub no_bse: bool,
     /// TOML file with any of these options (keys as the long flag names).
     #[arg(long, value_name = "FILE")]
     pub config: Option<PathBuf>,
@@ -329,6 +336,25 @@ pub fn map_field(
     )?;
     drop(t);
     field.stack.override_metadata(&md);
+    let map_size = (field.stack.width(), field.stack.height());
+    let bse_source = if args.no_bse {
+        None
+    } else {
+        args.bse
+            .clone()
+            .map(crate::io::BseSource::File)
+            .or(field.bse.clone())
+    };
+    let bse_image = bse_source
+        .map(|s| {
+            crate::io::load_bse(
+                &s,
+                &Limits {
+                    max_pixels: args.limits.max_pixels.saturating_mul(16),
+                },
+            )
+        })
+        .transpose()?;
     let crate::io::LoadedField {
         stack,
         name,
@@ -346,11 +372,34 @@ pub fn map_field(
         s.finish_and_clear();
     }
     let result = result?;
+    let bse = match &bse_image {
+        Some(img) => {
+            let _t = crate::profile::stage("bse check");
+            let seg = &result.segmentation;
+            Some(crate::bse::check(
+                img,
+                &seg.labels,
+                seg.width,
+                seg.height,
+                &result.table,
+                map_size,
+                valid.options().prepare.bin,
+            )?)
+        }
+        None => None,
+    };
     let t = crate::profile::stage("report (hashes)");
-    let report = crate::report::build(&name, &files, &result, valid.options(), warnings)?;
+    let report = crate::report::build(
+        &name,
+        &files,
+        &result,
+        valid.options(),
+        warnings,
+        bse.as_ref(),
+    )?;
     drop(t);
     let _t = crate::profile::stage("write outputs");
-    crate::report::write_outputs(&dir, &report, &result)?;
+    crate::report::write_outputs(&dir, &report, &result, bse.as_ref())?;
     dir.commit()?;
     Ok(report)
 }

@@ -6,6 +6,7 @@
 //! [`synth`] makes synthetic fields with ground truth for the demo and the accuracy tests.
 //! The command line ([`cli`]) is a thin layer over this library.
 
+pub mod bse;
 pub mod chem;
 pub mod cli;
 pub mod cluster;

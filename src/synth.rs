@@ -350,13 +350,22 @@ fn render_bse(micro: &Microstructure, w: usize, h: usize, b: &BseOptions, seed: 
         .chain(micro.phases.iter().map(|p| eta_compound(&p.composition)))
         .collect();
     let sf = s as f64;
+    // Each BSE pixel integrates its area (4 × 4 sub-samples), as a detector does.
+    const SUB: usize = 4;
     let clean: Vec<f32> = (0..bw * bh)
         .into_par_iter()
         .map(|i| {
-            // BSE pixel centre → map coordinates, inverting (x + dx)·s = u.
-            let x = ((i % bw) as f64 + 0.5) / sf - b.shift_px.0;
-            let y = ((i / bw) as f64 + 0.5) / sf - b.shift_px.1;
-            (b.offset + b.gain * etas[micro.phase_at(x, y) as usize]) as f32
+            let mut eta = 0.0;
+            for sy in 0..SUB {
+                for sx in 0..SUB {
+                    // BSE sample point → map coordinates, inverting (x + dx)·s = u.
+                    let u = (i % bw) as f64 + (sx as f64 + 0.5) / SUB as f64;
+                    let v = (i / bw) as f64 + (sy as f64 + 0.5) / SUB as f64;
+                    eta +=
+                        etas[micro.phase_at(u / sf - b.shift_px.0, v / sf - b.shift_px.1) as usize];
+                }
+            }
+            (b.offset + b.gain * eta / (SUB * SUB) as f64) as f32
         })
         .collect();
     let spot = blur(clean, bw, bh, 0.7);

@@ -325,3 +325,55 @@ fn load_inner(path: &Path, limits: &Limits) -> Result<LoadedField> {
         warnings: Vec::new(),
     })
 }
+
+/// Reads a 2-D BSE dataset (any numeric type) from an HDF5 file.
+pub(super) fn load_bse(
+    path: &Path,
+    dataset: &str,
+    limits: &Limits,
+) -> Result<crate::bse::BseImage> {
+    let inner = || -> Result<crate::bse::BseImage> {
+        let h5err = |e: hdf5_pure::Error| {
+            Error::input(
+                path,
+                format!("BSE dataset /{dataset} cannot be read ({e})"),
+                "export the file again",
+            )
+        };
+        let file = File::open(path).map_err(h5err)?;
+        let ds = file.dataset(dataset).map_err(h5err)?;
+        let shape = ds.shape().map_err(h5err)?;
+        if shape.len() != 2 {
+            return Err(bad(
+                path,
+                format!("BSE dataset /{dataset} has shape {shape:?}; a 2-D image was expected"),
+            ));
+        }
+        check_pixels(path, dataset, &shape, limits)?;
+        let saturation = match ds.dtype().map_err(h5err)? {
+            hdf5_pure::DType::U8 => Some(255.0),
+            hdf5_pure::DType::U16 => Some(65535.0),
+            _ => None,
+        };
+        let data = ds.read_f32().map_err(h5err)?;
+        let (h, w) = (shape[0] as usize, shape[1] as usize);
+        if data.len() != w * h {
+            return Err(short(path));
+        }
+        Ok(crate::bse::BseImage {
+            width: w,
+            height: h,
+            data,
+            saturation,
+            source: format!("{}:/{}", path.display(), dataset),
+        })
+    };
+    match catch_unwind(AssertUnwindSafe(inner)) {
+        Ok(r) => r,
+        Err(_) => Err(Error::input(
+            path,
+            "is a damaged HDF5 file (the decoder could not read the BSE dataset)",
+            "export the file again",
+        )),
+    }
+}

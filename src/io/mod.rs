@@ -99,6 +99,30 @@ pub fn load_field(input: &Path, limits: &Limits) -> Result<LoadedField> {
     Ok(field)
 }
 
+/// Loads a BSE image from a file or from a dataset of the HDF5 input.
+pub fn load_bse(source: &BseSource, limits: &Limits) -> Result<crate::bse::BseImage> {
+    match source {
+        BseSource::File(path) => {
+            let r = read_raster(path, limits)?;
+            let saturation = if r.format.starts_with("8-bit") && !r.format.contains("float") {
+                Some(255.0)
+            } else if r.format.starts_with("16-bit") && !r.format.contains("float") {
+                Some(65535.0)
+            } else {
+                None
+            };
+            Ok(crate::bse::BseImage {
+                width: r.width,
+                height: r.height,
+                data: r.data,
+                saturation,
+                source: path.display().to_string(),
+            })
+        }
+        BseSource::Hdf5 { file, dataset } => hdf5::load_bse(file, dataset, limits),
+    }
+}
+
 /// The field name used for output folders: the folder's name or the file's stem.
 pub fn field_name(input: &Path) -> String {
     let p = if input.is_dir() {

@@ -185,6 +185,55 @@ pub fn phase_map(
     c
 }
 
+/// Grey levels scaled to 8 bits between the 0.5th and 99.5th percentiles of the finite
+/// values; NaN (no data) is drawn black.
+pub fn to_grey(v: &[f32]) -> Vec<u8> {
+    let mut finite: Vec<f32> = v.iter().copied().filter(|x| x.is_finite()).collect();
+    if finite.is_empty() {
+        return vec![0; v.len()];
+    }
+    finite.sort_unstable_by(f32::total_cmp);
+    let lo = finite[finite.len() / 200];
+    let hi = finite[(finite.len() - 1) - finite.len() / 200];
+    let span = (hi - lo).max(1e-6);
+    v.iter()
+        .map(|&x| {
+            if x.is_finite() {
+                (255.0 * ((x - lo) / span).clamp(0.0, 1.0)).round() as u8
+            } else {
+                0
+            }
+        })
+        .collect()
+}
+
+/// The grey image with the phase boundaries drawn in the phases' colours: a pixel is on a
+/// boundary when a 4-neighbour has another label.
+pub fn overlay(grey: &[u8], labels: &[u16], w: usize, h: usize) -> Vec<u8> {
+    let mut rgb = Vec::with_capacity(w * h * 3);
+    for y in 0..h {
+        for x in 0..w {
+            let i = y * w + x;
+            let l = labels[i];
+            let edge = [
+                (x > 0).then(|| i - 1),
+                (x + 1 < w).then(|| i + 1),
+                (y > 0).then(|| i - w),
+                (y + 1 < h).then(|| i + w),
+            ]
+            .into_iter()
+            .flatten()
+            .any(|j| labels[j] != l);
+            if edge && l != 0 {
+                rgb.extend_from_slice(&colour(l));
+            } else {
+                rgb.extend_from_slice(&[grey[i]; 3]);
+            }
+        }
+    }
+    rgb
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;

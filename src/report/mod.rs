@@ -62,6 +62,18 @@ pub struct PhaseEntry {
     pub largest_px: usize,
     /// Mean posterior probability of the pixels' label.
     pub mean_confidence: f64,
+    /// Mean BSE grey level on the phase's interior pixels (with a BSE image).
+    #[serde(skip_serializing_if = "Option::is_none", default)]
+    pub bse_mean: Option<f64>,
+    /// Standard deviation of the BSE grey level.
+    #[serde(skip_serializing_if = "Option::is_none", default)]
+    pub bse_sd: Option<f64>,
+    /// Backscatter coefficient predicted from the apparent composition.
+    #[serde(skip_serializing_if = "Option::is_none", default)]
+    pub eta_predicted: Option<f64>,
+    /// Mass-fraction mean atomic number of the apparent composition.
+    #[serde(skip_serializing_if = "Option::is_none", default)]
+    pub mean_z: Option<f64>,
 }
 
 /// How the phase count was reached.
@@ -138,6 +150,9 @@ pub struct Report {
     pub cautions: Vec<String>,
     /// Things found while loading and mapping.
     pub warnings: Vec<String>,
+    /// The BSE cross-check, when a BSE image was used.
+    #[serde(skip_serializing_if = "Option::is_none", default)]
+    pub bse: Option<crate::bse::BseCheck>,
 }
 
 fn hash_file(path: &std::path::Path) -> Result<String> {
@@ -161,6 +176,7 @@ pub fn build(
     result: &MapResult,
     options: &MapOptions,
     mut warnings: Vec<String>,
+    bse: Option<&crate::bse::BseCheck>,
 ) -> Result<Report> {
     use rayon::prelude::*;
     let t = &result.table;
@@ -187,8 +203,25 @@ pub fn build(
             mean_ecd_um: md.pixel_size_um.map(|s| s * p.mean_ecd_px),
             largest_px: p.largest_px,
             mean_confidence: p.mean_confidence,
+            bse_mean: bse
+                .and_then(|b| b.phases.iter().find(|q| q.id == p.id))
+                .map(|q| q.bse_mean)
+                .filter(|v| v.is_finite()),
+            bse_sd: bse
+                .and_then(|b| b.phases.iter().find(|q| q.id == p.id))
+                .map(|q| q.bse_sd)
+                .filter(|v| v.is_finite()),
+            eta_predicted: bse
+                .and_then(|b| b.phases.iter().find(|q| q.id == p.id))
+                .map(|q| q.eta_predicted),
+            mean_z: bse
+                .and_then(|b| b.phases.iter().find(|q| q.id == p.id))
+                .map(|q| q.mean_z),
         })
         .collect();
+    if let Some(b) = bse {
+        warnings.extend(b.warnings.iter().cloned());
+    }
     let inputs = files
         .par_iter()
         .map(|p| {
@@ -273,6 +306,7 @@ pub fn build(
         },
         cautions: CAUTIONS.iter().map(|s| s.to_string()).collect(),
         warnings,
+        bse: bse.cloned(),
     })
 }
 
@@ -364,6 +398,35 @@ pub fn summary(r: &Report) -> String {
             ));
         }
     }
+    if let Some(b) = &r.bse {
+        s.push_str(&format!(
+            "\n  BSE check ({}): shift {:+.2}, {:+.2} map px{}, scale {:.2}",
+            b.source,
+            b.shift_px[0],
+            b.shift_px[1],
+            if b.registration.trusted {
+                ""
+            } else {
+                " (registration not trusted)"
+            },
+            b.scale
+        ));
+        if let Some(rho) = b.spearman {
+            s.push_str(&format!("; rank correlation with predicted η {rho:+.2}"));
+        }
+        if let Some(f) = b.fit {
+            s.push_str(&format!("; linear fit R² {:.2}", f.r2));
+        }
+        s.push('\n');
+        if b.flags.is_empty() {
+            s.push_str(
+                "    BSE brightness order agrees with the predicted backscatter coefficients\n",
+            );
+        }
+        for f in &b.flags {
+            s.push_str(&format!("    ! {}\n", f.message));
+        }
+    }
     if !r.warnings.is_empty() {
         s.push_str("\n  warnings:\n");
         for w in &r.warnings {
@@ -378,7 +441,12 @@ pub fn summary(r: &Report) -> String {
 }
 
 /// Writes every output of `map` into `out` (a prepared temporary folder).
-pub fn write_outputs(dir: &OutputDir, r: &Report, result: &MapResult) -> Result<()> {
+pub fn write_outputs(
+    dir: &OutputDir,
+    r: &Report,
+    result: &MapResult,
+    bse: Option<&crate::bse::BseCheck>,
+) -> Result<()> {
     let seg = &result.segmentation;
     let (w, h) = (seg.width, seg.height);
     if r.phases.len() <= 255 {
@@ -418,6 +486,12 @@ pub fn write_outputs(dir: &OutputDir, r: &Report, result: &MapResult) -> Result<
         canvas.height,
         &canvas.rgb,
     )?;
+    if let Some(b) = bse {
+        let grey = draw::to_grey(&b.registered);
+        crate::io::raster::write_png_u8(&dir.path("bse-registered.png"), w, h, &grey)?;
+        let overlay = draw::overlay(&grey, &seg.labels, w, h);
+        crate::io::raster::write_png_rgb(&dir.path("overlay.png"), w, h, &overlay)?;
+    }
     let json = serde_json::to_string_pretty(r)
         .map_err(|e| Error::internal(format!("report encoding failed: {e}")))?;
     dir.write("report.json", json.as_bytes())?;
