@@ -1,8 +1,11 @@
 //! The BSE cross-check: registration against known shifts, the sign convention end to end,
 //! and the contrast check on cases with a known answer.
 
+mod common;
+
 use std::path::Path;
-use std::process::Command;
+
+use common::modalmap;
 
 use modalmap::bse::{check, phase_correlate, resample, BseImage};
 use modalmap::cluster::select::{ClusterParams, PhaseCount};
@@ -70,6 +73,20 @@ fn rock(shift: (f64, f64), scale: usize, noise: f64) -> (modalmap::synth::SynthF
     (generate(&micro, &opts).unwrap(), etas)
 }
 
+/// The BSE image predicted from the true labels: each phase at its η, pores at 0.
+fn predicted(f: &modalmap::synth::SynthField, etas: &[f64]) -> Vec<f32> {
+    f.truth
+        .iter()
+        .map(|&t| {
+            if t == 0 {
+                0.0
+            } else {
+                etas[t as usize - 1] as f32
+            }
+        })
+        .collect()
+}
+
 /// Known sub-pixel shifts at 1×, 2× and 3× resolution, with detector noise, are recovered
 /// within a quarter of a map pixel (the project's target; the method is Kuglin & Hines
 /// 1975 with the upsampled-DFT refinement of Guizar-Sicairos et al. 2008).
@@ -83,17 +100,7 @@ fn registration_recovers_known_shifts() {
     ] {
         let (f, etas) = rock(shift, scale, 2500.0);
         let (w, h) = (f.stack.width(), f.stack.height());
-        let predicted: Vec<f32> = f
-            .truth
-            .iter()
-            .map(|&t| {
-                if t == 0 {
-                    0.0
-                } else {
-                    etas[t as usize - 1] as f32
-                }
-            })
-            .collect();
+        let predicted = predicted(&f, &etas);
         let (r, _) = f.bse.as_ref().unwrap();
         let img = BseImage {
             width: r.width,
@@ -124,35 +131,13 @@ fn unrelated_image_is_not_trusted() {
     // Pure noise against a phase map: no peak stands out, so no shift is used.
     let (f, etas) = rock((0.0, 0.0), 1, 1.0);
     let (w, h) = (f.stack.width(), f.stack.height());
-    let predicted: Vec<f32> = f
-        .truth
-        .iter()
-        .map(|&t| {
-            if t == 0 {
-                0.0
-            } else {
-                etas[t as usize - 1] as f32
-            }
-        })
-        .collect();
+    let predicted = predicted(&f, &etas);
     let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(1);
     let noise: Vec<f32> = (0..w * h)
         .map(|_| rand::Rng::random_range(&mut rng, 0.0..1.0))
         .collect();
     let reg = phase_correlate(&predicted, &noise, w, h);
     assert!(!reg.trusted, "peak ratio {}", reg.peak_ratio);
-}
-
-fn modalmap(args: &[&str]) -> (i32, String, String) {
-    let out = Command::new(env!("CARGO_BIN_EXE_modalmap"))
-        .args(args)
-        .output()
-        .unwrap();
-    (
-        out.status.code().unwrap_or(-1),
-        String::from_utf8_lossy(&out.stdout).into_owned(),
-        String::from_utf8_lossy(&out.stderr).into_owned(),
-    )
 }
 
 /// End to end on the sample field, whose BSE image was rendered with a drift of
@@ -164,7 +149,11 @@ fn sample_field_shift_and_order() {
     let tmp = tempfile::tempdir().unwrap();
     let out = tmp.path().join("out");
     let sample = Path::new(env!("CARGO_MANIFEST_DIR")).join("sample-maps");
-    let (code, stdout, stderr) = modalmap(&[
+    let common::Run {
+        code,
+        stdout,
+        stderr,
+    } = modalmap(&[
         "map",
         sample.to_str().unwrap(),
         "-o",
@@ -197,7 +186,7 @@ fn sample_field_shift_and_order() {
     assert!(stdout.contains("BSE brightness order agrees"), "{stdout}");
     // --no-bse leaves the check out.
     let out2 = tmp.path().join("out2");
-    let (code, _, _) = modalmap(&[
+    let common::Run { code, .. } = modalmap(&[
         "map",
         sample.to_str().unwrap(),
         "-o",
@@ -217,7 +206,7 @@ fn bse_of_another_aspect_ratio_is_refused() {
     modalmap::io::raster::write_png_u8(&bad, 500, 100, &vec![9; 50_000]).unwrap();
     let sample = Path::new(env!("CARGO_MANIFEST_DIR")).join("sample-maps");
     let out = tmp.path().join("out");
-    let (code, _, stderr) = modalmap(&[
+    let common::Run { code, stderr, .. } = modalmap(&[
         "map",
         sample.to_str().unwrap(),
         "-o",

@@ -1,28 +1,12 @@
 //! The binary on good and bad inputs: exit codes and messages that name the file, the
 //! problem and the fix. Never a panic (exit 101), never a silent success on bad data.
 
+mod common;
+
+use common::{modalmap, Run};
 use std::path::Path;
-use std::process::Command;
 
 use modalmap::io::raster::{write_png_rgb, write_png_u16, write_png_u8, write_tiff, TiffData};
-
-struct Run {
-    code: i32,
-    stdout: String,
-    stderr: String,
-}
-
-fn modalmap(args: &[&str]) -> Run {
-    let out = Command::new(env!("CARGO_BIN_EXE_modalmap"))
-        .args(args)
-        .output()
-        .expect("binary runs");
-    Run {
-        code: out.status.code().unwrap_or(-1),
-        stdout: String::from_utf8_lossy(&out.stdout).into_owned(),
-        stderr: String::from_utf8_lossy(&out.stderr).into_owned(),
-    }
-}
 
 /// Asserts a clean failure: the exit code, and every key phrase in the message.
 fn assert_refused(r: &Run, code: i32, keys: &[&str]) {

@@ -1,26 +1,10 @@
 //! The `map` and `demo` commands end to end: outputs, their consistency, atomic writes,
 //! options and configuration, and determinism whatever the thread count.
 
+mod common;
+
+use common::modalmap;
 use std::path::{Path, PathBuf};
-use std::process::Command;
-
-struct Run {
-    code: i32,
-    stdout: String,
-    stderr: String,
-}
-
-fn modalmap(args: &[&str]) -> Run {
-    let out = Command::new(env!("CARGO_BIN_EXE_modalmap"))
-        .args(args)
-        .output()
-        .expect("binary runs");
-    Run {
-        code: out.status.code().unwrap_or(-1),
-        stdout: String::from_utf8_lossy(&out.stdout).into_owned(),
-        stderr: String::from_utf8_lossy(&out.stderr).into_owned(),
-    }
-}
 
 fn sample() -> String {
     Path::new(env!("CARGO_MANIFEST_DIR"))

@@ -67,3 +67,26 @@ pub fn score(pred: &[u16], truth: &[u16]) -> Score {
         mapping,
     }
 }
+
+/// What a run of the binary produced.
+pub struct Run {
+    /// Exit code (−1 if killed by a signal).
+    pub code: i32,
+    /// Standard output.
+    pub stdout: String,
+    /// Standard error.
+    pub stderr: String,
+}
+
+/// Runs the built `modalmap` binary with `args`.
+pub fn modalmap(args: &[&str]) -> Run {
+    let out = std::process::Command::new(env!("CARGO_BIN_EXE_modalmap"))
+        .args(args)
+        .output()
+        .expect("binary runs");
+    Run {
+        code: out.status.code().unwrap_or(-1),
+        stdout: String::from_utf8_lossy(&out.stdout).into_owned(),
+        stderr: String::from_utf8_lossy(&out.stderr).into_owned(),
+    }
+}
