@@ -71,6 +71,8 @@ pub struct PhaseBse {
     pub eta_predicted: f64,
     /// Mass-fraction-weighted mean atomic number of the apparent composition.
     pub mean_z: f64,
+    /// BSE mean minus the linear fit at this phase's η (grey levels; absent when no fit).
+    pub fit_residual: Option<f64>,
 }
 
 /// A straight line BSE = intercept + slope · η.
@@ -484,6 +486,7 @@ pub fn check(
                 pixels_used: n,
                 eta_predicted: eta,
                 mean_z: z,
+                fit_residual: None,
             }
         })
         .collect();
@@ -522,6 +525,13 @@ pub fn check(
             },
         }
     });
+    let mut phases = phases;
+    if let Some(f) = fit {
+        for p in phases.iter_mut().filter(|p| p.pixels_used >= 10) {
+            p.fit_residual = Some(p.bse_mean - f.intercept - f.slope * p.eta_predicted);
+        }
+    }
+    let usable: Vec<&PhaseBse> = phases.iter().filter(|p| p.pixels_used >= 10).collect();
     let name = |id: u16| table.phases[id as usize - 1].name.clone();
     let mut flags = Vec::new();
     for a in &usable {

@@ -173,3 +173,17 @@ fn sample_maps_are_what_the_generator_makes() {
     }
     assert_eq!(loaded.stack.metadata(), made.stack.metadata());
 }
+
+#[test]
+fn h5py_bse_dataset_reads_back_exactly() {
+    let field = load_field(&fixture("group_layout.h5"), &Limits::default()).unwrap();
+    let bse = modalmap::io::load_bse(field.bse.as_ref().unwrap(), &Limits::default()).unwrap();
+    assert_eq!((bse.width, bse.height), (24, 16));
+    let want: Vec<f32> = grid(fe).iter().map(|v| v * 10.0).collect();
+    assert_eq!(bse.data, want);
+    assert_eq!(
+        bse.saturation,
+        Some(65535.0),
+        "uint16 dataset: the top level is saturation"
+    );
+}
