@@ -60,6 +60,7 @@ pub fn prepare_output(target: &Path, force: bool) -> Result<OutputDir> {
         .file_name()
         .map(|n| n.to_string_lossy().into_owned())
         .unwrap_or_else(|| "out".into());
+    remove_stale(&parent, &name);
     let tmp = parent.join(format!(".{name}.modalmap-tmp-{}", std::process::id()));
     let _ = std::fs::remove_dir_all(&tmp);
     std::fs::create_dir(&tmp).map_err(|e| {
@@ -75,6 +76,27 @@ pub fn prepare_output(target: &Path, force: bool) -> Result<OutputDir> {
         force,
         committed: false,
     })
+}
+
+/// Removes temporary folders that a killed run left beside OUT: those of our naming
+/// pattern whose process no longer exists (checked through /proc, so only on Linux;
+/// elsewhere they are left alone).
+fn remove_stale(parent: &Path, name: &str) {
+    let prefix = format!(".{name}.modalmap-tmp-");
+    let Ok(entries) = std::fs::read_dir(parent) else {
+        return;
+    };
+    for e in entries.flatten() {
+        let file = e.file_name().to_string_lossy().into_owned();
+        let Some(rest) = file.strip_prefix(&prefix) else {
+            continue;
+        };
+        let pid = rest.trim_end_matches(".old");
+        let alive = Path::new("/proc").join(pid).exists();
+        if pid.parse::<u32>().is_ok() && Path::new("/proc/self").exists() && !alive {
+            let _ = std::fs::remove_dir_all(e.path());
+        }
+    }
 }
 
 impl OutputDir {
