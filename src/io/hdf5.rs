@@ -48,9 +48,21 @@ fn bad(path: &Path, problem: String) -> Error {
 }
 
 pub(super) fn load(path: &Path, limits: &Limits) -> Result<LoadedField> {
+    let open = || File::open(path);
+    guarded(path, || load_inner(path, open, limits))
+}
+
+/// Loads an HDF5 field from bytes in memory; `path` names it in messages. (The fuzz
+/// targets call this.)
+pub fn load_bytes(path: &Path, bytes: Vec<u8>, limits: &Limits) -> Result<LoadedField> {
+    let open = move || File::from_bytes(bytes);
+    guarded(path, || load_inner(path, open, limits))
+}
+
+fn guarded(path: &Path, f: impl FnOnce() -> Result<LoadedField>) -> Result<LoadedField> {
     // The decoder is defensive, but a damaged file must never take the process down: a
     // panic inside it becomes an input error naming the file.
-    match catch_unwind(AssertUnwindSafe(|| load_inner(path, limits))) {
+    match catch_unwind(AssertUnwindSafe(f)) {
         Ok(r) => r,
         Err(_) => Err(Error::input(
             path,
@@ -128,7 +140,11 @@ fn short(path: &Path) -> Error {
     )
 }
 
-fn load_inner(path: &Path, limits: &Limits) -> Result<LoadedField> {
+fn load_inner(
+    path: &Path,
+    open: impl FnOnce() -> std::result::Result<File, hdf5_pure::Error>,
+    limits: &Limits,
+) -> Result<LoadedField> {
     let h5err = |e: hdf5_pure::Error| {
         Error::input(
             path,
@@ -136,7 +152,7 @@ fn load_inner(path: &Path, limits: &Limits) -> Result<LoadedField> {
             "the file is damaged, truncated or not HDF5; export it again",
         )
     };
-    let file = File::open(path).map_err(h5err)?;
+    let file = open().map_err(h5err)?;
     let root = file.root();
     let mut metadata = FieldMetadata::default();
     metadata_from(&root.attrs().map_err(h5err)?, &mut metadata);

@@ -5,7 +5,7 @@
 //! Only this module and the writers touch the disk.
 
 mod folder;
-mod hdf5;
+pub mod hdf5;
 pub mod raster;
 mod sidecar;
 

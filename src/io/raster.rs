@@ -133,6 +133,20 @@ pub fn read_raster(path: &Path, limits: &Limits) -> Result<Raster> {
     }
 }
 
+/// Decodes image bytes already in memory; `path` names them in messages. (The fuzz
+/// targets call this.)
+pub fn decode_raster(
+    path: &Path,
+    format: RasterFormat,
+    bytes: &[u8],
+    limits: &Limits,
+) -> Result<Raster> {
+    match format {
+        RasterFormat::Png => decode_png(path, bytes, limits),
+        RasterFormat::Tiff => decode_tiff(path, bytes, limits),
+    }
+}
+
 fn corrupt(path: &Path, what: &str, err: impl std::fmt::Display) -> Error {
     Error::input(
         path,

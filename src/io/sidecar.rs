@@ -44,7 +44,12 @@ impl FieldSidecar {
                 "the field metadata file must be UTF-8 TOML",
             )
         })?;
-        let s: FieldSidecar = toml::from_str(&text).map_err(|e| {
+        Self::parse(path, &text)
+    }
+
+    /// Parses and checks sidecar text; `path` names it in messages.
+    pub fn parse(path: &Path, text: &str) -> Result<FieldSidecar> {
+        let s: FieldSidecar = toml::from_str(text).map_err(|e| {
             Error::input(
                 path,
                 format!("is not valid field metadata: {}", e.message()),
