@@ -393,18 +393,33 @@ pub fn spearman(a: &[f64], b: &[f64]) -> f64 {
 /// source).
 pub const ETA_RESOLUTION: f64 = 0.005;
 
-/// Runs the check. `labels` are the phase ids on the `w × h` map grid; `map_size` is the
-/// original map size and `bin` the binning, so the scale refers to the original maps.
+/// How the BSE image relates to the maps.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Geometry {
+    /// Size of the original maps (before binning).
+    pub map_size: (usize, usize),
+    /// Binning applied to the maps.
+    pub bin: usize,
+    /// Map and BSE pixel sizes in µm, when both are known: then the scale is their ratio and
+    /// the BSE image may cover a larger field than the maps (same top-left corner, before
+    /// the shift). Otherwise both cover the same field and the scale is the size ratio.
+    pub pixel_sizes_um: Option<(f64, f64)>,
+}
+
+/// Runs the check. `labels` are the phase ids on the `w × h` map grid.
 pub fn check(
     bse: &BseImage,
     labels: &[u16],
     w: usize,
     h: usize,
     table: &PhaseTable,
-    map_size: (usize, usize),
-    bin: usize,
+    geometry: Geometry,
 ) -> Result<BseCheck> {
-    let scale = scale_for(&bse.source, map_size, (bse.width, bse.height))? * bin as f64;
+    let per_map_px = match geometry.pixel_sizes_um {
+        Some((map_um, bse_um)) => map_um / bse_um,
+        None => scale_for(&bse.source, geometry.map_size, (bse.width, bse.height))?,
+    };
+    let scale = per_map_px * geometry.bin as f64;
     let mut warnings = Vec::new();
     let saturated = bse
         .saturation

@@ -151,6 +151,10 @@ pub struct MapArgs {
     /// the maps, or the HDF5 input's `bse` dataset).
     #[arg(long, value_name = "IMAGE")]
     pub bse: Option<PathBuf>,
+    /// Pixel size of the BSE image in µm: with the maps' pixel size, sets the scale (and
+    /// allows a BSE image that covers a larger field than the maps).
+    #[arg(long, value_name = "UM")]
+    pub bse_pixel_size: Option<f64>,
     /// Skip the BSE check even when a BSE image is found with the maps.
     #[arg(long, conflicts_with = "bse")]
     pub no_bse: bool,
@@ -187,6 +191,7 @@ struct ConfigFile {
     min_feature: Option<usize>,
     min_phase: Option<f64>,
     threads: Option<usize>,
+    bse_pixel_size: Option<f64>,
 }
 
 fn read_config(path: &std::path::Path) -> Result<ConfigFile> {
@@ -245,7 +250,7 @@ fn parse_value_enum<T: clap::ValueEnum>(
 
 impl MapArgs {
     /// Merges the flags with the configuration file (flags win) into checked options.
-    pub fn resolve(&self) -> Result<(MapOptions, FieldMetadata, Option<usize>)> {
+    pub fn resolve(&self) -> Result<(MapOptions, FieldMetadata, Option<usize>, Option<f64>)> {
         let cfg = match &self.config {
             Some(p) => Some((p.clone(), read_config(p)?)),
             None => None,
@@ -314,7 +319,12 @@ impl MapArgs {
                 }
             }
         }
-        Ok((opts, md, self.threads.or(c.threads)))
+        Ok((
+            opts,
+            md,
+            self.threads.or(c.threads),
+            self.bse_pixel_size.or(c.bse_pixel_size),
+        ))
     }
 }
 
@@ -324,7 +334,7 @@ pub fn map_field(
     out: &std::path::Path,
     args: &MapArgs,
 ) -> Result<crate::report::Report> {
-    let (opts, md, _) = args.resolve()?;
+    let (opts, md, _, bse_pixel_size) = args.resolve()?;
     let valid = opts.check()?;
     let dir = crate::report::prepare_output(out, args.force)?;
     let t = crate::profile::stage("load");
@@ -337,6 +347,21 @@ pub fn map_field(
     drop(t);
     field.stack.override_metadata(&md);
     let map_size = (field.stack.width(), field.stack.height());
+    let map_pixel_um = field.stack.metadata().pixel_size_um;
+    if let Some(v) = bse_pixel_size {
+        if !(v.is_finite() && v > 0.0) {
+            return Err(Error::options(
+                format!("--bse-pixel-size {v} is not a positive number"),
+                "give the BSE pixel size in µm",
+            ));
+        }
+        if map_pixel_um.is_none() {
+            return Err(Error::options(
+                "--bse-pixel-size needs the maps' pixel size too",
+                "set pixel_size_um in field.toml or give --pixel-size",
+            ));
+        }
+    }
     let bse_source = if args.no_bse {
         None
     } else {
@@ -382,8 +407,11 @@ pub fn map_field(
                 seg.width,
                 seg.height,
                 &result.table,
-                map_size,
-                valid.options().prepare.bin,
+                crate::bse::Geometry {
+                    map_size,
+                    bin: valid.options().prepare.bin,
+                    pixel_sizes_um: map_pixel_um.zip(bse_pixel_size),
+                },
             )?)
         }
         None => None,

@@ -7,7 +7,7 @@ use std::path::Path;
 
 use common::modalmap;
 
-use modalmap::bse::{check, phase_correlate, resample, BseImage};
+use modalmap::bse::{check, phase_correlate, resample, BseImage, Geometry};
 use modalmap::cluster::select::{ClusterParams, PhaseCount};
 use modalmap::physics::eta_compound;
 use modalmap::pipeline::{map_stack, MapOptions};
@@ -273,7 +273,19 @@ fn unmapped_oxygen_is_flagged() {
         saturation: Some(65535.0),
         source: "synthetic".into(),
     };
-    let c = check(&bse, &r.segmentation.labels, w, h, &r.table, (w, h), 1).unwrap();
+    let c = check(
+        &bse,
+        &r.segmentation.labels,
+        w,
+        h,
+        &r.table,
+        Geometry {
+            map_size: (w, h),
+            bin: 1,
+            pixel_sizes_um: None,
+        },
+    )
+    .unwrap();
     assert_eq!(c.flags.len(), 1, "{:?}", c.flags);
     assert!(
         c.flags[0].message.contains("not mapped"),
@@ -322,7 +334,19 @@ fn saturated_pixels_are_excluded_and_reported() {
         saturation: Some(65535.0),
         source: "synthetic".into(),
     };
-    let c = check(&bse, &r.segmentation.labels, w, h, &r.table, (w, h), 1).unwrap();
+    let c = check(
+        &bse,
+        &r.segmentation.labels,
+        w,
+        h,
+        &r.table,
+        Geometry {
+            map_size: (w, h),
+            bin: 1,
+            pixel_sizes_um: None,
+        },
+    )
+    .unwrap();
     assert!(c.saturated_fraction > 0.04, "{}", c.saturated_fraction);
     assert!(
         c.warnings.iter().any(|w| w.contains("saturated")),
@@ -345,4 +369,59 @@ fn saturated_pixels_are_excluded_and_reported() {
             assert!(p.bse_mean < 65535.0 * 0.99, "{p:?}");
         }
     }
+}
+
+/// With both pixel sizes known the scale is their ratio, and a BSE image that covers more
+/// than the maps (here 32 extra BSE columns on the right) is still registered correctly;
+/// without them the same image is refused for its aspect ratio.
+#[test]
+fn pixel_sizes_set_the_scale_for_a_larger_bse_image() {
+    let tmp = tempfile::tempdir().unwrap();
+    let sample = Path::new(env!("CARGO_MANIFEST_DIR")).join("sample-maps");
+    let bse = modalmap::io::read_raster(&sample.join("BSE.png"), &Default::default()).unwrap();
+    let (w, h) = (bse.width + 32, bse.height);
+    let mean = bse.data.iter().sum::<f32>() / bse.data.len() as f32;
+    let wide: Vec<u16> = (0..w * h).map(|i| if i % w < bse.width { bse.data[(i / w) * bse.width + i % w] } else { mean } as u16).collect();
+    let path = tmp.path().join("wide-bse.png");
+    modalmap::io::raster::write_png_u16(&path, w, h, &wide).unwrap();
+    let out = tmp.path().join("out");
+    let r = modalmap(&[
+        "map",
+        sample.to_str().unwrap(),
+        "-o",
+        out.to_str().unwrap(),
+        "--phases",
+        "5",
+        "--bse",
+        path.to_str().unwrap(),
+        "--bse-pixel-size",
+        "0.1",
+    ]);
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    let rep: serde_json::Value =
+        serde_json::from_str(&std::fs::read_to_string(out.join("report.json")).unwrap()).unwrap();
+    let (dx, dy) = (
+        rep["bse"]["shift_px"][0].as_f64().unwrap(),
+        rep["bse"]["shift_px"][1].as_f64().unwrap(),
+    );
+    assert_eq!(
+        rep["bse"]["scale"], 2.0,
+        "0.2 µm map pixels / 0.1 µm BSE pixels"
+    );
+    assert!(
+        (dx - 2.6).abs() <= 0.25 && (dy + 1.4).abs() <= 0.25,
+        "shift ({dx}, {dy})"
+    );
+    let r = modalmap(&[
+        "map",
+        sample.to_str().unwrap(),
+        "-o",
+        tmp.path().join("o2").to_str().unwrap(),
+        "--phases",
+        "5",
+        "--bse",
+        path.to_str().unwrap(),
+    ]);
+    assert_eq!(r.code, 3, "{}", r.stderr);
+    assert!(r.stderr.contains("aspect ratios differ"), "{}", r.stderr);
 }

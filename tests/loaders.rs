@@ -192,8 +192,14 @@ fn h5py_bse_dataset_reads_back_exactly() {
 fn hdf5_from_bytes_equals_from_file() {
     let p = fixture("stack_layout.h5");
     let a = load_field(&p, &Limits::default()).unwrap();
-    let b = modalmap::io::hdf5::load_bytes(&p, std::fs::read(&p).unwrap(), &Limits::default()).unwrap();
+    let b =
+        modalmap::io::hdf5::load_bytes(&p, std::fs::read(&p).unwrap(), &Limits::default()).unwrap();
     assert_eq!(a.stack, b.stack);
-    let e = modalmap::io::hdf5::load_bytes(&p, b"\x89HDF\r\n\x1a\n garbage".to_vec(), &Limits::default()).unwrap_err();
+    let e = modalmap::io::hdf5::load_bytes(
+        &p,
+        b"\x89HDF\r\n\x1a\n garbage".to_vec(),
+        &Limits::default(),
+    )
+    .unwrap_err();
     assert!(e.problem.contains("not a readable HDF5"), "{e}");
 }
