@@ -203,3 +203,17 @@ fn hdf5_from_bytes_equals_from_file() {
     .unwrap_err();
     assert!(e.problem.contains("not a readable HDF5"), "{e}");
 }
+
+/// Found by the HDF5 fuzz target (fuzz/fuzz_targets/hdf5.rs): a dataset whose float type
+/// claims 16 449 532 bytes per value made the reader allocate 3 GB. It must be refused
+/// before any data is read, from a file and from bytes alike.
+#[test]
+fn regression_fuzz_oversized_element_type() {
+    let p = fixture("fuzz-oversized-chunks.h5");
+    let limits = Limits {
+        max_pixels: 1 << 22,
+    };
+    let e = modalmap::io::hdf5::load_bytes(&p, std::fs::read(&p).unwrap(), &limits).unwrap_err();
+    assert!(e.problem.contains("16449532 bytes"), "{e}");
+    assert!(load_field(&p, &limits).is_err());
+}

@@ -132,6 +132,46 @@ fn check_pixels(path: &Path, name: &str, shape: &[u64], limits: &Limits) -> Resu
     Ok(())
 }
 
+/// The dataset's shape, checked against the limits, and its chunk shape checked against
+/// the dataset: a damaged or hostile file can declare chunks far larger than the data,
+/// which a reader would allocate in full.
+fn checked_shape(
+    path: &Path,
+    name: &str,
+    ds: &hdf5_pure::Dataset,
+    limits: &Limits,
+) -> Result<Vec<u64>> {
+    let h5err = |e: hdf5_pure::Error| {
+        Error::input(
+            path,
+            format!("dataset {name} cannot be read ({e})"),
+            "the file is damaged; export it again",
+        )
+    };
+    let shape = ds.shape().map_err(h5err)?;
+    check_pixels(path, name, &shape, limits)?;
+    let size = ds.element_size().map_err(h5err)?;
+    if size == 0 || size > 8 {
+        return Err(Error::input(
+            path,
+            format!("dataset {name} declares values of {size} bytes; maps hold integers or floats of 1 to 8 bytes"),
+            "the file is damaged, or the dataset is not a map; export it again",
+        ));
+    }
+    if let Some(chunk) = ds.chunk_shape().map_err(h5err)? {
+        let elements = shape.iter().fold(1u64, |a, &b| a.saturating_mul(b));
+        let chunk_elements = chunk.iter().fold(1u64, |a, &b| a.saturating_mul(b));
+        if chunk.len() != shape.len() || chunk_elements > elements.max(1 << 16) {
+            return Err(Error::input(
+                path,
+                format!("dataset {name} of shape {shape:?} declares chunks of {chunk:?}, larger than the data itself"),
+                "the file is damaged or not written by an HDF5 library; export it again",
+            ));
+        }
+    }
+    Ok(shape)
+}
+
 fn short(path: &Path) -> Error {
     Error::input(
         path,
@@ -196,14 +236,13 @@ fn load_inner(
     if root_datasets.iter().any(|d| d == "maps") {
         // Layout 2: one 3-D dataset with an `elements` attribute.
         let ds = file.dataset("maps").map_err(h5err)?;
-        let shape = ds.shape().map_err(h5err)?;
+        let shape = checked_shape(path, "/maps", &ds, limits)?;
         if shape.len() != 3 {
             return Err(bad(
                 path,
                 format!("dataset /maps has {} dimensions; a 3-D stack (element × height × width) was expected", shape.len()),
             ));
         }
-        check_pixels(path, "/maps", &shape, limits)?;
         let attrs = ds.attrs().map_err(h5err)?;
         metadata_from(&attrs, &mut metadata);
         let names: Vec<String> = attrs
@@ -280,14 +319,13 @@ fn load_inner(
                 continue;
             };
             let ds = group.dataset(&name).map_err(h5err)?;
-            let shape = ds.shape().map_err(h5err)?;
+            let shape = checked_shape(path, &full, &ds, limits)?;
             if shape.len() != 2 {
                 return Err(bad(
                     path,
                     format!("dataset /{full} has shape {shape:?}; an element map must be 2-D (height × width)"),
                 ));
             }
-            check_pixels(path, &full, &shape, limits)?;
             let line = ds
                 .attrs()
                 .map_err(h5err)?
@@ -358,14 +396,13 @@ pub(super) fn load_bse(
         };
         let file = File::open(path).map_err(h5err)?;
         let ds = file.dataset(dataset).map_err(h5err)?;
-        let shape = ds.shape().map_err(h5err)?;
+        let shape = checked_shape(path, dataset, &ds, limits)?;
         if shape.len() != 2 {
             return Err(bad(
                 path,
                 format!("BSE dataset /{dataset} has shape {shape:?}; a 2-D image was expected"),
             ));
         }
-        check_pixels(path, dataset, &shape, limits)?;
         let saturation = match ds.dtype().map_err(h5err)? {
             hdf5_pure::DType::U8 => Some(255.0),
             hdf5_pure::DType::U16 => Some(65535.0),
