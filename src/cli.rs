@@ -494,15 +494,22 @@ pub fn run(cli: Cli) -> Result<u8> {
             Ok(0)
         }
         Command::Demo { output, force } => {
+            // The sample field is generated into a private temporary folder (the same maps
+            // as sample-maps/), mapped into OUT, then removed.
             let field = crate::synth::sample_field()?;
-            let input = output.with_extension("input");
-            let _ = std::fs::remove_dir_all(&input);
+            let input = std::env::temp_dir()
+                .join(format!("modalmap-demo-{}", std::process::id()))
+                .join("sample-maps");
             crate::synth::write_folder(&field, &input)?;
             let args = MapArgs {
                 force,
                 ..MapArgs::default()
             };
-            let report = map_field(&input, &output, &args)?;
+            let result = map_field(&input, &output, &args);
+            if let Some(parent) = input.parent() {
+                let _ = std::fs::remove_dir_all(parent);
+            }
+            let report = result?;
             print!("{}", crate::report::summary(&report));
             let labels = crate::io::read_raster(&output.join("labels.png"), &Limits::default())?;
             let pred: Vec<u16> = labels.data.iter().map(|&v| v as u16).collect();
@@ -512,8 +519,7 @@ pub fn run(cli: Cli) -> Result<u8> {
                 100.0 * agree
             );
             println!(
-                "  sample maps in {}, outputs in {}",
-                input.display(),
+                "  outputs in {} (the maps are those of sample-maps/)",
                 output.display()
             );
             Ok(0)

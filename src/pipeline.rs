@@ -154,13 +154,6 @@ pub fn map_stack_with_progress(
         ends.push(vec![0.0; f.dims]);
         let mut drop: Vec<(usize, Simplification)> = Vec::new();
         for (c, &(px, interior)) in inside.iter().enumerate() {
-            if std::env::var_os("MODALMAP_DEBUG").is_some() {
-                eprintln!(
-                    "c{c} {} px {px} interior {interior:.3} mix {:?}",
-                    simplify::fmt_counts(&ends[c]),
-                    simplify::nearest_mixture(c, &ends).map(|m| m.0)
-                );
-            }
             if px < min_px {
                 drop.push((c, Simplification {
                     action: format!("dissolved a component of {px} pixels, below the size floor of {min_px}"),
