@@ -217,3 +217,16 @@ fn regression_fuzz_oversized_element_type() {
     assert!(e.problem.contains("16449532 bytes"), "{e}");
     assert!(load_field(&p, &limits).is_err());
 }
+
+/// Found by the HDF5 fuzz target: a chunk record pointing past the end of the file made the
+/// reader size a 4 GB buffer. It must be refused before any data is read.
+#[test]
+fn regression_fuzz_chunk_beyond_the_file() {
+    let p = fixture("fuzz-chunk-beyond-file.h5");
+    let limits = Limits {
+        max_pixels: 1 << 22,
+    };
+    let e = modalmap::io::hdf5::load_bytes(&p, std::fs::read(&p).unwrap(), &limits).unwrap_err();
+    assert!(e.problem.contains("beyond the end of the file"), "{e}");
+    assert!(load_field(&p, &limits).is_err());
+}

@@ -139,6 +139,7 @@ fn checked_shape(
     path: &Path,
     name: &str,
     ds: &hdf5_pure::Dataset,
+    file_len: u64,
     limits: &Limits,
 ) -> Result<Vec<u64>> {
     let h5err = |e: hdf5_pure::Error| {
@@ -167,6 +168,17 @@ fn checked_shape(
                 format!("dataset {name} of shape {shape:?} declares chunks of {chunk:?}, larger than the data itself"),
                 "the file is damaged or not written by an HDF5 library; export it again",
             ));
+        }
+        // Every stored chunk must lie inside the file, or a reader would size a buffer
+        // for data that is not there.
+        for c in ds.chunks().map_err(h5err)? {
+            if c.address.saturating_add(c.storage_size) > file_len {
+                return Err(Error::input(
+                    path,
+                    format!("dataset {name} has a chunk of {} bytes at offset {} beyond the end of the file ({file_len} bytes)", c.storage_size, c.address),
+                    "the file is truncated or damaged; export it again",
+                ));
+            }
         }
     }
     Ok(shape)
@@ -236,7 +248,7 @@ fn load_inner(
     if root_datasets.iter().any(|d| d == "maps") {
         // Layout 2: one 3-D dataset with an `elements` attribute.
         let ds = file.dataset("maps").map_err(h5err)?;
-        let shape = checked_shape(path, "/maps", &ds, limits)?;
+        let shape = checked_shape(path, "/maps", &ds, file.file_size(), limits)?;
         if shape.len() != 3 {
             return Err(bad(
                 path,
@@ -319,7 +331,7 @@ fn load_inner(
                 continue;
             };
             let ds = group.dataset(&name).map_err(h5err)?;
-            let shape = checked_shape(path, &full, &ds, limits)?;
+            let shape = checked_shape(path, &full, &ds, file.file_size(), limits)?;
             if shape.len() != 2 {
                 return Err(bad(
                     path,
@@ -396,7 +408,7 @@ pub(super) fn load_bse(
         };
         let file = File::open(path).map_err(h5err)?;
         let ds = file.dataset(dataset).map_err(h5err)?;
-        let shape = checked_shape(path, dataset, &ds, limits)?;
+        let shape = checked_shape(path, dataset, &ds, file.file_size(), limits)?;
         if shape.len() != 2 {
             return Err(bad(
                 path,
