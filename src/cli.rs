@@ -371,9 +371,10 @@ pub fn map_field(
             .or(field.bse.clone())
     };
     let bse_image = bse_source
+        .as_ref()
         .map(|s| {
             crate::io::load_bse(
-                &s,
+                s,
                 &Limits {
                     max_pixels: args.limits.max_pixels.saturating_mul(16),
                 },
@@ -383,10 +384,16 @@ pub fn map_field(
     let crate::io::LoadedField {
         stack,
         name,
-        files,
+        mut files,
         warnings,
         ..
     } = field;
+    // The BSE image is an input too: its hash goes into the provenance.
+    if let Some(crate::io::BseSource::File(p)) = bse_source {
+        if !files.contains(&p) {
+            files.push(p);
+        }
+    }
     let spinner = spinner(args.quiet);
     let result = crate::pipeline::map_stack_with_progress(stack, &valid, &mut |stage| {
         if let Some(s) = &spinner {

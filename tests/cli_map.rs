@@ -82,7 +82,7 @@ fn map_writes_consistent_outputs() {
     assert!(csv.starts_with("id,name,pixels,area_fraction"));
     // Provenance: the hash of every map file, as SHA-256 (FIPS 180-4) of its bytes.
     let inputs = rep["provenance"]["inputs"].as_array().unwrap();
-    assert_eq!(inputs.len(), 3);
+    assert_eq!(inputs.len(), 4, "three maps and the BSE image");
     for i in inputs {
         use sha2::Digest;
         let bytes = std::fs::read(i["path"].as_str().unwrap()).unwrap();
