@@ -151,21 +151,25 @@ pub fn voronoi_seeds(
     (w, h): (f64, f64),
     weights: &[f64],
 ) -> Vec<(f64, f64, u16)> {
-    let total: f64 = weights.iter().sum();
     (0..count)
         .map(|_| {
-            let mut r = rng.random_range(0.0..total);
-            let mut label = weights.len() as u16;
-            for (i, &wt) in weights.iter().enumerate() {
-                if r < wt {
-                    label = i as u16 + 1;
-                    break;
-                }
-                r -= wt;
-            }
+            let label = draw_label(rng, weights);
             (rng.random_range(0.0..w), rng.random_range(0.0..h), label)
         })
         .collect()
+}
+
+/// A label 1..=weights.len() drawn with probability ∝ its weight.
+fn draw_label(rng: &mut ChaCha8Rng, weights: &[f64]) -> u16 {
+    let total: f64 = weights.iter().sum();
+    let mut r = rng.random_range(0.0..total);
+    for (i, &wt) in weights.iter().enumerate() {
+        if r < wt {
+            return i as u16 + 1;
+        }
+        r -= wt;
+    }
+    weights.len() as u16
 }
 
 /// The label of the grain containing (x, y).
@@ -570,19 +574,10 @@ impl JitteredSites {
             (w / cell).ceil() as usize + 1,
             (h / cell).ceil() as usize + 1,
         );
-        let total: f64 = weights.iter().sum();
         let sites = (0..cols * rows)
             .map(|i| {
                 let (cx, cy) = ((i % cols) as f64 * cell, (i / cols) as f64 * cell);
-                let mut r = rng.random_range(0.0..total);
-                let mut label = weights.len() as u16;
-                for (j, &wt) in weights.iter().enumerate() {
-                    if r < wt {
-                        label = j as u16 + 1;
-                        break;
-                    }
-                    r -= wt;
-                }
+                let label = draw_label(rng, weights);
                 (
                     cx + rng.random_range(0.0..cell),
                     cy + rng.random_range(0.0..cell),

@@ -219,23 +219,30 @@ fn fit_k(rows: &[f32], d: usize, k: usize, p: &ClusterParams) -> Result<Clusters
 /// separates two small ones; EM on the true likelihood does not.
 fn fit_poisson(rows: &[f32], d: usize, k: usize, p: &ClusterParams) -> PoissonMixture {
     let root: Vec<f32> = rows.iter().map(|&x| x.max(0.0).sqrt()).collect();
-    let mut best: Option<PoissonMixture> = None;
-    for run in 0..p.n_init {
+    let starts = (0..p.n_init).map(|run| {
         let mut rng = ChaCha8Rng::seed_from_u64(
             p.seed
                 .wrapping_add((run as u64).wrapping_mul(0x2545_F491_4F6C_DD1D)),
         );
         let seeds = kmeans::kmeans_plus_plus(&root, d, k, &mut rng);
-        let start = start_from_centres(rows, &root, d, &seeds);
-        let m = poisson::fit(rows, d, start, &SHORT_EM);
-        if best
-            .as_ref()
-            .is_none_or(|b| m.mean_log_likelihood > b.mean_log_likelihood)
-        {
-            best = Some(m);
-        }
-    }
-    poisson::fit(rows, d, best.expect("n_init ≥ 1"), &EM)
+        start_from_centres(rows, &root, d, &seeds)
+    });
+    best_of(rows, d, starts)
+}
+
+/// Ranks candidate starting mixtures by a short EM; only the winner runs to convergence.
+fn best_of(rows: &[f32], d: usize, starts: impl Iterator<Item = PoissonMixture>) -> PoissonMixture {
+    let best = starts
+        .map(|start| poisson::fit(rows, d, start, &SHORT_EM))
+        .reduce(|a, b| {
+            if b.mean_log_likelihood > a.mean_log_likelihood {
+                b
+            } else {
+                a
+            }
+        })
+        .expect("n_init ≥ 1");
+    poisson::fit(rows, d, best, &EM)
 }
 
 const EM: PoissonParams = PoissonParams {
@@ -273,27 +280,22 @@ fn grow_poisson(
         .collect();
     let total: f64 = d2.iter().sum();
     let mut rng = ChaCha8Rng::seed_from_u64(p.seed ^ (prev.k as u64).wrapping_mul(0x9E37_79B9));
-    let mut best: Option<PoissonMixture> = None;
-    for _ in 0..p.n_init {
+    let starts = (0..p.n_init).map(|_| {
         let mut target = rng.random_range(0.0..total.max(f64::MIN_POSITIVE));
-        let pick = d2.iter().position(|&v| {
-            target -= v;
-            target < 0.0
-        });
-        let pick = pick.unwrap_or(d2.len() - 1);
+        let pick = d2
+            .iter()
+            .position(|&v| {
+                target -= v;
+                target < 0.0
+            })
+            .unwrap_or(d2.len() - 1);
         let mut centres = old.clone();
         centres.extend_from_slice(&root[pick * d..(pick + 1) * d]);
-        let start = start_from_centres(rows, &root, d, &centres);
-        // A short EM ranks the candidate seeds; only the winner runs to convergence.
-        let m = poisson::fit(rows, d, start, &SHORT_EM);
-        if best
-            .as_ref()
-            .is_none_or(|b| m.mean_log_likelihood > b.mean_log_likelihood)
-        {
-            best = Some(m);
-        }
-    }
-    poisson::fit(rows, d, best.expect("n_init ≥ 1"), &EM)
+        start_from_centres(rows, &root, d, &centres)
+    });
+    // Collected first: the draws must not depend on how the candidates are evaluated.
+    let starts: Vec<PoissonMixture> = starts.collect();
+    best_of(rows, d, starts.into_iter())
 }
 
 const SHORT_EM: PoissonParams = PoissonParams {
