@@ -356,35 +356,46 @@ pub fn prepare(stack: MapStack, transform: &FeatureTransform) -> Result<Features
         .map(|&t| f64::from(t) >= min_counts_used && t > 0.0)
         .collect();
 
-    let planes: Vec<Vec<f32>> = counts
-        .maps()
-        .par_iter()
-        .map(|m| {
-            let c = match p.denoise {
-                Denoise::Median { radius } => median_filter(&m.counts, w, h, radius),
-                _ => m.counts.clone(),
-            };
-            let v: Vec<f32> = if p.dequantise {
-                let salt = u64::from(m.element.z) << 40;
-                c.iter()
-                    .enumerate()
-                    .map(|(i, &x)| p.stabilise.apply(x + jitter(salt | i as u64)))
-                    .collect()
-            } else {
-                c.iter().map(|&x| p.stabilise.apply(x)).collect()
-            };
-            match p.denoise {
-                Denoise::Gaussian { sigma } => gaussian(v, w, h, sigma),
-                _ => v,
-            }
-        })
-        .collect();
+    // Plane by plane into the pixel-major matrix: only one transformed plane is held at a
+    // time beside the counts and the matrix.
     let mut data = vec![0.0f32; n * dims];
-    data.par_chunks_mut(dims).enumerate().for_each(|(i, row)| {
-        for (d, plane) in planes.iter().enumerate() {
-            row[d] = plane[i];
-        }
-    });
+    for (e, m) in counts.maps().iter().enumerate() {
+        let salt = u64::from(m.element.z) << 40;
+        let transform_one = |i: usize, x: f32| {
+            if p.dequantise {
+                p.stabilise.apply(x + jitter(salt | i as u64))
+            } else {
+                p.stabilise.apply(x)
+            }
+        };
+        let plane: Option<Vec<f32>> = match p.denoise {
+            Denoise::None => None,
+            Denoise::Median { radius } => {
+                let c = median_filter(&m.counts, w, h, radius);
+                Some(
+                    c.par_iter()
+                        .enumerate()
+                        .map(|(i, &x)| transform_one(i, x))
+                        .collect(),
+                )
+            }
+            Denoise::Gaussian { sigma } => {
+                let v: Vec<f32> = m
+                    .counts
+                    .par_iter()
+                    .enumerate()
+                    .map(|(i, &x)| transform_one(i, x))
+                    .collect();
+                Some(gaussian(v, w, h, sigma))
+            }
+        };
+        data.par_chunks_mut(dims).enumerate().for_each(|(i, row)| {
+            row[e] = match &plane {
+                Some(v) => v[i],
+                None => transform_one(i, m.counts[i]),
+            };
+        });
+    }
     Ok(Features {
         width: w,
         height: h,

@@ -293,9 +293,8 @@ pub fn refine_from(
     let t = crate::profile::stage("  refine: scores");
     let start =
         start.filter(|s| s.labels.len() == n && s.labels.iter().all(|&l| (l as usize) <= k));
-    // The scores of every pixel are kept only to build the first labels.
+    // Scores are kept (band by band) only to build the first labels.
     let keep_scores = p.smoothing > 0.0 && start.is_none();
-    let mut scores = vec![0.0f32; if keep_scores { n * kk } else { kk }];
     let compute = |i: usize, lp: &mut [f32], scratch: &mut Vec<f32>| -> (u16, f32) {
         if !f.mask[i] {
             return (empty_label, 0.0);
@@ -320,27 +319,64 @@ pub fn refine_from(
         }
         (best as u16, 1.0 / z)
     };
-    let first: Vec<(u16, f32)> = if keep_scores {
-        scores
-            .par_chunks_mut(kk)
-            .enumerate()
-            .with_min_len(4096)
-            .map_init(Vec::new, |scratch, (i, lp)| compute(i, lp, scratch))
-            .collect()
-    } else {
-        (0..n)
-            .into_par_iter()
-            .with_min_len(4096)
-            .map_init(
-                || (Vec::new(), vec![0.0f32; kk]),
-                |(scratch, lp), i| compute(i, lp, scratch),
-            )
-            .collect()
-    };
+    // Rows are processed in bands; a band scores its rows plus one halo row on each side,
+    // so the 3 × 3 start below never needs the scores of the whole field at once (they
+    // would take n × (k + 1) floats).
+    const BAND: usize = 32;
+    let bands: Vec<Vec<(u16, f32, u16)>> = (0..h.div_ceil(BAND))
+        .into_par_iter()
+        .map_init(Vec::new, |scratch, band| {
+            let (y0, y1) = (band * BAND, ((band + 1) * BAND).min(h));
+            let (ya, yb) = (y0.saturating_sub(1), (y1 + 1).min(h));
+            let mut local = vec![0.0f32; if keep_scores { (yb - ya) * w * kk } else { kk }];
+            let mut first = Vec::with_capacity((yb - ya) * w);
+            for y in ya..yb {
+                for x in 0..w {
+                    let off = if keep_scores {
+                        ((y - ya) * w + x) * kk
+                    } else {
+                        0
+                    };
+                    first.push(compute(y * w + x, &mut local[off..off + kk], scratch));
+                }
+            }
+            let fixed_at = |y: usize, x: usize| {
+                let (l, _) = first[(y - ya) * w + x];
+                !f.mask[y * w + x] || l == outlier_label
+            };
+            let mut acc = vec![0.0f32; kk];
+            (y0..y1)
+                .flat_map(|y| (0..w).map(move |x| (y, x)))
+                .map(|(y, x)| {
+                    let (ml, post) = first[(y - ya) * w + x];
+                    if !keep_scores || fixed_at(y, x) {
+                        return (ml, post, ml);
+                    }
+                    // The label that best explains the pixel and its 3 × 3 neighbourhood.
+                    acc.iter_mut().for_each(|a| *a = 0.0);
+                    for yy in y.saturating_sub(1)..=(y + 1).min(h - 1) {
+                        for xx in x.saturating_sub(1)..=(x + 1).min(w - 1) {
+                            if !fixed_at(yy, xx) {
+                                let off = ((yy - ya) * w + xx) * kk;
+                                acc.iter_mut()
+                                    .zip(&local[off..off + kk])
+                                    .for_each(|(a, s)| *a += s);
+                            }
+                        }
+                    }
+                    (
+                        ml,
+                        post,
+                        (0..kk).fold(0, |b, c| if acc[c] > acc[b] { c } else { b }) as u16,
+                    )
+                })
+                .collect()
+        })
+        .collect();
     drop(t);
     let t = crate::profile::stage("  refine: init");
-    let ml: Vec<u16> = first.iter().map(|x| x.0).collect();
-    let mut confidence: Vec<f32> = first.iter().map(|x| x.1).collect();
+    let ml: Vec<u16> = bands.iter().flatten().map(|x| x.0).collect();
+    let mut confidence: Vec<f32> = bands.iter().flatten().map(|x| x.1).collect();
     let fixed: Vec<bool> = (0..n)
         .map(|i| !f.mask[i] || ml[i] == outlier_label)
         .collect();
@@ -358,36 +394,10 @@ pub fn refine_from(
                 }
             })
             .collect()
-    } else if p.smoothing > 0.0 {
-        (0..n)
-            .into_par_iter()
-            .with_min_len(4096)
-            .map_init(
-                || vec![0.0f32; kk],
-                |acc, i| {
-                    if fixed[i] {
-                        return ml[i];
-                    }
-                    acc.iter_mut().for_each(|a| *a = 0.0);
-                    let (x, y) = (i % w, i / w);
-                    for yy in y.saturating_sub(1)..=(y + 1).min(h - 1) {
-                        for xx in x.saturating_sub(1)..=(x + 1).min(w - 1) {
-                            let j = yy * w + xx;
-                            if !fixed[j] {
-                                acc.iter_mut()
-                                    .zip(&scores[j * kk..(j + 1) * kk])
-                                    .for_each(|(a, s)| *a += s);
-                            }
-                        }
-                    }
-                    (0..kk).fold(0, |b, c| if acc[c] > acc[b] { c } else { b }) as u16
-                },
-            )
-            .collect()
     } else {
-        ml.clone()
+        bands.iter().flatten().map(|x| x.2).collect()
     };
-    drop(scores);
+    drop(bands);
 
     drop(t);
     let t = crate::profile::stage("  refine: icm");
