@@ -308,6 +308,7 @@ impl MapArgs {
             pixel_size_um: self.pixel_size.or(c.pixel_size),
             beam_kv: self.kv.or(c.kv),
             live_time_s: None,
+            bse_pixel_size_um: None,
         };
         for (name, v) in [("--pixel-size", md.pixel_size_um), ("--kv", md.beam_kv)] {
             if let Some(v) = v {
@@ -348,6 +349,7 @@ pub fn map_field(
     field.stack.override_metadata(&md);
     let map_size = (field.stack.width(), field.stack.height());
     let map_pixel_um = field.stack.metadata().pixel_size_um;
+    let bse_pixel_size = bse_pixel_size.or(field.stack.metadata().bse_pixel_size_um);
     if let Some(v) = bse_pixel_size {
         if !(v.is_finite() && v > 0.0) {
             return Err(Error::options(

@@ -18,6 +18,9 @@ pub struct FieldMetadata {
     pub beam_kv: Option<f64>,
     /// Live time of the acquisition in seconds.
     pub live_time_s: Option<f64>,
+    /// Pixel size of the field's BSE image in micrometres, if it differs from the maps'.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub bse_pixel_size_um: Option<f64>,
 }
 
 /// One element's intensity map.
@@ -167,6 +170,9 @@ impl MapStack {
         }
         if m.live_time_s.is_some() {
             self.metadata.live_time_s = m.live_time_s;
+        }
+        if m.bse_pixel_size_um.is_some() {
+            self.metadata.bse_pixel_size_um = m.bse_pixel_size_um;
         }
     }
 }

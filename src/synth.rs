@@ -430,6 +430,7 @@ pub fn write_folder(field: &SynthField, dir: &Path) -> Result<()> {
         ("pixel_size_um", md.pixel_size_um),
         ("beam_kv", md.beam_kv),
         ("live_time_s", md.live_time_s),
+        ("bse_pixel_size_um", md.bse_pixel_size_um),
     ] {
         if let Some(v) = v {
             toml.push_str(&format!("{k} = {v}\n"));
@@ -546,6 +547,7 @@ pub fn solder_joint() -> (Microstructure, SynthOptions) {
             pixel_size_um: Some(0.2),
             beam_kv: Some(15.0),
             live_time_s: Some(480.0),
+            bse_pixel_size_um: None,
         },
         bse: Some(BseOptions {
             scale: 2,
@@ -716,6 +718,7 @@ pub fn benchmark_rock(size: usize, seed: u64) -> (Microstructure, SynthOptions) 
             pixel_size_um: Some(0.5),
             beam_kv: Some(15.0),
             live_time_s: Some(1200.0),
+            bse_pixel_size_um: None,
         },
         bse: None,
     };

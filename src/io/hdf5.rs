@@ -86,6 +86,9 @@ fn metadata_from(attrs: &HashMap<String, AttrValue>, into: &mut FieldMetadata) {
     if let Some(v) = attrs.get("live_time_s").and_then(attr_f64) {
         into.live_time_s = Some(v);
     }
+    if let Some(v) = attrs.get("bse_pixel_size_um").and_then(attr_f64) {
+        into.bse_pixel_size_um = Some(v);
+    }
 }
 
 fn check_metadata(path: &Path, m: &FieldMetadata) -> Result<()> {
@@ -93,6 +96,7 @@ fn check_metadata(path: &Path, m: &FieldMetadata) -> Result<()> {
         ("pixel_size_um", m.pixel_size_um),
         ("beam_kv", m.beam_kv),
         ("live_time_s", m.live_time_s),
+        ("bse_pixel_size_um", m.bse_pixel_size_um),
     ] {
         if let Some(v) = v {
             if !(v.is_finite() && v > 0.0) {

@@ -4,6 +4,7 @@
 //! pixel_size_um = 0.25   # square pixels
 //! beam_kv = 20.0
 //! live_time_s = 600.0
+//! bse_pixel_size_um = 0.1   # only when the BSE image's pixels differ from the maps'
 //! [lines]                # X-ray line each map was built from
 //! Cu = "Ka"
 //! Sn = "La"
@@ -29,6 +30,8 @@ pub struct FieldSidecar {
     pub beam_kv: Option<f64>,
     /// Live time, s.
     pub live_time_s: Option<f64>,
+    /// Pixel size of the BSE image, µm (when it is not the maps').
+    pub bse_pixel_size_um: Option<f64>,
     /// X-ray line per element symbol.
     #[serde(default)]
     pub lines: BTreeMap<String, String>,
@@ -53,7 +56,7 @@ impl FieldSidecar {
             Error::input(
                 path,
                 format!("is not valid field metadata: {}", e.message()),
-                "allowed keys: pixel_size_um, beam_kv, live_time_s and a [lines] table \
+                "allowed keys: pixel_size_um, beam_kv, live_time_s, bse_pixel_size_um and a [lines] table \
                  (see notebooks-free-docs/input-formats.md)",
             )
         })?;
@@ -76,6 +79,7 @@ impl FieldSidecar {
             ("pixel_size_um", self.pixel_size_um),
             ("beam_kv", self.beam_kv),
             ("live_time_s", self.live_time_s),
+            ("bse_pixel_size_um", self.bse_pixel_size_um),
         ] {
             if let Some(v) = v {
                 if !(v.is_finite() && v > 0.0) {
@@ -91,6 +95,7 @@ impl FieldSidecar {
             pixel_size_um: self.pixel_size_um,
             beam_kv: self.beam_kv,
             live_time_s: self.live_time_s,
+            bse_pixel_size_um: self.bse_pixel_size_um,
         })
     }
 }
