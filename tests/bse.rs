@@ -424,4 +424,38 @@ fn pixel_sizes_set_the_scale_for_a_larger_bse_image() {
     ]);
     assert_eq!(r.code, 3, "{}", r.stderr);
     assert!(r.stderr.contains("aspect ratios differ"), "{}", r.stderr);
+    // The same from the field's metadata: a copy of the sample with the wide BSE image
+    // and `bse_pixel_size_um = 0.1` in field.toml.
+    let field = tmp.path().join("field");
+    std::fs::create_dir(&field).unwrap();
+    for e in std::fs::read_dir(&sample).unwrap() {
+        let e = e.unwrap();
+        std::fs::copy(e.path(), field.join(e.file_name())).unwrap();
+    }
+    std::fs::copy(&path, field.join("BSE.png")).unwrap();
+    let toml = std::fs::read_to_string(field.join("field.toml"))
+        .unwrap()
+        .replacen('\n', "\nbse_pixel_size_um = 0.1\n", 1);
+    std::fs::write(field.join("field.toml"), toml).unwrap();
+    let out3 = tmp.path().join("o3");
+    let r = modalmap(&[
+        "map",
+        field.to_str().unwrap(),
+        "-o",
+        out3.to_str().unwrap(),
+        "--phases",
+        "5",
+    ]);
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    let rep: serde_json::Value =
+        serde_json::from_str(&std::fs::read_to_string(out3.join("report.json")).unwrap()).unwrap();
+    assert_eq!(rep["bse"]["scale"], 2.0, "from field.toml");
+    let (dx, dy) = (
+        rep["bse"]["shift_px"][0].as_f64().unwrap(),
+        rep["bse"]["shift_px"][1].as_f64().unwrap(),
+    );
+    assert!(
+        (dx - 2.6).abs() <= 0.25 && (dy + 1.4).abs() <= 0.25,
+        "shift ({dx}, {dy})"
+    );
 }
