@@ -522,7 +522,7 @@ pub fn run(cli: Cli) -> Result<u8> {
             print!("{}", crate::report::summary(&report));
             let labels = crate::io::read_raster(&output.join("labels.png"), &Limits::default())?;
             let pred: Vec<u16> = labels.data.iter().map(|&v| v as u16).collect();
-            let agree = pixel_agreement(&pred, &field.truth);
+            let agree = crate::synth::agreement(&pred, &field.truth);
             println!(
                 "\n  the sample is synthetic, so its true phases are known: {:.1} % of pixels agree with them",
                 100.0 * agree
@@ -571,30 +571,4 @@ pub fn run(cli: Cli) -> Result<u8> {
             Ok(0)
         }
     }
-}
-
-/// Share of pixels whose label matches the truth after the best one-to-one matching of
-/// labels by overlap (0 matches 0).
-pub fn pixel_agreement(pred: &[u16], truth: &[u16]) -> f64 {
-    let kp = pred.iter().copied().max().unwrap_or(0) as usize + 1;
-    let kt = truth.iter().copied().max().unwrap_or(0) as usize + 1;
-    let mut conf = vec![0usize; kp * kt];
-    for (&p, &t) in pred.iter().zip(truth) {
-        conf[p as usize * kt + t as usize] += 1;
-    }
-    let mut pairs: Vec<(usize, usize, usize)> = (1..kp)
-        .flat_map(|p| (1..kt).map(move |t| (p, t)))
-        .map(|(p, t)| (conf[p * kt + t], p, t))
-        .collect();
-    pairs.sort_by(|a, b| b.cmp(a));
-    let (mut used_p, mut used_t) = (vec![false; kp], vec![false; kt]);
-    let mut correct = conf[0];
-    for (n, p, t) in pairs {
-        if !used_p[p] && !used_t[t] {
-            used_p[p] = true;
-            used_t[t] = true;
-            correct += n;
-        }
-    }
-    correct as f64 / pred.len().max(1) as f64
 }

@@ -453,8 +453,6 @@ mod tests {
         // Block (0,0): 0 + 1 + 10 + 11.
         assert_eq!(b.maps()[0].counts, vec![22.0, 30.0, 102.0, 110.0]);
         assert_eq!(b.metadata().pixel_size_um, Some(1.0));
-        let total: f32 = s.maps()[0].counts.iter().sum();
-        let _ = total;
     }
 
     #[test]

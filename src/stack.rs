@@ -23,6 +23,28 @@ pub struct FieldMetadata {
     pub bse_pixel_size_um: Option<f64>,
 }
 
+impl FieldMetadata {
+    /// Checks that every value given is a positive, finite number; `path` is the file the
+    /// values came from (field.toml or the HDF5 input).
+    pub fn check(&self, path: &Path) -> Result<()> {
+        for (key, v) in [
+            ("pixel_size_um", self.pixel_size_um),
+            ("beam_kv", self.beam_kv),
+            ("live_time_s", self.live_time_s),
+            ("bse_pixel_size_um", self.bse_pixel_size_um),
+        ] {
+            if let Some(v) = v.filter(|v| !(v.is_finite() && *v > 0.0)) {
+                return Err(Error::input(
+                    path,
+                    format!("{key} = {v} is not a positive number"),
+                    format!("set {key} to the real value, or leave it out if unknown"),
+                ));
+            }
+        }
+        Ok(())
+    }
+}
+
 /// One element's intensity map.
 #[derive(Debug, Clone, PartialEq)]
 pub struct ElementMap {

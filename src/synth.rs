@@ -570,23 +570,18 @@ pub struct JitteredSites {
 }
 
 impl JitteredSites {
-    /// Grain sites with labels drawn ∝ `weights` (labels 1..).
-    pub fn grains(rng: &mut ChaCha8Rng, cell: f64, (w, h): (f64, f64), weights: &[f64]) -> Self {
+    /// One site per cell, from `site(corner x, corner y)`, cells visited row by row.
+    fn from_cells(
+        cell: f64,
+        (w, h): (f64, f64),
+        mut site: impl FnMut(f64, f64) -> (f64, f64, u16, f64),
+    ) -> Self {
         let (cols, rows) = (
             (w / cell).ceil() as usize + 1,
             (h / cell).ceil() as usize + 1,
         );
         let sites = (0..cols * rows)
-            .map(|i| {
-                let (cx, cy) = ((i % cols) as f64 * cell, (i / cols) as f64 * cell);
-                let label = draw_label(rng, weights);
-                (
-                    cx + rng.random_range(0.0..cell),
-                    cy + rng.random_range(0.0..cell),
-                    label,
-                    0.0,
-                )
-            })
+            .map(|i| site((i % cols) as f64 * cell, (i / cols) as f64 * cell))
             .collect();
         JitteredSites {
             cell,
@@ -596,43 +591,43 @@ impl JitteredSites {
         }
     }
 
+    /// Grain sites with labels drawn ∝ `weights` (labels 1..).
+    pub fn grains(rng: &mut ChaCha8Rng, cell: f64, size: (f64, f64), weights: &[f64]) -> Self {
+        Self::from_cells(cell, size, |cx, cy| {
+            let label = draw_label(rng, weights);
+            (
+                cx + rng.random_range(0.0..cell),
+                cy + rng.random_range(0.0..cell),
+                label,
+                0.0,
+            )
+        })
+    }
+
     /// Round inclusions: in each cell, with probability `p`, a disk of radius in
     /// `[r_min, r_max]` (well inside the cell) labelled `label`.
     pub fn inclusions(
         rng: &mut ChaCha8Rng,
         cell: f64,
-        (w, h): (f64, f64),
+        size: (f64, f64),
         p: f64,
         label: u16,
         (r_min, r_max): (f64, f64),
     ) -> Self {
-        let (cols, rows) = (
-            (w / cell).ceil() as usize + 1,
-            (h / cell).ceil() as usize + 1,
-        );
-        let sites = (0..cols * rows)
-            .map(|i| {
-                let (cx, cy) = ((i % cols) as f64 * cell, (i / cols) as f64 * cell);
-                let r = if rng.random_bool(p) {
-                    rng.random_range(r_min..=r_max)
-                } else {
-                    0.0
-                };
-                let m = r.min(cell / 2.0);
-                (
-                    cx + m + rng.random_range(0.0..(cell - 2.0 * m).max(1e-9)),
-                    cy + m + rng.random_range(0.0..(cell - 2.0 * m).max(1e-9)),
-                    label,
-                    r,
-                )
-            })
-            .collect();
-        JitteredSites {
-            cell,
-            cols,
-            rows,
-            sites,
-        }
+        Self::from_cells(cell, size, |cx, cy| {
+            let r = if rng.random_bool(p) {
+                rng.random_range(r_min..=r_max)
+            } else {
+                0.0
+            };
+            let m = r.min(cell / 2.0);
+            (
+                cx + m + rng.random_range(0.0..(cell - 2.0 * m).max(1e-9)),
+                cy + m + rng.random_range(0.0..(cell - 2.0 * m).max(1e-9)),
+                label,
+                r,
+            )
+        })
     }
 
     fn near(&self, x: f64, y: f64, reach: isize) -> impl Iterator<Item = &(f64, f64, u16, f64)> {
@@ -723,6 +718,45 @@ pub fn benchmark_rock(size: usize, seed: u64) -> (Microstructure, SynthOptions) 
         bse: None,
     };
     (Microstructure::new(phases, shape), opts)
+}
+
+/// Matches predicted labels to true labels one-to-one by largest overlap (greedy on the
+/// confusion matrix, largest cell first); predicted 0 (unassigned) matches true 0 (void).
+/// Returns, for each predicted label 0..=max, the true label it stands for, if any.
+pub fn match_labels(pred: &[u16], truth: &[u16]) -> Vec<Option<u16>> {
+    let kp = pred.iter().copied().max().unwrap_or(0) as usize + 1;
+    let kt = truth.iter().copied().max().unwrap_or(0) as usize + 1;
+    let mut conf = vec![0usize; kp * kt];
+    for (&p, &t) in pred.iter().zip(truth) {
+        conf[p as usize * kt + t as usize] += 1;
+    }
+    let mut pairs: Vec<(usize, usize, usize)> = (1..kp)
+        .flat_map(|p| (1..kt).map(move |t| (p, t)))
+        .map(|(p, t)| (conf[p * kt + t], p, t))
+        .collect();
+    pairs.sort_by(|a, b| b.cmp(a));
+    let mut map = vec![None; kp];
+    let mut used = vec![false; kt];
+    map[0] = Some(0);
+    used[0] = true;
+    for (n, p, t) in pairs {
+        if n > 0 && map[p].is_none() && !used[t] {
+            map[p] = Some(t as u16);
+            used[t] = true;
+        }
+    }
+    map
+}
+
+/// Share of pixels whose label, after [`match_labels`], equals the true label.
+pub fn agreement(pred: &[u16], truth: &[u16]) -> f64 {
+    let map = match_labels(pred, truth);
+    let correct = pred
+        .iter()
+        .zip(truth)
+        .filter(|(&p, &t)| map[p as usize] == Some(t))
+        .count();
+    correct as f64 / pred.len().max(1) as f64
 }
 
 /// Generates the bundled sample field (see [`solder_joint`]).

@@ -73,6 +73,21 @@ fn rock(shift: (f64, f64), scale: usize, noise: f64) -> (modalmap::synth::SynthF
     (generate(&micro, &opts).unwrap(), etas)
 }
 
+/// The BSE check of a field mapped at full resolution, the BSE image covering the same field.
+fn check_same_field(
+    bse: &BseImage,
+    r: &modalmap::pipeline::MapResult,
+    w: usize,
+    h: usize,
+) -> modalmap::bse::BseCheck {
+    let geometry = Geometry {
+        map_size: (w, h),
+        bin: 1,
+        pixel_sizes_um: None,
+    };
+    check(bse, &r.segmentation.labels, w, h, &r.table, geometry).unwrap()
+}
+
 /// The BSE image predicted from the true labels: each phase at its η, pores at 0.
 fn predicted(f: &modalmap::synth::SynthField, etas: &[f64]) -> Vec<f32> {
     f.truth
@@ -273,19 +288,7 @@ fn unmapped_oxygen_is_flagged() {
         saturation: Some(65535.0),
         source: "synthetic".into(),
     };
-    let c = check(
-        &bse,
-        &r.segmentation.labels,
-        w,
-        h,
-        &r.table,
-        Geometry {
-            map_size: (w, h),
-            bin: 1,
-            pixel_sizes_um: None,
-        },
-    )
-    .unwrap();
+    let c = check_same_field(&bse, &r, w, h);
     assert_eq!(c.flags.len(), 1, "{:?}", c.flags);
     assert!(
         c.flags[0].message.contains("not mapped"),
@@ -334,19 +337,7 @@ fn saturated_pixels_are_excluded_and_reported() {
         saturation: Some(65535.0),
         source: "synthetic".into(),
     };
-    let c = check(
-        &bse,
-        &r.segmentation.labels,
-        w,
-        h,
-        &r.table,
-        Geometry {
-            map_size: (w, h),
-            bin: 1,
-            pixel_sizes_um: None,
-        },
-    )
-    .unwrap();
+    let c = check_same_field(&bse, &r, w, h);
     assert!(c.saturated_fraction > 0.04, "{}", c.saturated_fraction);
     assert!(
         c.warnings.iter().any(|w| w.contains("saturated")),

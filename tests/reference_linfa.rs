@@ -40,7 +40,7 @@ fn blobs() -> (Vec<f32>, Array2<f64>) {
 fn agreement(a: &[usize], b: &[usize]) -> f64 {
     let pred: Vec<u16> = a.iter().map(|&x| x as u16 + 1).collect();
     let truth: Vec<u16> = b.iter().map(|&x| x as u16 + 1).collect();
-    modalmap::cli::pixel_agreement(&pred, &truth)
+    modalmap::synth::agreement(&pred, &truth)
 }
 
 fn inertia(data: &Array2<f64>, centres: &Array2<f64>) -> f64 {

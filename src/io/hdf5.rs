@@ -91,26 +91,6 @@ fn metadata_from(attrs: &HashMap<String, AttrValue>, into: &mut FieldMetadata) {
     }
 }
 
-fn check_metadata(path: &Path, m: &FieldMetadata) -> Result<()> {
-    for (key, v) in [
-        ("pixel_size_um", m.pixel_size_um),
-        ("beam_kv", m.beam_kv),
-        ("live_time_s", m.live_time_s),
-        ("bse_pixel_size_um", m.bse_pixel_size_um),
-    ] {
-        if let Some(v) = v {
-            if !(v.is_finite() && v > 0.0) {
-                return Err(Error::input(
-                    path,
-                    format!("attribute {key} = {v} is not a positive number"),
-                    format!("write the real {key}, or leave the attribute out"),
-                ));
-            }
-        }
-    }
-    Ok(())
-}
-
 fn check_pixels(path: &Path, name: &str, shape: &[u64], limits: &Limits) -> Result<()> {
     let pixels = shape.iter().fold(1u64, |a, &b| a.saturating_mul(b));
     if shape.contains(&0) {
@@ -377,7 +357,7 @@ fn load_inner(
             });
         }
     }
-    check_metadata(path, &metadata)?;
+    metadata.check(path)?;
     let Some((w, h, _)) = dims else {
         return Err(bad(path, "contains no element maps".into()));
     };

@@ -75,27 +75,13 @@ impl FieldSidecar {
 
     /// The metadata, each value checked to be positive and finite.
     pub fn metadata_checked(&self, path: &Path) -> Result<FieldMetadata> {
-        for (key, v) in [
-            ("pixel_size_um", self.pixel_size_um),
-            ("beam_kv", self.beam_kv),
-            ("live_time_s", self.live_time_s),
-            ("bse_pixel_size_um", self.bse_pixel_size_um),
-        ] {
-            if let Some(v) = v {
-                if !(v.is_finite() && v > 0.0) {
-                    return Err(Error::input(
-                        path,
-                        format!("{key} = {v} is not a positive number"),
-                        format!("set {key} to the real value, or leave it out if unknown"),
-                    ));
-                }
-            }
-        }
-        Ok(FieldMetadata {
+        let m = FieldMetadata {
             pixel_size_um: self.pixel_size_um,
             beam_kv: self.beam_kv,
             live_time_s: self.live_time_s,
             bse_pixel_size_um: self.bse_pixel_size_um,
-        })
+        };
+        m.check(path)?;
+        Ok(m)
     }
 }

@@ -184,41 +184,36 @@ pub fn build(
     let map = |v: &[f64]| -> BTreeMap<String, f64> {
         t.elements.iter().cloned().zip(v.iter().copied()).collect()
     };
-    let phases = t
-        .phases
-        .iter()
-        .map(|p| PhaseEntry {
-            id: p.id,
-            name: p.name.clone(),
-            pixels: p.pixels,
-            area_fraction: p.area_fraction,
-            area_fraction_ci95: p.area_fraction_ci95,
-            mean: map(&p.mean),
-            sd: map(&p.sd),
-            composition_wt: map(&p.composition_wt),
-            composition_basis:
-                "apparent: counts normalised to 100 %, every k-factor = 1 (uncalibrated)".into(),
-            particles: p.particles,
-            mean_ecd_px: p.mean_ecd_px,
-            mean_ecd_um: md.pixel_size_um.map(|s| s * p.mean_ecd_px),
-            largest_px: p.largest_px,
-            mean_confidence: p.mean_confidence,
-            bse_mean: bse
-                .and_then(|b| b.phases.iter().find(|q| q.id == p.id))
-                .map(|q| q.bse_mean)
-                .filter(|v| v.is_finite()),
-            bse_sd: bse
-                .and_then(|b| b.phases.iter().find(|q| q.id == p.id))
-                .map(|q| q.bse_sd)
-                .filter(|v| v.is_finite()),
-            eta_predicted: bse
-                .and_then(|b| b.phases.iter().find(|q| q.id == p.id))
-                .map(|q| q.eta_predicted),
-            mean_z: bse
-                .and_then(|b| b.phases.iter().find(|q| q.id == p.id))
-                .map(|q| q.mean_z),
-        })
-        .collect();
+    let phases =
+        t.phases
+            .iter()
+            .map(|p| {
+                // The phase's BSE statistics, when there was a BSE check.
+                let q = bse.and_then(|b| b.phases.iter().find(|q| q.id == p.id));
+                PhaseEntry {
+                    id: p.id,
+                    name: p.name.clone(),
+                    pixels: p.pixels,
+                    area_fraction: p.area_fraction,
+                    area_fraction_ci95: p.area_fraction_ci95,
+                    mean: map(&p.mean),
+                    sd: map(&p.sd),
+                    composition_wt: map(&p.composition_wt),
+                    composition_basis:
+                        "apparent: counts normalised to 100 %, every k-factor = 1 (uncalibrated)"
+                            .into(),
+                    particles: p.particles,
+                    mean_ecd_px: p.mean_ecd_px,
+                    mean_ecd_um: md.pixel_size_um.map(|s| s * p.mean_ecd_px),
+                    largest_px: p.largest_px,
+                    mean_confidence: p.mean_confidence,
+                    bse_mean: q.map(|q| q.bse_mean).filter(|v| v.is_finite()),
+                    bse_sd: q.map(|q| q.bse_sd).filter(|v| v.is_finite()),
+                    eta_predicted: q.map(|q| q.eta_predicted),
+                    mean_z: q.map(|q| q.mean_z),
+                }
+            })
+            .collect();
     if let Some(b) = bse {
         warnings.extend(b.warnings.iter().cloned());
     }

@@ -15,33 +15,15 @@ pub struct Score {
     pub mapping: Vec<(u16, u16)>,
 }
 
-/// Matches predicted to true labels one-to-one by largest overlap (greedy on the confusion
-/// matrix), predicted 0 to true 0, and scores the result.
+/// Matches predicted to true labels (`synth::match_labels`) and scores the result.
 pub fn score(pred: &[u16], truth: &[u16]) -> Score {
     assert_eq!(pred.len(), truth.len());
-    let kp = *pred.iter().max().unwrap() as usize + 1;
-    let kt = *truth.iter().max().unwrap() as usize + 1;
-    let mut conf = vec![vec![0usize; kt]; kp];
-    for (&p, &t) in pred.iter().zip(truth) {
-        conf[p as usize][t as usize] += 1;
-    }
-    let mut pairs: Vec<(usize, usize, usize)> = conf
-        .iter()
-        .enumerate()
-        .skip(1)
-        .flat_map(|(p, row)| row.iter().enumerate().skip(1).map(move |(t, &n)| (n, p, t)))
+    let map_p: Vec<Option<usize>> = modalmap::synth::match_labels(pred, truth)
+        .into_iter()
+        .map(|m| m.map(usize::from))
         .collect();
-    pairs.sort_by(|a, b| b.cmp(a));
-    let mut map_p = vec![None; kp];
-    let mut used_t = vec![false; kt];
-    map_p[0] = Some(0usize);
-    used_t[0] = true;
-    for (n, p, t) in pairs {
-        if n > 0 && map_p[p].is_none() && !used_t[t] {
-            map_p[p] = Some(t);
-            used_t[t] = true;
-        }
-    }
+    let kp = map_p.len();
+    let kt = *truth.iter().max().unwrap() as usize + 1;
     let n = pred.len() as f64;
     let correct = pred
         .iter()
