@@ -343,9 +343,9 @@ pub fn predicted_eta(table: &PhaseTable) -> Vec<(f64, f64)> {
         .iter()
         .map(|p| {
             let parts: Vec<_> = table
-                .elements
+                .composition_elements
                 .iter()
-                .zip(&p.composition_wt)
+                .zip(&p.composition.wt)
                 .filter(|(_, &w)| w > 0.0)
                 .filter_map(|(e, &w)| element(e).map(|el| (el, w)))
                 .collect();

@@ -9,6 +9,7 @@ use clap::{Parser, Subcommand};
 
 use serde::Deserialize;
 
+use crate::characterise::{BackgroundMode, CompositionOptions, OxygenMode};
 use crate::cluster::select::{ClusterParams, PhaseCount};
 use crate::cluster::Method;
 use crate::error::{Error, Result};
@@ -158,6 +159,27 @@ pub struct MapArgs {
     /// Skip the BSE check even when a BSE image is found with the maps.
     #[arg(long, conflicts_with = "bse")]
     pub no_bse: bool,
+    /// k-factor file (format modalmap.kfactors/1) for compositions.
+    #[arg(long, value_name = "FILE")]
+    pub kfactors: Option<PathBuf>,
+    /// Calibrate the k-factors on a phase of known composition: ID=COMPOSITION (e.g.
+    /// 3=Cu6Sn5), NAME=COMPOSITION, or a library phase name; repeat for more phases.
+    /// COMPOSITION is a library name, a formula, or wt% as Cu:39.1,Sn:60.9.
+    #[arg(long, value_name = "PHASE=COMPOSITION")]
+    pub calibrate: Vec<String>,
+    /// Oxygen from its map (measured) or from the cations' valences (stoichiometry).
+    #[arg(long, value_enum)]
+    pub oxygen: Option<OxygenMode>,
+    /// Valence for oxygen by stoichiometry, e.g. Fe=3 (repeatable; anions negative).
+    #[arg(long, value_name = "EL=N")]
+    pub valence: Vec<String>,
+    /// Continuum background: from the phase poorest in each element (default), or none.
+    #[arg(long, value_enum)]
+    pub background: Option<BackgroundMode>,
+    /// Reference-phase library (format modalmap.phases/1), added to the built-in one;
+    /// repeatable.
+    #[arg(long, value_name = "FILE")]
+    pub library: Vec<PathBuf>,
     /// TOML file with any of these options (keys as the long flag names).
     #[arg(long, value_name = "FILE")]
     pub config: Option<PathBuf>,
@@ -192,6 +214,27 @@ struct ConfigFile {
     min_phase: Option<f64>,
     threads: Option<usize>,
     bse_pixel_size: Option<f64>,
+    kfactors: Option<PathBuf>,
+    calibrate: Option<Vec<String>>,
+    oxygen: Option<String>,
+    valence: Option<Vec<String>>,
+    background: Option<String>,
+    library: Option<Vec<PathBuf>>,
+}
+
+/// Every option of `map`, flags and configuration file merged.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Resolved {
+    /// Options of the mapping stages.
+    pub map: MapOptions,
+    /// Metadata overrides.
+    pub metadata: FieldMetadata,
+    /// Worker threads.
+    pub threads: Option<usize>,
+    /// BSE pixel size, µm.
+    pub bse_pixel_size: Option<f64>,
+    /// Options of the composition stage.
+    pub composition: CompositionOptions,
 }
 
 fn read_config(path: &std::path::Path) -> Result<ConfigFile> {
@@ -250,7 +293,7 @@ fn parse_value_enum<T: clap::ValueEnum>(
 
 impl MapArgs {
     /// Merges the flags with the configuration file (flags win) into checked options.
-    pub fn resolve(&self) -> Result<(MapOptions, FieldMetadata, Option<usize>, Option<f64>)> {
+    pub fn resolve(&self) -> Result<Resolved> {
         let cfg = match &self.config {
             Some(p) => Some((p.clone(), read_config(p)?)),
             None => None,
@@ -320,12 +363,42 @@ impl MapArgs {
                 }
             }
         }
-        Ok((
-            opts,
-            md,
-            self.threads.or(c.threads),
-            self.bse_pixel_size.or(c.bse_pixel_size),
-        ))
+        let or_list = |flag: &[String], file: Option<Vec<String>>| {
+            if flag.is_empty() {
+                file.unwrap_or_default()
+            } else {
+                flag.to_vec()
+            }
+        };
+        let composition = CompositionOptions {
+            kfactors: self.kfactors.clone().or(c.kfactors),
+            calibrate: or_list(&self.calibrate, c.calibrate),
+            oxygen: self
+                .oxygen
+                .or(parse_value_enum::<OxygenMode>(&cp, "oxygen", c.oxygen)?)
+                .unwrap_or_default(),
+            valences: or_list(&self.valence, c.valence),
+            background: self
+                .background
+                .or(parse_value_enum::<BackgroundMode>(
+                    &cp,
+                    "background",
+                    c.background,
+                )?)
+                .unwrap_or_default(),
+            libraries: if self.library.is_empty() {
+                c.library.unwrap_or_default()
+            } else {
+                self.library.clone()
+            },
+        };
+        Ok(Resolved {
+            map: opts,
+            metadata: md,
+            threads: self.threads.or(c.threads),
+            bse_pixel_size: self.bse_pixel_size.or(c.bse_pixel_size),
+            composition,
+        })
     }
 }
 
@@ -335,8 +408,15 @@ pub fn map_field(
     out: &std::path::Path,
     args: &MapArgs,
 ) -> Result<crate::report::Report> {
-    let (opts, md, _, bse_pixel_size) = args.resolve()?;
+    let Resolved {
+        map: opts,
+        metadata: md,
+        bse_pixel_size,
+        composition,
+        ..
+    } = args.resolve()?;
     let valid = opts.check()?;
+    let composition = composition.check()?;
     let dir = crate::report::prepare_output(out, args.force)?;
     let t = crate::profile::stage("load");
     let mut field = load_field(
@@ -405,7 +485,11 @@ pub fn map_field(
     if let Some(s) = spinner {
         s.finish_and_clear();
     }
-    let result = result?;
+    let mut result = result?;
+    let (composition_report, advice) = {
+        let _t = crate::profile::stage("composition");
+        crate::pipeline::characterise(&mut result, &composition)?
+    };
     let bse = match &bse_image {
         Some(img) => {
             let _t = crate::profile::stage("bse check");
@@ -432,7 +516,11 @@ pub fn map_field(
         &result,
         valid.options(),
         warnings,
-        bse.as_ref(),
+        crate::report::Findings {
+            bse: bse.as_ref(),
+            composition: &composition_report,
+            advisor: &advice,
+        },
     )?;
     drop(t);
     let _t = crate::profile::stage("write outputs");
@@ -494,7 +582,7 @@ pub fn run(cli: Cli) -> Result<u8> {
             Ok(0)
         }
         Command::Map { input, output, map } => {
-            install_threads(map.resolve()?.2)?;
+            install_threads(map.resolve()?.threads)?;
             let report = map_field(&input, &output, &map)?;
             if !map.quiet {
                 print!("{}", crate::report::summary(&report));

@@ -6,13 +6,16 @@
 //! [`synth`] makes synthetic fields with ground truth for the demo and the accuracy tests.
 //! The command line ([`cli`]) is a thin layer over this library.
 
+pub mod advisor;
 pub mod bse;
+pub mod characterise;
 pub mod chem;
 pub mod cli;
 pub mod cluster;
 pub mod error;
 pub mod inspect;
 pub mod io;
+pub mod library;
 pub mod phases;
 pub mod physics;
 pub mod pipeline;

@@ -18,6 +18,9 @@ use rayon::prelude::*;
 use serde::{Deserialize, Serialize};
 use statrs::distribution::{ContinuousCDF, StudentsT};
 
+use crate::chem::quant::{
+    quantify, Background, KFactors, Oxygen, PhaseComposition, PhaseCounts, Rules,
+};
 use crate::refine::Segmentation;
 use crate::stack::MapStack;
 
@@ -40,9 +43,14 @@ pub struct Phase {
     pub mean: Vec<f64>,
     /// Standard deviation of raw counts per pixel, per element.
     pub sd: Vec<f64>,
-    /// Apparent composition, % (counts normalised to 100 with every k-factor = 1):
-    /// uncalibrated and semi-quantitative.
-    pub composition_wt: Vec<f64>,
+    /// Composition over the table's `composition_elements`: at first the apparent one
+    /// (mean counts normalised, every k-factor 1); the composition stage
+    /// (`pipeline::characterise`) replaces it.
+    pub composition: PhaseComposition,
+    /// Pixels the composition was summed over.
+    pub composition_pixels: usize,
+    /// The closest reference phase, once matched.
+    pub reference: Option<crate::library::Match>,
     /// Number of separate features (8-connected regions).
     pub particles: usize,
     /// Mean equivalent-circle diameter of the features, pixels.
@@ -56,8 +64,13 @@ pub struct Phase {
 /// The table of phases.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct PhaseTable {
-    /// Element symbols, in the column order of `mean`, `sd`, `composition_wt`.
+    /// Element symbols, in the column order of `mean` and `sd`.
     pub elements: Vec<String>,
+    /// Element symbols of the compositions (the mapped ones, plus oxygen when it is
+    /// computed by stoichiometry).
+    pub composition_elements: Vec<String>,
+    /// How the compositions were obtained.
+    pub composition_method: String,
     /// Phases by decreasing area.
     pub phases: Vec<Phase>,
     /// Share of unassigned pixels.
@@ -67,6 +80,10 @@ pub struct PhaseTable {
     /// Two-sided 95 % Student t quantile used (n − 1 degrees of freedom).
     pub t_quantile: f64,
 }
+
+/// The composition method before the composition stage runs.
+pub const APPARENT: &str =
+    "apparent: counts of all the phase's pixels normalised to 100 %, every k-factor 1, no background subtracted (uncalibrated)";
 
 /// Number of tiles across and down: 5 × 5 when every tile keeps at least 10 × 10 pixels,
 /// fewer for small fields (common practice, no source).
@@ -189,6 +206,24 @@ pub fn phase_table(seg: &mut Segmentation, counts: &MapStack, k: usize) -> Phase
             tile_counts[t][seg.labels[y * w + x] as usize] += 1;
         }
     }
+    // The apparent composition: every k-factor 1, no background, all pixels.
+    let infos: Vec<_> = counts.maps().iter().map(|m| m.element).collect();
+    let phase_counts: Vec<PhaseCounts> = order
+        .iter()
+        .map(|&c| PhaseCounts {
+            pixels: pixels[c],
+            sums: sum[c * d..(c + 1) * d].to_vec(),
+        })
+        .collect();
+    let apparent = quantify(
+        &infos,
+        &phase_counts,
+        &Rules {
+            k: KFactors::unit(d),
+            oxygen: Oxygen::Measured,
+            background: Background::none(d),
+        },
+    );
     let mut t_quantile = f64::NAN;
     let mut names_seen: Vec<String> = Vec::new();
     let phases = order
@@ -209,11 +244,7 @@ pub fn phase_table(seg: &mut Segmentation, counts: &MapStack, k: usize) -> Phase
                     }
                 })
                 .collect();
-            let total: f64 = mean.iter().sum();
-            let composition_wt: Vec<f64> = mean
-                .iter()
-                .map(|m| if total > 0.0 { 100.0 * m / total } else { 0.0 })
-                .collect();
+            let composition = apparent.phases[i].clone();
             let fractions: Vec<f64> = (0..tx * ty)
                 .map(|t| tile_counts[t][id as usize] as f64 / tile_px[t] as f64)
                 .collect();
@@ -225,7 +256,7 @@ pub fn phase_table(seg: &mut Segmentation, counts: &MapStack, k: usize) -> Phase
             } else {
                 (p, p)
             };
-            let mut name = name_of(&elements, &composition_wt);
+            let mut name = name_of(&elements, &composition.wt);
             let repeats = names_seen.iter().filter(|s| **s == name).count();
             names_seen.push(name.clone());
             if repeats > 0 {
@@ -240,7 +271,9 @@ pub fn phase_table(seg: &mut Segmentation, counts: &MapStack, k: usize) -> Phase
                 area_fraction_ci95: [lo, hi],
                 mean,
                 sd,
-                composition_wt,
+                composition,
+                composition_pixels: pixels[c],
+                reference: None,
                 particles: 0,
                 mean_ecd_px: 0.0,
                 largest_px: 0,
@@ -249,6 +282,8 @@ pub fn phase_table(seg: &mut Segmentation, counts: &MapStack, k: usize) -> Phase
         })
         .collect::<Vec<_>>();
     let mut table = PhaseTable {
+        composition_elements: elements.clone(),
+        composition_method: APPARENT.into(),
         elements,
         phases,
         unassigned_fraction: seg.labels.iter().filter(|&&l| l == 0).count() as f64 / n as f64,
@@ -257,6 +292,85 @@ pub fn phase_table(seg: &mut Segmentation, counts: &MapStack, k: usize) -> Phase
     };
     particle_statistics(&mut table, seg);
     table
+}
+
+/// Fewest interior pixels a composition is summed over before falling back to all of the
+/// phase's pixels (common practice, no source).
+pub const MIN_COMPOSITION_PIXELS: usize = 25;
+
+/// Summed counts of each phase (label 1..=k) over its interior: pixels with no other label
+/// (unassigned included) within `radius` pixels (chessboard distance). A phase with fewer
+/// than [`MIN_COMPOSITION_PIXELS`] such pixels is summed over all its pixels; the flag says
+/// which.
+pub fn interior_counts(
+    labels: &[u16],
+    width: usize,
+    height: usize,
+    counts: &MapStack,
+    k: usize,
+    radius: usize,
+) -> Vec<(PhaseCounts, bool)> {
+    use imageproc::distance_transform::{distance_transform, Norm};
+    // Boundary pixels: an 8-neighbour carries another label. A pixel is `radius` clear of
+    // other labels exactly when it is at least `radius` from every boundary pixel.
+    let mut boundary = vec![0u8; width * height];
+    for y in 0..height {
+        for x in 0..width {
+            let l = labels[y * width + x];
+            let differs = (y.saturating_sub(1)..(y + 2).min(height)).any(|yy| {
+                (x.saturating_sub(1)..(x + 2).min(width)).any(|xx| labels[yy * width + xx] != l)
+            });
+            if differs {
+                boundary[y * width + x] = 255;
+            }
+        }
+    }
+    let img: ImageBuffer<Luma<u8>, Vec<u8>> =
+        ImageBuffer::from_raw(width as u32, height as u32, boundary).expect("size matches");
+    let any_boundary = img.as_raw().iter().any(|&v| v > 0);
+    let dist = distance_transform(&img, Norm::LInf).into_raw();
+    let clear = |i: usize| !any_boundary || usize::from(dist[i]) >= radius.min(255);
+    let d = counts.maps().len();
+    let sums_over = |inside: &dyn Fn(usize) -> bool| {
+        let mut px = vec![0usize; k];
+        let mut sums = vec![0.0f64; k * d];
+        for (i, &l) in labels.iter().enumerate() {
+            if l == 0 || !inside(i) {
+                continue;
+            }
+            let c = l as usize - 1;
+            px[c] += 1;
+            for (e, m) in counts.maps().iter().enumerate() {
+                sums[c * d + e] += f64::from(m.counts[i]);
+            }
+        }
+        (px, sums)
+    };
+    let (ipx, isums) = sums_over(&clear);
+    let (apx, asums) = sums_over(&|_| true);
+    (0..k)
+        .map(|c| {
+            if ipx[c] >= MIN_COMPOSITION_PIXELS {
+                let sums = isums[c * d..(c + 1) * d].to_vec();
+                (
+                    PhaseCounts {
+                        pixels: ipx[c],
+                        sums,
+                    },
+                    true,
+                )
+            } else {
+                let sums = asums[c * d..(c + 1) * d].to_vec();
+                (
+                    PhaseCounts {
+                        pixels: apx[c],
+                        sums,
+                    },
+                    false,
+                )
+            }
+        })
+        .collect()
 }
 
 /// Counts the separate features of each phase and their sizes.
@@ -312,6 +426,37 @@ mod tests {
     fn t_quantile_for_25_tiles() {
         let v: Vec<f64> = (0..25).map(|i| f64::from(i % 3)).collect();
         assert!((mean_ci(&v).3 - 2.064).abs() < 1e-3);
+    }
+
+    /// A 12 × 12 field: phase 1 on the left 6 columns, phase 2 on the right; counts equal
+    /// the column index. With radius 2, columns 0..=3 and 8..=11 are interior.
+    #[test]
+    fn interior_counts_keep_clear_of_boundaries() {
+        let (w, h) = (12, 12);
+        let labels: Vec<u16> = (0..w * h).map(|i| if i % w < 6 { 1 } else { 2 }).collect();
+        let counts: Vec<f32> = (0..w * h).map(|i| (i % w) as f32).collect();
+        let stack = MapStack::new(
+            std::path::Path::new("t"),
+            w,
+            h,
+            vec![crate::stack::ElementMap {
+                element: crate::chem::element("Fe").unwrap(),
+                line: None,
+                counts,
+                source: "t".into(),
+            }],
+            Default::default(),
+        )
+        .unwrap();
+        let r = interior_counts(&labels, w, h, &stack, 2, 2);
+        assert_eq!(r[0].0.pixels, 4 * h);
+        assert_eq!(r[0].0.sums[0], 6.0 * h as f64);
+        assert_eq!(r[1].0.sums[0], (8 + 9 + 10 + 11) as f64 * h as f64);
+        assert!(r[0].1 && r[1].1);
+        // A radius wider than the phase: fall back to all pixels, and say so.
+        let r = interior_counts(&labels, w, h, &stack, 2, 7);
+        assert_eq!(r[0].0.pixels, 6 * h);
+        assert!(!r[0].1);
     }
 
     #[test]

@@ -216,3 +216,23 @@ pub fn map_stack_with_progress(
 /// this share is a boundary band, if it is also a mixture of the others (common practice,
 /// no source; a five-pixel layer keeps about a fifth of its pixels inside).
 pub const BOUNDARY_INTERIOR: f64 = 0.02;
+
+/// The composition stage on a mapped field: compositions, reference names and beam
+/// advice ([`crate::characterise`]); updates the result's phase table.
+pub fn characterise(
+    result: &mut MapResult,
+    opts: &crate::characterise::ValidCompositionOptions,
+) -> Result<(
+    crate::characterise::CompositionReport,
+    crate::advisor::Advice,
+)> {
+    let seg = &result.segmentation;
+    crate::characterise::characterise(
+        &mut result.table,
+        &seg.labels,
+        seg.width,
+        seg.height,
+        &result.counts,
+        opts,
+    )
+}

@@ -23,9 +23,18 @@ use crate::pipeline::{MapOptions, MapResult};
 /// The report's schema name.
 pub const SCHEMA: &str = "modalmap.report/1";
 
-/// The cautions every report carries.
-pub const CAUTIONS: [&str; 4] = [
-    "Compositions are apparent: counts normalised to 100 % with every k-factor set to 1. They are uncalibrated and semi-quantitative; bulk specimens need standards and matrix (ZAF or phi-rho-z) corrections for accurate numbers.",
+/// The caution on compositions, by basis (`uncalibrated`, `k-factors`, `calibrated`).
+pub fn composition_caution(basis: &str) -> String {
+    let head = match basis {
+        "calibrated" => "Compositions are k-factor ratios calibrated on phases of known composition (Cliff–Lorimer ratio method); they are semi-quantitative and hold best for phases whose matrix resembles the calibration phases.",
+        "k-factors" => "Compositions are k-factor-weighted intensity ratios (Cliff–Lorimer ratio method) with the given factors; they are semi-quantitative.",
+        _ => "Compositions are uncalibrated: every k-factor is 1, so they are shares of the net counts, not concentrations, and can be off by tens of per cent of the amount.",
+    };
+    format!("{head} Like every composition from element maps they are semi-quantitative: in bulk specimens the intensity also depends on the matrix (atomic number, absorption, fluorescence): accurate numbers need standards and ZAF or phi-rho-z matrix corrections (Goldstein et al., Scanning Electron Microscopy and X-Ray Microanalysis, 4th ed., 2018, ch. 19). Normalising to 100 % hides the analytical total, the main check on a missing element. The ± values are counting statistics only.")
+}
+
+/// The cautions every report carries besides the one on compositions.
+pub const CAUTIONS: [&str; 3] = [
     "Area fractions are measured on this section; they estimate volume fractions only for an isotropic, uniform microstructure sampled over enough fields (ASTM E562, E1245). The interval reflects variation between tiles of this one field.",
     "Phases near the noise floor of the maps (few pixels or small differences in counts) can be missed, merged or invented; check them against the BSE image and other fields.",
     "Follow your laboratory's accredited procedures and the applicable standards for results that go into a materials report.",
@@ -48,10 +57,21 @@ pub struct PhaseEntry {
     pub mean: BTreeMap<String, f64>,
     /// Standard deviation of raw counts per pixel.
     pub sd: BTreeMap<String, f64>,
-    /// Apparent composition, % (see `composition_basis`).
+    /// Composition, wt% (see the report's `composition` block for the method).
     pub composition_wt: BTreeMap<String, f64>,
-    /// How the composition was obtained.
+    /// One standard deviation of `composition_wt` from counting statistics, wt%.
+    pub composition_wt_sd: BTreeMap<String, f64>,
+    /// Composition, at%.
+    pub composition_at: BTreeMap<String, f64>,
+    /// One standard deviation of `composition_at`, at%.
+    pub composition_at_sd: BTreeMap<String, f64>,
+    /// `uncalibrated`, `k-factors` or `calibrated`.
     pub composition_basis: String,
+    /// Pixels the composition was summed over (interior pixels).
+    pub composition_pixels: usize,
+    /// The closest reference phase and the match quality.
+    #[serde(rename = "match", skip_serializing_if = "Option::is_none", default)]
+    pub reference: Option<crate::library::Match>,
     /// Separate features (8-connected).
     pub particles: usize,
     /// Mean equivalent-circle diameter, pixels.
@@ -153,6 +173,10 @@ pub struct Report {
     /// The BSE cross-check, when a BSE image was used.
     #[serde(skip_serializing_if = "Option::is_none", default)]
     pub bse: Option<crate::bse::BseCheck>,
+    /// How the compositions were obtained.
+    pub composition: crate::characterise::CompositionReport,
+    /// Beam-physics advice.
+    pub advisor: crate::advisor::Advice,
 }
 
 fn hash_file(path: &std::path::Path) -> Result<String> {
@@ -169,6 +193,17 @@ fn hash_file(path: &std::path::Path) -> Result<String> {
         .collect())
 }
 
+/// What the stages after labelling found, for the report.
+#[derive(Debug, Clone, Copy)]
+pub struct Findings<'a> {
+    /// The BSE cross-check, when a BSE image was used.
+    pub bse: Option<&'a crate::bse::BseCheck>,
+    /// How the compositions were obtained.
+    pub composition: &'a crate::characterise::CompositionReport,
+    /// Beam-physics advice.
+    pub advisor: &'a crate::advisor::Advice,
+}
+
 /// Builds the report of a mapped field.
 pub fn build(
     field_name: &str,
@@ -176,44 +211,59 @@ pub fn build(
     result: &MapResult,
     options: &MapOptions,
     mut warnings: Vec<String>,
-    bse: Option<&crate::bse::BseCheck>,
+    findings: Findings,
 ) -> Result<Report> {
+    let Findings {
+        bse,
+        composition,
+        advisor,
+    } = findings;
     use rayon::prelude::*;
     let t = &result.table;
     let md = result.counts.metadata();
     let map = |v: &[f64]| -> BTreeMap<String, f64> {
         t.elements.iter().cloned().zip(v.iter().copied()).collect()
     };
-    let phases =
-        t.phases
+    let cmap = |v: &[f64]| -> BTreeMap<String, f64> {
+        t.composition_elements
             .iter()
-            .map(|p| {
-                // The phase's BSE statistics, when there was a BSE check.
-                let q = bse.and_then(|b| b.phases.iter().find(|q| q.id == p.id));
-                PhaseEntry {
-                    id: p.id,
-                    name: p.name.clone(),
-                    pixels: p.pixels,
-                    area_fraction: p.area_fraction,
-                    area_fraction_ci95: p.area_fraction_ci95,
-                    mean: map(&p.mean),
-                    sd: map(&p.sd),
-                    composition_wt: map(&p.composition_wt),
-                    composition_basis:
-                        "apparent: counts normalised to 100 %, every k-factor = 1 (uncalibrated)"
-                            .into(),
-                    particles: p.particles,
-                    mean_ecd_px: p.mean_ecd_px,
-                    mean_ecd_um: md.pixel_size_um.map(|s| s * p.mean_ecd_px),
-                    largest_px: p.largest_px,
-                    mean_confidence: p.mean_confidence,
-                    bse_mean: q.map(|q| q.bse_mean).filter(|v| v.is_finite()),
-                    bse_sd: q.map(|q| q.bse_sd).filter(|v| v.is_finite()),
-                    eta_predicted: q.map(|q| q.eta_predicted),
-                    mean_z: q.map(|q| q.mean_z),
-                }
-            })
-            .collect();
+            .cloned()
+            .zip(v.iter().copied())
+            .collect()
+    };
+    let phases = t
+        .phases
+        .iter()
+        .map(|p| {
+            // The phase's BSE statistics, when there was a BSE check.
+            let q = bse.and_then(|b| b.phases.iter().find(|q| q.id == p.id));
+            PhaseEntry {
+                id: p.id,
+                name: p.name.clone(),
+                pixels: p.pixels,
+                area_fraction: p.area_fraction,
+                area_fraction_ci95: p.area_fraction_ci95,
+                mean: map(&p.mean),
+                sd: map(&p.sd),
+                composition_wt: cmap(&p.composition.wt),
+                composition_wt_sd: cmap(&p.composition.wt_sd),
+                composition_at: cmap(&p.composition.at),
+                composition_at_sd: cmap(&p.composition.at_sd),
+                composition_basis: composition.basis.clone(),
+                composition_pixels: p.composition_pixels,
+                reference: p.reference.clone(),
+                particles: p.particles,
+                mean_ecd_px: p.mean_ecd_px,
+                mean_ecd_um: md.pixel_size_um.map(|s| s * p.mean_ecd_px),
+                largest_px: p.largest_px,
+                mean_confidence: p.mean_confidence,
+                bse_mean: q.map(|q| q.bse_mean).filter(|v| v.is_finite()),
+                bse_sd: q.map(|q| q.bse_sd).filter(|v| v.is_finite()),
+                eta_predicted: q.map(|q| q.eta_predicted),
+                mean_z: q.map(|q| q.mean_z),
+            }
+        })
+        .collect();
     if let Some(b) = bse {
         warnings.extend(b.warnings.iter().cloned());
     }
@@ -299,10 +349,23 @@ pub fn build(
             seed: options.cluster.seed,
             inputs,
         },
-        cautions: CAUTIONS.iter().map(|s| s.to_string()).collect(),
+        cautions: std::iter::once(composition_caution(&composition.basis))
+            .chain(CAUTIONS.iter().map(|s| s.to_string()))
+            .collect(),
         warnings,
         bse: bse.cloned(),
+        composition: composition.clone(),
+        advisor: advisor.clone(),
     })
+}
+
+/// A CSV field, quoted when it holds a comma or a quote (RFC 4180).
+fn csv_field(v: &str) -> String {
+    if v.contains([',', '"']) {
+        format!("\"{}\"", v.replace('"', "\"\""))
+    } else {
+        v.to_string()
+    }
 }
 
 /// `phases.csv`: one row per phase.
@@ -314,16 +377,15 @@ pub fn phases_csv(r: &Report) -> String {
     for e in &r.elements {
         s.push_str(&format!(",sd_{e}"));
     }
-    for e in &r.elements {
-        s.push_str(&format!(",apparent_wt_{e}"));
+    let ce = &r.composition.elements;
+    for prefix in ["wt", "wt_sd", "at", "at_sd"] {
+        for e in ce {
+            s.push_str(&format!(",{prefix}_{e}"));
+        }
     }
-    s.push('\n');
+    s.push_str(",composition_basis,match,match_quality\n");
     for p in &r.phases {
-        let name = if p.name.contains([',', '"']) {
-            format!("\"{}\"", p.name.replace('"', "\"\""))
-        } else {
-            p.name.clone()
-        };
+        let name = csv_field(&p.name);
         s.push_str(&format!(
             "{},{},{},{:.6},{:.6},{:.6},{},{:.3},{:.4}",
             p.id,
@@ -336,12 +398,29 @@ pub fn phases_csv(r: &Report) -> String {
             p.mean_ecd_px,
             p.mean_confidence
         ));
-        for m in [&p.mean, &p.sd, &p.composition_wt] {
+        for m in [&p.mean, &p.sd] {
             for e in &r.elements {
                 s.push_str(&format!(",{:.4}", m[e]));
             }
         }
-        s.push('\n');
+        for m in [
+            &p.composition_wt,
+            &p.composition_wt_sd,
+            &p.composition_at,
+            &p.composition_at_sd,
+        ] {
+            for e in ce {
+                s.push_str(&format!(",{:.3}", m[e]));
+            }
+        }
+        let (matched, quality) = match &p.reference {
+            Some(m) => (
+                csv_field(m.reference.as_deref().unwrap_or("no match")),
+                format!("{:.3}", m.quality),
+            ),
+            None => (String::new(), String::new()),
+        };
+        s.push_str(&format!(",{},{matched},{quality}\n", p.composition_basis));
     }
     s
 }
@@ -356,18 +435,32 @@ pub fn summary(r: &Report) -> String {
         r.phases.len()
     );
     s.push_str(&format!(
-        "  {:>3}  {:<16} {:>8} {:>17} {:>9}  {}\n",
-        "id", "phase", "area %", "95 % CI", "features", "apparent composition % (uncalibrated)"
+        "  {:>3}  {:<20} {:>8} {:>13} {:>9}  composition wt% ± 1σ ({}), match quality\n",
+        "id", "phase", "area %", "95 % CI", "features", r.composition.basis
     ));
     for p in &r.phases {
-        let comp: Vec<String> = r
+        let mut comp: Vec<String> = r
+            .composition
             .elements
             .iter()
             .filter(|e| p.composition_wt[*e] >= 1.0)
-            .map(|e| format!("{e} {:.0}", p.composition_wt[e]))
+            .map(|e| {
+                let sd = p.composition_wt_sd[e];
+                if sd < 0.1 {
+                    format!("{e} {:.2}±{sd:.2}", p.composition_wt[e])
+                } else {
+                    format!("{e} {:.1}±{sd:.1}", p.composition_wt[e])
+                }
+            })
             .collect();
+        if let Some(m) = &p.reference {
+            comp.push(match &m.reference {
+                Some(_) => format!("[{:.2}]", m.quality),
+                None => format!("[no match; closest {} {:.3}]", m.closest, m.quality),
+            });
+        }
         s.push_str(&format!(
-            "  {:>3}  {:<16} {:>8.2} {:>17} {:>9}  {}\n",
+            "  {:>3}  {:<20} {:>8.2} {:>13} {:>9}  {}\n",
             p.id,
             p.name,
             100.0 * p.area_fraction,
@@ -420,6 +513,16 @@ pub fn summary(r: &Report) -> String {
         }
         for f in &b.flags {
             s.push_str(&format!("    ! {}\n", f.message));
+        }
+    }
+    s.push_str(&format!("\n  composition: {}\n", r.composition.method));
+    for n in &r.composition.notes {
+        s.push_str(&format!("    - {n}\n"));
+    }
+    if !r.advisor.messages.is_empty() {
+        s.push_str("\n  beam-physics advice:\n");
+        for m in &r.advisor.messages {
+            s.push_str(&format!("    - {m}\n"));
         }
     }
     if !r.warnings.is_empty() {

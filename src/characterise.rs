@@ -1,0 +1,796 @@
+//! The composition stage: what each phase is made of and what to call it.
+//!
+//! Takes the phase table, the labels and the counts of a mapped field; sums each phase's
+//! counts over its interior pixels (clear of other phases by the X-ray range when the beam
+//! energy and pixel size are known, else by 2 pixels), subtracts the continuum, turns the
+//! net counts into mass and atom fractions with k-factors (none, from a file, or calibrated
+//! on phases of known composition; [`crate::chem::quant`]), matches each phase against the
+//! reference library ([`crate::library`]) and names it, and runs the beam-physics advisor
+//! ([`crate::advisor`]). It updates the table in place and returns what the report needs
+//! to say about the method.
+
+use std::collections::BTreeMap;
+use std::path::{Path, PathBuf};
+
+use serde::{Deserialize, Serialize};
+
+use crate::advisor::{self, Advice};
+use crate::chem::quant::{
+    self, calibrate, from_counts, quantify, Background, CalibrationError, KFactors, Oxygen,
+    PhaseCounts, Quantification, Rules, Standard,
+};
+use crate::chem::{element, parse_formula, Composition, ElementInfo};
+use crate::error::{Error, Result};
+use crate::library::{best_match, composition_from_wt, Library, Match};
+use crate::phases::{interior_counts, PhaseTable};
+use crate::stack::MapStack;
+
+/// The k-factor file format name and version.
+pub const KFACTOR_FORMAT: &str = "modalmap.kfactors/1";
+
+/// Pixels kept clear of other phases when the X-ray range is unknown (common practice, no
+/// source: about twice the blur of a typical map).
+pub const DEFAULT_CLEARANCE_PX: usize = 2;
+
+/// Largest clearance used, pixels (beyond it small phases lose every pixel).
+pub const MAX_CLEARANCE_PX: usize = 8;
+
+/// Oxygen rule as given on the command line.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default, Serialize, Deserialize, clap::ValueEnum)]
+#[serde(rename_all = "kebab-case")]
+pub enum OxygenMode {
+    /// From its map like any other element (or absent when not mapped).
+    #[default]
+    Measured,
+    /// From the other elements and their valences (oxides and silicates).
+    Stoichiometry,
+}
+
+/// Background rule as given on the command line.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default, Serialize, Deserialize, clap::ValueEnum)]
+#[serde(rename_all = "kebab-case")]
+pub enum BackgroundMode {
+    /// Continuum from the phase poorest in each element, scaled by mean Z.
+    #[default]
+    PoorestPhase,
+    /// No background subtracted (the maps hold net counts).
+    None,
+}
+
+/// The composition options as given.
+#[derive(Debug, Clone, PartialEq, Default, Serialize, Deserialize)]
+pub struct CompositionOptions {
+    /// k-factor file.
+    pub kfactors: Option<PathBuf>,
+    /// Calibration phases: `ID=COMPOSITION`, `NAME=COMPOSITION` or a library name.
+    pub calibrate: Vec<String>,
+    /// Oxygen rule.
+    pub oxygen: OxygenMode,
+    /// Valence overrides `El=N` for oxygen by stoichiometry.
+    pub valences: Vec<String>,
+    /// Background rule.
+    pub background: BackgroundMode,
+    /// Extra reference-phase libraries.
+    pub libraries: Vec<PathBuf>,
+}
+
+/// Which phase a calibration refers to.
+#[derive(Debug, Clone, PartialEq)]
+enum Selector {
+    Id(u16),
+    Name(String),
+}
+
+#[derive(Debug, Clone, PartialEq)]
+struct Calibration {
+    spec: String,
+    selector: Selector,
+    /// Name to give the phase, and its composition.
+    name: String,
+    composition: Composition,
+}
+
+#[derive(Debug, Clone, PartialEq)]
+struct KFactorFile {
+    path: PathBuf,
+    reference: Option<String>,
+    beam_kv: Option<f64>,
+    k: BTreeMap<String, f64>,
+}
+
+#[derive(Deserialize)]
+#[serde(deny_unknown_fields)]
+struct KFactorToml {
+    format: String,
+    reference: Option<String>,
+    beam_kv: Option<f64>,
+    k: BTreeMap<String, f64>,
+}
+
+/// Checked composition options.
+#[derive(Debug, Clone, PartialEq)]
+pub struct ValidCompositionOptions {
+    given: CompositionOptions,
+    kfile: Option<KFactorFile>,
+    calibrations: Vec<Calibration>,
+    valences: BTreeMap<String, f64>,
+    library: Library,
+}
+
+/// Default valences for oxygen by stoichiometry: the usual oxidation state in oxides and
+/// silicates, iron as Fe²⁺ as in microprobe oxide totals, halogens as anions (common
+/// practice, no source). Override with `--valence`.
+pub const DEFAULT_VALENCES: &[(&str, f64)] = &[
+    ("H", 1.0),
+    ("Li", 1.0),
+    ("Be", 2.0),
+    ("B", 3.0),
+    ("C", 4.0),
+    ("F", -1.0),
+    ("Na", 1.0),
+    ("Mg", 2.0),
+    ("Al", 3.0),
+    ("Si", 4.0),
+    ("P", 5.0),
+    ("S", 6.0),
+    ("Cl", -1.0),
+    ("K", 1.0),
+    ("Ca", 2.0),
+    ("Sc", 3.0),
+    ("Ti", 4.0),
+    ("V", 3.0),
+    ("Cr", 3.0),
+    ("Mn", 2.0),
+    ("Fe", 2.0),
+    ("Co", 2.0),
+    ("Ni", 2.0),
+    ("Cu", 2.0),
+    ("Zn", 2.0),
+    ("Ga", 3.0),
+    ("Ge", 4.0),
+    ("As", 5.0),
+    ("Br", -1.0),
+    ("Rb", 1.0),
+    ("Sr", 2.0),
+    ("Y", 3.0),
+    ("Zr", 4.0),
+    ("Nb", 5.0),
+    ("Mo", 6.0),
+    ("Ag", 1.0),
+    ("Cd", 2.0),
+    ("In", 3.0),
+    ("Sn", 4.0),
+    ("Sb", 3.0),
+    ("I", -1.0),
+    ("Cs", 1.0),
+    ("Ba", 2.0),
+    ("La", 3.0),
+    ("Ce", 3.0),
+    ("Pr", 3.0),
+    ("Nd", 3.0),
+    ("Sm", 3.0),
+    ("Eu", 3.0),
+    ("Gd", 3.0),
+    ("Tb", 3.0),
+    ("Dy", 3.0),
+    ("Ho", 3.0),
+    ("Er", 3.0),
+    ("Tm", 3.0),
+    ("Yb", 3.0),
+    ("Lu", 3.0),
+    ("Hf", 4.0),
+    ("Ta", 5.0),
+    ("W", 6.0),
+    ("Pb", 2.0),
+    ("Bi", 3.0),
+    ("Th", 4.0),
+    ("U", 4.0),
+];
+
+fn parse_composition_text(
+    text: &str,
+    library: &Library,
+) -> std::result::Result<(String, Composition), String> {
+    if let Some(r) = library.find(text) {
+        return Ok((r.name.clone(), r.composition.clone()));
+    }
+    if text.contains(':') {
+        let mut wt = BTreeMap::new();
+        for part in text.split(',') {
+            let (el, v) = part
+                .split_once(':')
+                .ok_or_else(|| format!("`{part}` is not El:wt%"))?;
+            let v: f64 = v
+                .trim()
+                .parse()
+                .map_err(|_| format!("`{}` is not a number", v.trim()))?;
+            wt.insert(el.trim().to_string(), v);
+        }
+        return composition_from_wt(&wt).map(|c| (text.to_string(), c));
+    }
+    let c = parse_formula(text).map_err(|e| e.to_string())?;
+    // A formula of a library phase takes the library's name.
+    let name = library
+        .phases
+        .iter()
+        .find(|r| r.formula.as_deref() == Some(text))
+        .map_or_else(|| text.to_string(), |r| r.name.clone());
+    Ok((name, c))
+}
+
+impl CompositionOptions {
+    /// Reads the files and checks every option.
+    pub fn check(&self) -> Result<ValidCompositionOptions> {
+        let mut library = Library::builtin();
+        for p in &self.libraries {
+            library.extend(Library::load(p)?);
+        }
+        if self.kfactors.is_some() && !self.calibrate.is_empty() {
+            return Err(Error::options(
+                "--kfactors and --calibrate both given",
+                "give k-factors from a file or calibrate on phases of known composition, not both",
+            ));
+        }
+        let kfile = self.kfactors.as_deref().map(read_kfactors).transpose()?;
+        let mut calibrations = Vec::new();
+        for spec in &self.calibrate {
+            let (sel, comp) = spec.split_once('=').unwrap_or((spec, spec));
+            let (sel, comp) = (sel.trim(), comp.trim());
+            let selector = match sel.parse::<u16>() {
+                Ok(id) if id > 0 => Selector::Id(id),
+                _ if !sel.is_empty() => Selector::Name(sel.to_string()),
+                _ => {
+                    return Err(Error::options(
+                        format!("--calibrate {spec}: no phase given"),
+                        "write --calibrate ID=FORMULA (e.g. 3=Cu6Sn5), NAME=FORMULA, or a library phase name",
+                    ))
+                }
+            };
+            let (name, composition) = parse_composition_text(comp, &library).map_err(|p| {
+                Error::options(
+                    format!("--calibrate {spec}: {p}"),
+                    "give a library phase name, a formula such as Cu6Sn5, or wt% such as Cu:39.1,Sn:60.9",
+                )
+            })?;
+            calibrations.push(Calibration {
+                spec: spec.clone(),
+                selector,
+                name,
+                composition,
+            });
+        }
+        let mut valences: BTreeMap<String, f64> = DEFAULT_VALENCES
+            .iter()
+            .map(|(s, v)| (s.to_string(), *v))
+            .collect();
+        for v in &self.valences {
+            let parsed = v.split_once('=').and_then(|(e, n)| {
+                let n: f64 = n.trim().parse().ok()?;
+                (element(e.trim()).is_some() && n.is_finite()).then(|| (e.trim().to_string(), n))
+            });
+            let Some((e, n)) = parsed else {
+                return Err(Error::options(
+                    format!("--valence {v} is not El=N"),
+                    "write the element symbol and its valence, e.g. --valence Fe=3 (negative for anions, e.g. S=-2)",
+                ));
+            };
+            valences.insert(e, n);
+        }
+        Ok(ValidCompositionOptions {
+            given: self.clone(),
+            kfile,
+            calibrations,
+            valences,
+            library,
+        })
+    }
+}
+
+impl ValidCompositionOptions {
+    /// The options as given.
+    pub fn options(&self) -> &CompositionOptions {
+        &self.given
+    }
+
+    /// The reference library in use.
+    pub fn library(&self) -> &Library {
+        &self.library
+    }
+}
+
+fn read_kfactors(path: &Path) -> Result<KFactorFile> {
+    let text = std::fs::read_to_string(path).map_err(|e| {
+        Error::options_in(
+            path,
+            format!("cannot be read: {e}"),
+            "check the --kfactors path",
+        )
+    })?;
+    let t: KFactorToml = toml::from_str(&text).map_err(|e| {
+        Error::options_in(
+            path,
+            format!("is not a valid k-factor file: {}", e.message()),
+            "write format = \"modalmap.kfactors/1\", optional reference = \"El\" and beam_kv, and a [k] table of El = factor",
+        )
+    })?;
+    if t.format != KFACTOR_FORMAT {
+        return Err(Error::options_in(
+            path,
+            format!("has format \"{}\", not \"{KFACTOR_FORMAT}\"", t.format),
+            format!("set format = \"{KFACTOR_FORMAT}\""),
+        ));
+    }
+    for (e, k) in &t.k {
+        if element(e).is_none() {
+            return Err(Error::options_in(
+                path,
+                format!("[k] names `{e}`, which is not an element symbol"),
+                "use case-sensitive element symbols such as Fe, Si",
+            ));
+        }
+        if !(k.is_finite() && *k > 0.0) {
+            return Err(Error::options_in(
+                path,
+                format!("k-factor of {e} is {k}, not a positive number"),
+                "give every factor as a positive number",
+            ));
+        }
+    }
+    if let Some(r) = &t.reference {
+        if !t.k.contains_key(r) {
+            return Err(Error::options_in(
+                path,
+                format!("reference element {r} has no entry in [k]"),
+                format!("add {r} = 1.0 under [k]"),
+            ));
+        }
+    }
+    Ok(KFactorFile {
+        path: path.to_path_buf(),
+        reference: t.reference,
+        beam_kv: t.beam_kv,
+        k: t.k,
+    })
+}
+
+/// A calibration phase as used, for the report.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct CalibrationUsed {
+    /// Phase id.
+    pub id: u16,
+    /// The name it was given.
+    pub name: String,
+    /// As written on the command line.
+    pub spec: String,
+}
+
+/// What the report says about the compositions.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct CompositionReport {
+    /// `uncalibrated`, `k-factors` or `calibrated`.
+    pub basis: String,
+    /// One sentence on how the numbers were made.
+    pub method: String,
+    /// Elements of the compositions.
+    pub elements: Vec<String>,
+    /// k-factor per element quantified from counts (relative to `reference_element`).
+    pub k_factors: BTreeMap<String, f64>,
+    /// Relative standard deviation of each factor.
+    pub k_factor_rel_sd: BTreeMap<String, f64>,
+    /// The element whose factor is 1.
+    pub reference_element: Option<String>,
+    /// The calibration phases.
+    pub calibration: Vec<CalibrationUsed>,
+    /// Background handling per mapped element.
+    pub background: BTreeMap<String, String>,
+    /// Oxygen rule.
+    pub oxygen: String,
+    /// Pixels kept clear of other phases when summing counts.
+    pub clearance_px: usize,
+    /// What the ± values are.
+    pub uncertainty: String,
+    /// Things to know about these compositions.
+    pub notes: Vec<String>,
+}
+
+/// Mapped elements with the line named with each map.
+fn mapped(counts: &MapStack) -> Vec<(ElementInfo, Option<String>)> {
+    counts
+        .maps()
+        .iter()
+        .map(|m| (m.element, m.line.clone()))
+        .collect()
+}
+
+fn unique_names(names: Vec<String>) -> Vec<String> {
+    let mut seen: Vec<String> = Vec::new();
+    names
+        .into_iter()
+        .map(|n| {
+            let repeats = seen.iter().filter(|s| **s == n).count();
+            seen.push(n.clone());
+            if repeats > 0 {
+                format!("{n} ({})", repeats + 1)
+            } else {
+                n
+            }
+        })
+        .collect()
+}
+
+/// Runs the composition stage on a mapped field (see the module docs).
+pub fn characterise(
+    table: &mut PhaseTable,
+    labels: &[u16],
+    width: usize,
+    height: usize,
+    counts: &MapStack,
+    opts: &ValidCompositionOptions,
+) -> Result<(CompositionReport, Advice)> {
+    let md = counts.metadata();
+    let lines = mapped(counts);
+    let infos: Vec<ElementInfo> = lines.iter().map(|l| l.0).collect();
+    let k = table.phases.len();
+    let mut notes = Vec::new();
+    let oxygen = match opts.given.oxygen {
+        OxygenMode::Measured => Oxygen::Measured,
+        OxygenMode::Stoichiometry => {
+            let mut v = Vec::new();
+            for e in &infos {
+                match opts.valences.get(e.symbol) {
+                    Some(x) => v.push(*x),
+                    None if e.symbol == "O" => v.push(-2.0),
+                    None => {
+                        return Err(Error::options(
+                            format!(
+                            "oxygen by stoichiometry needs a valence for {}, which has no default",
+                            e.symbol
+                        ),
+                            format!("give it with --valence {}=N", e.symbol),
+                        ))
+                    }
+                }
+            }
+            Oxygen::Stoichiometry { valences: v }
+        }
+    };
+    let quantified: Vec<bool> = infos.iter().map(|e| from_counts(e, &oxygen)).collect();
+    let calibrated_basis = opts.kfile.is_some() || !opts.calibrations.is_empty();
+
+    // Sums over interior pixels; widen the clearance to half the X-ray range when known.
+    let sums_at = |clearance: usize| -> Vec<(PhaseCounts, bool)> {
+        interior_counts(labels, width, height, counts, k, clearance)
+    };
+    let background_of = |sums: &[PhaseCounts]| match opts.given.background {
+        BackgroundMode::PoorestPhase => Background::lowest_phase(sums, infos.len()),
+        BackgroundMode::None => Background::none(infos.len()),
+    };
+    let run = |sums: &[PhaseCounts], kf: &KFactors| -> Quantification {
+        quantify(
+            &infos,
+            sums,
+            &Rules {
+                k: kf.clone(),
+                oxygen: oxygen.clone(),
+                background: background_of(sums),
+            },
+        )
+    };
+    let match_all = |q: &Quantification, calibrated: bool| -> Vec<Option<Match>> {
+        q.phases
+            .iter()
+            .map(|p| best_match(&opts.library, &q.elements, &p.wt, &p.wt_sd, calibrated))
+            .collect()
+    };
+    let mut clearance = DEFAULT_CLEARANCE_PX;
+    let mut sums = sums_at(clearance);
+    let plain: Vec<PhaseCounts> = sums.iter().map(|s| s.0.clone()).collect();
+    let first = run(&plain, &KFactors::unit(infos.len()));
+    let first_matches = match_all(&first, false);
+    if let (Some(_), Some(px)) = (md.beam_kv, md.pixel_size_um) {
+        let inputs: Vec<_> = table
+            .phases
+            .iter()
+            .zip(&first.phases)
+            .zip(&first_matches)
+            .map(|((p, c), m)| {
+                let rd = m
+                    .as_ref()
+                    .and_then(|m| m.density.map(|d| (d, m.closest.clone())));
+                advisor::phase_input(p.id, &p.name, &first.elements, &c.wt, rd)
+            })
+            .collect();
+        let a = advisor::advise(&lines, md.beam_kv, md.pixel_size_um, &inputs);
+        if let Some(r) = a.largest_xray_range_um() {
+            let want = (r / (2.0 * px)).ceil() as usize;
+            clearance = want.clamp(DEFAULT_CLEARANCE_PX, MAX_CLEARANCE_PX);
+            if clearance != DEFAULT_CLEARANCE_PX {
+                sums = sums_at(clearance);
+            }
+        }
+    }
+    let plain: Vec<PhaseCounts> = sums.iter().map(|s| s.0.clone()).collect();
+
+    // k-factors.
+    let mut calibration_used = Vec::new();
+    let mut forced_names: BTreeMap<usize, String> = BTreeMap::new();
+    let (kf, basis, method) = if let Some(f) = &opts.kfile {
+        let mut k = vec![f64::NAN; infos.len()];
+        for (i, e) in infos.iter().enumerate() {
+            if !quantified[i] {
+                continue;
+            }
+            k[i] = *f.k.get(e.symbol).ok_or_else(|| {
+                Error::options_in(
+                    &f.path,
+                    format!("has no k-factor for {}, which is mapped", e.symbol),
+                    format!("add {} = factor under [k]", e.symbol),
+                )
+            })?;
+        }
+        for e in f.k.keys() {
+            if !infos.iter().any(|i| i.symbol == e) {
+                notes.push(format!(
+                    "the k-factor file lists {e}, which is not mapped; ignored"
+                ));
+            }
+        }
+        if let (Some(a), Some(b)) = (f.beam_kv, md.beam_kv) {
+            if (a - b).abs() > 0.5 {
+                notes.push(format!(
+                    "the k-factors were measured at {a} kV but the maps at {b} kV: k-factors change with the beam energy; measure them at the mapping conditions"
+                ));
+            }
+        }
+        let reference = f
+            .reference
+            .as_deref()
+            .and_then(|r| infos.iter().position(|e| e.symbol == r))
+            .unwrap_or_else(|| quantified.iter().position(|&q| q).unwrap_or(0));
+        let scale = k[reference];
+        k.iter_mut().for_each(|x| *x /= scale);
+        (
+            KFactors {
+                k,
+                rel_sd: vec![0.0; infos.len()],
+                reference,
+            },
+            "k-factors",
+            format!("k-factors from {}", f.path.display()),
+        )
+    } else if !opts.calibrations.is_empty() {
+        let mut standards = Vec::new();
+        for c in &opts.calibrations {
+            let idx = resolve(&c.selector, table, &first_matches)
+                .map_err(|(p, fix)| Error::options(format!("--calibrate {}: {p}", c.spec), fix))?;
+            if forced_names.contains_key(&idx) {
+                return Err(Error::options(
+                    format!(
+                        "--calibrate {}: phase {} is already a calibration phase",
+                        c.spec,
+                        idx + 1
+                    ),
+                    "name each calibration phase once",
+                ));
+            }
+            let net = &first.phases[idx];
+            // Net rates and variances with the current background, unit factors.
+            standards.push(Standard {
+                net: net.net_rate.clone(),
+                var: net.net_var.clone(),
+                known: infos
+                    .iter()
+                    .map(|e| c.composition.mass_fraction_of(e.symbol))
+                    .collect(),
+            });
+            forced_names.insert(idx, c.name.clone());
+            calibration_used.push(CalibrationUsed {
+                id: table.phases[idx].id,
+                name: c.name.clone(),
+                spec: c.spec.clone(),
+            });
+        }
+        let kf = calibrate(&standards, &quantified).map_err(|e| match e {
+            CalibrationError::NotReached(els) => {
+                let names: Vec<&str> = els.iter().map(|&i| infos[i].symbol).collect();
+                Error::options(
+                    format!(
+                        "the calibration phases give no k-factor for {} (no calibration phase contains it, or none shares an element with the others)",
+                        names.join(", ")
+                    ),
+                    "add a calibration phase that contains it (repeat --calibrate ID=FORMULA), or give every factor in a --kfactors file",
+                )
+            }
+            CalibrationError::NoCounts(s, e) => Error::options(
+                format!(
+                    "--calibrate {}: the phase should contain {} but shows no net counts of it",
+                    opts.calibrations[s].spec, infos[e].symbol
+                ),
+                "check the phase id and formula, and that the line of this element is excited",
+            ),
+        })?;
+        let desc: Vec<String> = calibration_used
+            .iter()
+            .map(|c| format!("phase {} = {}", c.id, c.name))
+            .collect();
+        (
+            kf,
+            "calibrated",
+            format!("k-factors calibrated on {}", desc.join(" and ")),
+        )
+    } else {
+        (
+            KFactors::unit(infos.len()),
+            "uncalibrated",
+            "uncalibrated: every k-factor 1, so the numbers are shares of the net counts, not concentrations".to_string(),
+        )
+    };
+    // Recompute with the (possibly widened) sums and the factors.
+    let q = run(&plain, &kf);
+    let matches = match_all(&q, calibrated_basis);
+    let background = background_of(&plain);
+
+    // Names: calibration phases keep the name they were given; others take their match.
+    let names: Vec<String> = table
+        .phases
+        .iter()
+        .enumerate()
+        .map(|(i, p)| {
+            forced_names
+                .get(&i)
+                .cloned()
+                .or_else(|| matches[i].as_ref().and_then(|m| m.reference.clone()))
+                .unwrap_or_else(|| p.name.clone())
+        })
+        .collect();
+    let names = unique_names(names);
+    for (i, p) in table.phases.iter_mut().enumerate() {
+        p.name = names[i].clone();
+        p.composition = q.phases[i].clone();
+        p.composition_pixels = sums[i].0.pixels;
+        p.reference = matches[i].clone();
+        if !sums[i].1 {
+            notes.push(format!(
+                "phase {} ({}): no pixel lies {clearance} px clear of other phases, so its composition comes from all its pixels and is mixed with its neighbours",
+                p.id, p.name
+            ));
+        }
+    }
+    table.composition_elements = q.elements.iter().map(|e| e.symbol.to_string()).collect();
+    table.composition_method = method.clone();
+
+    let background_notes: BTreeMap<String, String> = infos
+        .iter()
+        .enumerate()
+        .map(|(i, e)| {
+            let s = match (opts.given.background, background.from[i]) {
+                (BackgroundMode::None, _) => "none subtracted (--background none)".to_string(),
+                (_, Some(b)) => format!(
+                    "continuum from phase {} ({}), taken as free of {}, scaled by mean atomic number",
+                    table.phases[b].id, table.phases[b].name, e.symbol
+                ),
+                (_, None) => format!(
+                    "none subtracted: no phase has under {:.0} % of the richest phase's counts",
+                    100.0 * quant::FREE_SHARE
+                ),
+            };
+            (e.symbol.to_string(), s)
+        })
+        .collect();
+    if !infos.iter().any(|e| e.symbol == "O") && opts.given.oxygen == OxygenMode::Measured {
+        notes.push("oxygen is not mapped: compositions cover the mapped elements only; for oxides and silicates use --oxygen stoichiometry".into());
+    }
+    let oxygen_text = match &oxygen {
+        Oxygen::Measured => "from its map, like every other element (when mapped)".to_string(),
+        Oxygen::Stoichiometry { valences } => {
+            let v: Vec<String> = infos
+                .iter()
+                .zip(valences)
+                .filter(|(e, _)| e.symbol != "O")
+                .map(|(e, v)| format!("{} {v:+}", e.symbol))
+                .collect();
+            format!("by stoichiometry from the valences {}", v.join(", "))
+        }
+    };
+    let reference_element =
+        (basis != "uncalibrated").then(|| infos[kf.reference].symbol.to_string());
+    let report = CompositionReport {
+        basis: basis.into(),
+        method,
+        elements: table.composition_elements.clone(),
+        k_factors: infos
+            .iter()
+            .zip(&kf.k)
+            .filter(|(_, k)| k.is_finite())
+            .map(|(e, k)| (e.symbol.to_string(), *k))
+            .collect(),
+        k_factor_rel_sd: infos
+            .iter()
+            .zip(&kf.k)
+            .zip(&kf.rel_sd)
+            .filter(|((_, k), _)| k.is_finite())
+            .map(|((e, _), s)| (e.symbol.to_string(), *s))
+            .collect(),
+        reference_element,
+        calibration: calibration_used,
+        background: background_notes,
+        oxygen: oxygen_text,
+        clearance_px: clearance,
+        uncertainty: "± is one standard deviation from counting statistics (Poisson) of the summed counts, the background and the calibration; it leaves out the error of the ratio method itself".into(),
+        notes,
+    };
+
+    let inputs: Vec<_> = table
+        .phases
+        .iter()
+        .zip(&q.phases)
+        .zip(&matches)
+        .map(|((p, c), m)| {
+            let rd = m.as_ref().filter(|m| m.reference.is_some()).and_then(|m| {
+                m.density
+                    .map(|d| (d, format!("reference phase {}", m.closest)))
+            });
+            advisor::phase_input(p.id, &p.name, &q.elements, &c.wt, rd)
+        })
+        .collect();
+    let advice = advisor::advise(&lines, md.beam_kv, md.pixel_size_um, &inputs);
+    Ok((report, advice))
+}
+
+/// The phase (index into the table) a calibration selector names.
+fn resolve(
+    sel: &Selector,
+    table: &PhaseTable,
+    matches: &[Option<Match>],
+) -> std::result::Result<usize, (String, String)> {
+    let k = table.phases.len();
+    match sel {
+        Selector::Id(id) => {
+            let i = usize::from(*id) - 1;
+            if i < k {
+                Ok(i)
+            } else {
+                Err((
+                    format!("there is no phase {id}: the field has {k} phases"),
+                    format!("give a phase id from 1 to {k} (see phases.csv of a first run)"),
+                ))
+            }
+        }
+        Selector::Name(name) => {
+            let hits: Vec<usize> = (0..k)
+                .filter(|&i| {
+                    table.phases[i].name.eq_ignore_ascii_case(name)
+                        || matches[i]
+                            .as_ref()
+                            .is_some_and(|m| m.closest.eq_ignore_ascii_case(name))
+                })
+                .collect();
+            let names: Vec<String> = table
+                .phases
+                .iter()
+                .zip(matches)
+                .map(|(p, m)| match m {
+                    Some(m) => format!("{} ({}, closest {})", p.id, p.name, m.closest),
+                    None => format!("{} ({})", p.id, p.name),
+                })
+                .collect();
+            match hits.as_slice() {
+                [i] => Ok(*i),
+                [] => Err((
+                    format!(
+                        "no phase is called \"{name}\" (phases: {})",
+                        names.join("; ")
+                    ),
+                    "use the phase id instead, e.g. --calibrate 3=Cu6Sn5".into(),
+                )),
+                _ => Err((
+                    format!(
+                        "several phases could be \"{name}\" (phases: {})",
+                        names.join("; ")
+                    ),
+                    "use the phase id instead, e.g. --calibrate 3=Cu6Sn5".into(),
+                )),
+            }
+        }
+    }
+}

@@ -1,0 +1,635 @@
+//! Compositions from counts: the k-factor ratio method, calibration on a phase of known
+//! composition, oxygen by stoichiometry, and counting-statistics uncertainties.
+//!
+//! **The ratio method.** Cliff & Lorimer (1975) wrote C_A/C_B = k_AB · I_A/I_B for mass
+//! fractions C and net intensities I. With every factor taken relative to one reference
+//! element R (k_RR = 1) and the fractions normalised to 1:
+//! C_i = k_iR I_i / Σ_j k_jR I_j. This module uses that convention throughout (a factor
+//! *multiplies* the intensity). The method was made for thin foils; in a bulk specimen the
+//! intensity also depends on the matrix (atomic number, absorption and fluorescence), so the
+//! numbers are semi-quantitative unless the matrix is close to that of the calibration
+//! phase. Accurate bulk analysis needs standards and ZAF or φ(ρz) corrections.
+//!
+//! **Background.** Element maps hold gross counts: characteristic X-rays plus the
+//! continuum under the peak. By default the continuum of each element's window is taken
+//! from the phase with the fewest counts of it, when that phase has under
+//! [`FREE_SHARE`] of the richest phase's counts (it is then taken to be free of the
+//! element), and scaled to every other phase by the ratio of mean atomic numbers, since the
+//! continuum grows in proportion to Z (Kramers 1923). Where no phase is that poor in an
+//! element, nothing is subtracted and the report says so.
+//!
+//! **Uncertainty.** Counts are Poisson: the sum N of counts over a phase's pixels has
+//! variance N. The variances of the gross counts, of the background estimate and of the
+//! calibrated factors are carried to the mass and atom fractions by first-order
+//! propagation (numerical derivatives of the whole calculation). The result is the
+//! counting-statistics part of the uncertainty only (one standard deviation): it says how
+//! well the counts pin the numbers down, not how right the ratio method is.
+
+use nalgebra::{DMatrix, DVector};
+use serde::{Deserialize, Serialize};
+
+use super::ElementInfo;
+
+/// A phase with under this share of the richest phase's counts of an element is taken to
+/// be free of it, and its counts to be continuum background (common practice, no source).
+pub const FREE_SHARE: f64 = 0.10;
+
+/// Summed raw counts of each mapped element over the pixels a phase's composition comes
+/// from.
+#[derive(Debug, Clone, PartialEq)]
+pub struct PhaseCounts {
+    /// Pixels summed.
+    pub pixels: usize,
+    /// Sum of counts per mapped element.
+    pub sums: Vec<f64>,
+}
+
+impl PhaseCounts {
+    fn rate(&self, e: usize) -> f64 {
+        self.sums[e] / self.pixels.max(1) as f64
+    }
+
+    fn rate_var(&self, e: usize) -> f64 {
+        self.sums[e].max(1.0) / (self.pixels.max(1) as f64).powi(2)
+    }
+}
+
+/// Sensitivity factors, one per mapped element (`k_iR` of the module docs).
+#[derive(Debug, Clone, PartialEq)]
+pub struct KFactors {
+    /// Factor per mapped element; `NaN` where the element is not quantified from its
+    /// counts (oxygen by stoichiometry).
+    pub k: Vec<f64>,
+    /// Relative standard deviation of each factor (0 for factors given as exact).
+    pub rel_sd: Vec<f64>,
+    /// Index of the reference element (factor 1).
+    pub reference: usize,
+}
+
+impl KFactors {
+    /// Every factor 1: the apparent, uncalibrated composition.
+    pub fn unit(n: usize) -> KFactors {
+        KFactors {
+            k: vec![1.0; n],
+            rel_sd: vec![0.0; n],
+            reference: 0,
+        }
+    }
+}
+
+/// How oxygen is obtained.
+#[derive(Debug, Clone, PartialEq)]
+pub enum Oxygen {
+    /// From its map like any element (or absent, if not mapped).
+    Measured,
+    /// From the other elements' amounts and valences: O atoms = Σ n_i v_i / 2, with anions
+    /// (negative valence) taking their share of the cations' charge. Oxygen's own map,
+    /// if any, is not used.
+    Stoichiometry {
+        /// Valence per mapped element (same order as the elements).
+        valences: Vec<f64>,
+    },
+}
+
+/// The continuum background of each mapped element.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Background {
+    /// Per mapped element: the phase taken to be free of it (index into the phases), if
+    /// any.
+    pub from: Vec<Option<usize>>,
+}
+
+impl Background {
+    /// No background subtracted.
+    pub fn none(n: usize) -> Background {
+        Background {
+            from: vec![None; n],
+        }
+    }
+
+    /// Finds, per element, the phase with the fewest counts of it, if it has under
+    /// [`FREE_SHARE`] of the richest phase's counts.
+    pub fn lowest_phase(phases: &[PhaseCounts], n_elements: usize) -> Background {
+        let from = (0..n_elements)
+            .map(|e| {
+                let usable = || phases.iter().enumerate().filter(|(_, p)| p.pixels > 0);
+                let (lo, plo) = usable().min_by(|a, b| a.1.rate(e).total_cmp(&b.1.rate(e)))?;
+                let hi = usable().map(|(_, p)| p.rate(e)).fold(0.0, f64::max);
+                (phases.len() > 1 && hi > 0.0 && plo.rate(e) <= FREE_SHARE * hi).then_some(lo)
+            })
+            .collect();
+        Background { from }
+    }
+}
+
+/// Composition of one phase over the output elements.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct PhaseComposition {
+    /// Mass fractions, % (sum 100).
+    pub wt: Vec<f64>,
+    /// One standard deviation of `wt` from counting statistics, %.
+    pub wt_sd: Vec<f64>,
+    /// Atom fractions, % (sum 100).
+    pub at: Vec<f64>,
+    /// One standard deviation of `at`, %.
+    pub at_sd: Vec<f64>,
+    /// Net counts per pixel after background, per mapped element.
+    pub net_rate: Vec<f64>,
+    /// Variance of `net_rate` from counting statistics.
+    pub net_var: Vec<f64>,
+}
+
+/// Compositions of every phase.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Quantification {
+    /// Output elements: the mapped ones, plus oxygen by stoichiometry when not mapped.
+    pub elements: Vec<ElementInfo>,
+    /// Per phase, in the order given.
+    pub phases: Vec<PhaseComposition>,
+}
+
+/// Everything the calculation needs besides the counts.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Rules {
+    /// Sensitivity factors.
+    pub k: KFactors,
+    /// Oxygen rule.
+    pub oxygen: Oxygen,
+    /// Continuum background.
+    pub background: Background,
+}
+
+/// Output elements for `mapped` under an oxygen rule.
+pub fn output_elements(mapped: &[ElementInfo], oxygen: &Oxygen) -> Vec<ElementInfo> {
+    let mut out = mapped.to_vec();
+    if matches!(oxygen, Oxygen::Stoichiometry { .. }) && !out.iter().any(|e| e.symbol == "O") {
+        out.push(super::element("O").expect("oxygen is an element"));
+    }
+    out
+}
+
+/// True if element `e` is quantified from its own counts under the rule.
+pub fn from_counts(e: &ElementInfo, oxygen: &Oxygen) -> bool {
+    !(e.symbol == "O" && matches!(oxygen, Oxygen::Stoichiometry { .. }))
+}
+
+/// Mass fractions (sum 1) over `out` from net intensities `net` and factors `k` of the
+/// mapped elements. Negative intensities count as zero.
+fn mass_fractions(
+    mapped: &[ElementInfo],
+    out: &[ElementInfo],
+    net: &[f64],
+    k: &[f64],
+    oxygen: &Oxygen,
+) -> Vec<f64> {
+    let mut mass = vec![0.0; out.len()];
+    for (i, e) in mapped.iter().enumerate() {
+        if from_counts(e, oxygen) {
+            mass[i] = k[i] * net[i].max(0.0);
+        }
+    }
+    if let Oxygen::Stoichiometry { valences } = oxygen {
+        let charge: f64 = mapped
+            .iter()
+            .enumerate()
+            .filter(|(_, e)| e.symbol != "O")
+            .map(|(i, e)| mass[i] / e.atomic_weight * valences[i])
+            .sum();
+        let o = out.iter().position(|e| e.symbol == "O").expect("O output");
+        mass[o] = (charge / 2.0).max(0.0) * out[o].atomic_weight;
+    }
+    let total: f64 = mass.iter().sum();
+    if total > 0.0 {
+        mass.iter_mut().for_each(|m| *m /= total);
+    }
+    mass
+}
+
+fn atom_fractions(out: &[ElementInfo], wt: &[f64]) -> Vec<f64> {
+    let moles: Vec<f64> = out
+        .iter()
+        .zip(wt)
+        .map(|(e, w)| w / e.atomic_weight)
+        .collect();
+    let total: f64 = moles.iter().sum();
+    moles
+        .iter()
+        .map(|m| if total > 0.0 { m / total } else { 0.0 })
+        .collect()
+}
+
+/// Net intensity (counts per pixel) of every mapped element in every phase, with its
+/// variance, given a mean atomic number per phase for the continuum scaling.
+fn net_rates(
+    phases: &[PhaseCounts],
+    background: &Background,
+    zbar: &[f64],
+) -> Vec<(Vec<f64>, Vec<f64>)> {
+    phases
+        .iter()
+        .enumerate()
+        .map(|(p, pc)| {
+            let n = pc.sums.len();
+            let mut net = vec![0.0; n];
+            let mut var = vec![0.0; n];
+            for e in 0..n {
+                net[e] = pc.rate(e);
+                var[e] = pc.rate_var(e);
+                if let Some(b) = background.from[e] {
+                    if b == p {
+                        // The phase the background is taken from is free of the element.
+                        net[e] = 0.0;
+                        continue;
+                    }
+                    let scale = if zbar[b] > 0.0 {
+                        zbar[p] / zbar[b]
+                    } else {
+                        1.0
+                    };
+                    net[e] -= scale * phases[b].rate(e);
+                    var[e] += scale * scale * phases[b].rate_var(e);
+                }
+            }
+            (net, var)
+        })
+        .collect()
+}
+
+/// Mass-fraction mean atomic number.
+fn mean_z(out: &[ElementInfo], wt: &[f64]) -> f64 {
+    out.iter().zip(wt).map(|(e, w)| w * f64::from(e.z)).sum()
+}
+
+/// Computes the compositions of all phases.
+pub fn quantify(mapped: &[ElementInfo], phases: &[PhaseCounts], rules: &Rules) -> Quantification {
+    let out = output_elements(mapped, &rules.oxygen);
+    let n = mapped.len();
+    // Mean Z per phase for the continuum scaling: start from the gross counts, iterate.
+    let mut zbar: Vec<f64> = phases
+        .iter()
+        .map(|p| {
+            let rates: Vec<f64> = (0..n).map(|e| p.rate(e)).collect();
+            mean_z(
+                &out,
+                &mass_fractions(mapped, &out, &rates, &rules.k.k, &rules.oxygen),
+            )
+        })
+        .collect();
+    let mut nets = net_rates(phases, &rules.background, &zbar);
+    for _ in 0..4 {
+        zbar = nets
+            .iter()
+            .map(|(net, _)| {
+                mean_z(
+                    &out,
+                    &mass_fractions(mapped, &out, net, &rules.k.k, &rules.oxygen),
+                )
+            })
+            .collect();
+        nets = net_rates(phases, &rules.background, &zbar);
+    }
+    let compositions = nets
+        .into_iter()
+        .map(|(net, var)| {
+            let f = |net: &[f64], k: &[f64]| {
+                let wt = mass_fractions(mapped, &out, net, k, &rules.oxygen);
+                let at = atom_fractions(&out, &wt);
+                (wt, at)
+            };
+            let (wt, at) = f(&net, &rules.k.k);
+            // First-order propagation with central differences, input by input.
+            let mut wt_var = vec![0.0; out.len()];
+            let mut at_var = vec![0.0; out.len()];
+            let mut add = |sd: f64, shifted: &dyn Fn(f64) -> (Vec<f64>, Vec<f64>)| {
+                if sd <= 0.0 || !sd.is_finite() {
+                    return;
+                }
+                let (wp, ap) = shifted(sd * 1e-3);
+                let (wm, am) = shifted(-sd * 1e-3);
+                for o in 0..out.len() {
+                    wt_var[o] += ((wp[o] - wm[o]) / 2e-3).powi(2);
+                    at_var[o] += ((ap[o] - am[o]) / 2e-3).powi(2);
+                }
+            };
+            for e in 0..n {
+                add(var[e].sqrt(), &|h| {
+                    let mut x = net.clone();
+                    x[e] += h;
+                    f(&x, &rules.k.k)
+                });
+                let k_sd = rules.k.k[e] * rules.k.rel_sd[e];
+                add(k_sd, &|h| {
+                    let mut k = rules.k.k.clone();
+                    k[e] += h;
+                    f(&net, &k)
+                });
+            }
+            let pct = |v: &[f64]| v.iter().map(|x| 100.0 * x).collect::<Vec<_>>();
+            let pct_sd = |v: &[f64]| v.iter().map(|x| 100.0 * x.sqrt()).collect::<Vec<_>>();
+            PhaseComposition {
+                wt: pct(&wt),
+                wt_sd: pct_sd(&wt_var),
+                at: pct(&at),
+                at_sd: pct_sd(&at_var),
+                net_rate: net,
+                net_var: var,
+            }
+        })
+        .collect();
+    Quantification {
+        elements: out,
+        phases: compositions,
+    }
+}
+
+/// A phase of known composition used to calibrate the factors.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Standard {
+    /// Net counts per pixel per mapped element, with their variances.
+    pub net: Vec<f64>,
+    /// Variances of `net`.
+    pub var: Vec<f64>,
+    /// Known mass fractions per mapped element (any scale).
+    pub known: Vec<f64>,
+}
+
+/// Why a calibration failed.
+#[derive(Debug, Clone, PartialEq)]
+pub enum CalibrationError {
+    /// These mapped elements (indices) occur in no standard, or in no standard linked to
+    /// the others by a shared element.
+    NotReached(Vec<usize>),
+    /// A standard should contain this element (standard index, element index) but shows
+    /// no net counts of it.
+    NoCounts(usize, usize),
+}
+
+/// Derives factors from standards by weighted least squares on logarithms: for each
+/// standard s and element i it contains, ln k_i − a_s = ln(C_si / I_si), weighted by the
+/// inverse relative variance of I_si; a_s is the standard's unknown scale. One standard
+/// with every element is solved exactly; several standards are linked through shared
+/// elements. `quantified` marks the elements that need a factor.
+pub fn calibrate(
+    standards: &[Standard],
+    quantified: &[bool],
+) -> Result<KFactors, CalibrationError> {
+    let n = quantified.len();
+    // Which elements each standard constrains.
+    let mut obs: Vec<(usize, usize, f64, f64)> = Vec::new(); // (standard, element, y, weight)
+    for (s, st) in standards.iter().enumerate() {
+        for (e, &q) in quantified.iter().enumerate() {
+            if !q || st.known[e] <= 0.0 {
+                continue;
+            }
+            if st.net[e] <= 0.0 {
+                return Err(CalibrationError::NoCounts(s, e));
+            }
+            let rel_var = st.var[e] / (st.net[e] * st.net[e]) + 1e-10;
+            obs.push((s, e, (st.known[e] / st.net[e]).ln(), 1.0 / rel_var));
+        }
+    }
+    // Union–find over elements, linked through standards.
+    let mut parent: Vec<usize> = (0..n).collect();
+    fn root(p: &mut [usize], mut i: usize) -> usize {
+        while p[i] != i {
+            p[i] = p[p[i]];
+            i = p[i];
+        }
+        i
+    }
+    for s in 0..standards.len() {
+        let members: Vec<usize> = obs.iter().filter(|o| o.0 == s).map(|o| o.1).collect();
+        for w in members.windows(2) {
+            let (a, b) = (root(&mut parent, w[0]), root(&mut parent, w[1]));
+            parent[a] = b;
+        }
+    }
+    let seen: Vec<bool> = (0..n).map(|e| obs.iter().any(|o| o.1 == e)).collect();
+    // Reference: the element with the most weight of evidence.
+    let reference = (0..n)
+        .filter(|&e| seen[e])
+        .max_by(|&a, &b| {
+            let w = |e: usize| obs.iter().filter(|o| o.1 == e).map(|o| o.3).sum::<f64>();
+            w(a).total_cmp(&w(b)).then(b.cmp(&a))
+        })
+        .ok_or_else(|| CalibrationError::NotReached((0..n).filter(|&e| quantified[e]).collect()))?;
+    let r = root(&mut parent, reference);
+    let missing: Vec<usize> = (0..n)
+        .filter(|&e| quantified[e] && (!seen[e] || root(&mut parent, e) != r))
+        .collect();
+    if !missing.is_empty() {
+        return Err(CalibrationError::NotReached(missing));
+    }
+    // Unknowns: ln k for every quantified element except the reference, then a_s.
+    let elems: Vec<usize> = (0..n)
+        .filter(|&e| quantified[e] && e != reference)
+        .collect();
+    let used: Vec<usize> = (0..standards.len())
+        .filter(|s| obs.iter().any(|o| o.0 == *s))
+        .collect();
+    let m = elems.len() + used.len();
+    let mut ata = DMatrix::<f64>::zeros(m, m);
+    let mut atb = DVector::<f64>::zeros(m);
+    for &(s, e, y, w) in &obs {
+        let mut row = vec![0.0; m];
+        if let Some(i) = elems.iter().position(|&x| x == e) {
+            row[i] = 1.0;
+        }
+        let j = elems.len() + used.iter().position(|&x| x == s).expect("used standard");
+        row[j] = -1.0;
+        for a in 0..m {
+            atb[a] += w * row[a] * y;
+            for b in 0..m {
+                ata[(a, b)] += w * row[a] * row[b];
+            }
+        }
+    }
+    let inv = ata
+        .try_inverse()
+        .ok_or_else(|| CalibrationError::NotReached(elems.clone()))?;
+    let x = &inv * atb;
+    let mut k = vec![f64::NAN; n];
+    let mut rel_sd = vec![0.0; n];
+    k[reference] = 1.0;
+    for (i, &e) in elems.iter().enumerate() {
+        k[e] = x[i].exp();
+        rel_sd[e] = inv[(i, i)].max(0.0).sqrt();
+    }
+    Ok(KFactors {
+        k,
+        rel_sd,
+        reference,
+    })
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::chem::{element, parse_formula};
+
+    fn els(s: &[&str]) -> Vec<ElementInfo> {
+        s.iter().map(|x| element(x).unwrap()).collect()
+    }
+
+    /// Cliff–Lorimer worked example (REFERENCES.md §8, computed there): I_A/I_B = 2.0 and
+    /// k_AB = 1.5 give C_A/C_B = 3, so C_A = 0.75 and C_B = 0.25.
+    #[test]
+    fn ratio_method_worked_example() {
+        let mapped = els(&["Cu", "Sn"]);
+        let phases = [PhaseCounts {
+            pixels: 1000,
+            sums: vec![2.0e6, 1.0e6],
+        }];
+        let rules = Rules {
+            k: KFactors {
+                k: vec![1.5, 1.0],
+                rel_sd: vec![0.0; 2],
+                reference: 1,
+            },
+            oxygen: Oxygen::Measured,
+            background: Background::none(2),
+        };
+        let q = quantify(&mapped, &phases, &rules);
+        assert!((q.phases[0].wt[0] - 75.0).abs() < 1e-9);
+        assert!((q.phases[0].wt[1] - 25.0).abs() < 1e-9);
+    }
+
+    /// Counting uncertainty of a two-element phase: with C_A = I_A/(I_A + I_B) and Poisson
+    /// sums N_A, N_B, var C_A = (N_B² N_A + N_A² N_B)/(N_A + N_B)⁴ (first-order
+    /// propagation, derived by hand).
+    #[test]
+    fn counting_uncertainty_matches_the_hand_derivation() {
+        let (na, nb) = (400.0f64, 1600.0f64);
+        let phases = [PhaseCounts {
+            pixels: 10,
+            sums: vec![na, nb],
+        }];
+        let rules = Rules {
+            k: KFactors::unit(2),
+            oxygen: Oxygen::Measured,
+            background: Background::none(2),
+        };
+        let q = quantify(&els(&["Fe", "Ni"]), &phases, &rules);
+        let expected = 100.0 * ((nb * nb * na + na * na * nb) / (na + nb).powi(4)).sqrt();
+        assert!((q.phases[0].wt_sd[0] - expected).abs() < 1e-6 * expected);
+        assert!((q.phases[0].wt_sd[1] - expected).abs() < 1e-6 * expected);
+    }
+
+    /// Oxygen by stoichiometry recovers the formula's oxygen: Al2O3 from Al alone (Al³⁺)
+    /// gives Al 52.926 wt%, O 47.074 wt% (REFERENCES.md §6, computed from the formula).
+    #[test]
+    fn oxygen_from_valences() {
+        let mapped = els(&["Al"]);
+        let phases = [PhaseCounts {
+            pixels: 100,
+            sums: vec![1.0e5],
+        }];
+        let rules = Rules {
+            k: KFactors::unit(1),
+            oxygen: Oxygen::Stoichiometry {
+                valences: vec![3.0],
+            },
+            background: Background::none(1),
+        };
+        let q = quantify(&mapped, &phases, &rules);
+        assert_eq!(q.elements[1].symbol, "O");
+        assert!((q.phases[0].wt[0] - 52.926).abs() < 0.005);
+        assert!((q.phases[0].wt[1] - 47.074).abs() < 0.005);
+        assert!((q.phases[0].at[1] - 60.0).abs() < 1e-9);
+    }
+
+    /// One standard fixes the factors exactly; a second phase of another composition is then
+    /// recovered (synthetic intensities from invented sensitivities).
+    #[test]
+    fn calibration_on_one_phase_recovers_another() {
+        let mapped = els(&["Cu", "Sn"]);
+        let sens = [46.0, 38.0];
+        let counts = |f: &str| {
+            let c = parse_formula(f).unwrap();
+            PhaseCounts {
+                pixels: 10_000,
+                sums: mapped
+                    .iter()
+                    .zip(sens)
+                    .map(|(e, s)| 1e4 * s * c.mass_fraction_of(e.symbol))
+                    .collect(),
+            }
+        };
+        let std = counts("Cu6Sn5");
+        let known: Vec<f64> = mapped
+            .iter()
+            .map(|e| parse_formula("Cu6Sn5").unwrap().mass_fraction_of(e.symbol))
+            .collect();
+        let net: Vec<f64> = (0..2).map(|e| std.rate(e)).collect();
+        let var: Vec<f64> = (0..2).map(|e| std.rate_var(e)).collect();
+        let k = calibrate(&[Standard { net, var, known }], &[true, true]).unwrap();
+        let other = 1 - k.reference;
+        assert_eq!(k.rel_sd[k.reference], 0.0);
+        assert!(k.rel_sd[other] > 0.0 && k.rel_sd[other] < 0.01);
+        let rules = Rules {
+            k,
+            oxygen: Oxygen::Measured,
+            background: Background::none(2),
+        };
+        let q = quantify(&mapped, &[counts("Cu3Sn")], &rules);
+        let truth = parse_formula("Cu3Sn").unwrap().mass_fraction_of("Cu") * 100.0;
+        assert!(
+            (q.phases[0].wt[0] - truth).abs() < 1e-6,
+            "{:?}",
+            q.phases[0]
+        );
+    }
+
+    #[test]
+    fn calibration_names_elements_it_cannot_reach() {
+        let st = Standard {
+            net: vec![10.0, 5.0, 0.0],
+            var: vec![0.1, 0.1, 0.1],
+            known: vec![0.5, 0.5, 0.0],
+        };
+        assert_eq!(
+            calibrate(std::slice::from_ref(&st), &[true, true, true]),
+            Err(CalibrationError::NotReached(vec![2]))
+        );
+        let bad = Standard {
+            known: vec![0.5, 0.5, 0.1],
+            ..st
+        };
+        assert_eq!(
+            calibrate(&[bad], &[true, true, true]),
+            Err(CalibrationError::NoCounts(0, 2))
+        );
+    }
+
+    /// Continuum subtraction: a phase free of Cu sets the Cu background, scaled by mean Z.
+    #[test]
+    fn background_from_the_poorest_phase() {
+        let phases = vec![
+            PhaseCounts {
+                pixels: 100,
+                sums: vec![4600.0, 150.0],
+            },
+            PhaseCounts {
+                pixels: 100,
+                sums: vec![150.0, 3800.0],
+            },
+        ];
+        let b = Background::lowest_phase(&phases, 2);
+        assert_eq!(b.from, vec![Some(1), Some(0)]);
+        let rules = Rules {
+            k: KFactors::unit(2),
+            oxygen: Oxygen::Measured,
+            background: b,
+        };
+        let q = quantify(&els(&["Cu", "Sn"]), &phases, &rules);
+        assert_eq!(q.phases[0].wt[1], 0.0);
+        assert_eq!(q.phases[1].wt[0], 0.0);
+        assert!(
+            Background::lowest_phase(&phases[..1], 2)
+                .from
+                .iter()
+                .all(Option::is_none),
+            "one phase alone has no background reference"
+        );
+    }
+}
