@@ -461,18 +461,19 @@ pub fn characterise(
     let sums_at = |clearance: usize| -> Vec<(PhaseCounts, bool)> {
         interior_counts(labels, width, height, counts, k, clearance)
     };
-    let background_of = |sums: &[PhaseCounts]| match opts.given.background {
-        BackgroundMode::PoorestPhase => Background::lowest_phase(sums, infos.len()),
-        BackgroundMode::None => Background::none(infos.len()),
-    };
-    let run = |sums: &[PhaseCounts], kf: &KFactors| -> Quantification {
+    let background_of =
+        |sums: &[PhaseCounts], eligible: &[bool], k: &[f64]| match opts.given.background {
+            BackgroundMode::PoorestPhase => Background::lowest_phase(sums, eligible, k),
+            BackgroundMode::None => Background::none(infos.len()),
+        };
+    let run = |sums: &[PhaseCounts], eligible: &[bool], kf: &KFactors| -> Quantification {
         quantify(
             &infos,
             sums,
             &Rules {
                 k: kf.clone(),
                 oxygen: oxygen.clone(),
-                background: background_of(sums),
+                background: background_of(sums, eligible, &kf.k),
             },
         )
     };
@@ -485,7 +486,8 @@ pub fn characterise(
     let mut clearance = DEFAULT_CLEARANCE_PX;
     let mut sums = sums_at(clearance);
     let plain: Vec<PhaseCounts> = sums.iter().map(|s| s.0.clone()).collect();
-    let first = run(&plain, &KFactors::unit(infos.len()));
+    let eligible: Vec<bool> = sums.iter().map(|s| s.1).collect();
+    let first = run(&plain, &eligible, &KFactors::unit(infos.len()));
     let first_matches = match_all(&first, false);
     if let (Some(_), Some(px)) = (md.beam_kv, md.pixel_size_um) {
         let inputs: Vec<_> = table
@@ -546,6 +548,7 @@ pub fn characterise(
             .reference
             .as_deref()
             .and_then(|r| infos.iter().position(|e| e.symbol == r))
+            .filter(|&i| quantified[i])
             .unwrap_or_else(|| quantified.iter().position(|&q| q).unwrap_or(0));
         let scale = k[reference];
         k.iter_mut().for_each(|x| *x /= scale);
@@ -626,11 +629,13 @@ pub fn characterise(
         )
     };
     // Recompute with the (possibly widened) sums and the factors.
-    let q = run(&plain, &kf);
+    let eligible: Vec<bool> = sums.iter().map(|s| s.1).collect();
+    let q = run(&plain, &eligible, &kf);
     let matches = match_all(&q, calibrated_basis);
-    let background = background_of(&plain);
+    let background = background_of(&plain, &eligible, &kf.k);
 
-    // Names: calibration phases keep the name they were given; others take their match.
+    // Names: calibration phases keep the name they were given; others take their match,
+    // unless their composition is mixed with their neighbours'.
     let names: Vec<String> = table
         .phases
         .iter()
@@ -639,7 +644,12 @@ pub fn characterise(
             forced_names
                 .get(&i)
                 .cloned()
-                .or_else(|| matches[i].as_ref().and_then(|m| m.reference.clone()))
+                .or_else(|| {
+                    matches[i]
+                        .as_ref()
+                        .filter(|_| sums[i].1)
+                        .and_then(|m| m.reference.clone())
+                })
                 .unwrap_or_else(|| p.name.clone())
         })
         .collect();
@@ -648,6 +658,7 @@ pub fn characterise(
         p.name = names[i].clone();
         p.composition = q.phases[i].clone();
         p.composition_pixels = sums[i].0.pixels;
+        p.composition_from_interior = sums[i].1;
         p.reference = matches[i].clone();
         if !sums[i].1 {
             notes.push(format!(
@@ -670,8 +681,9 @@ pub fn characterise(
                     table.phases[b].id, table.phases[b].name, e.symbol
                 ),
                 (_, None) => format!(
-                    "none subtracted: no phase has under {:.0} % of the richest phase's counts",
-                    100.0 * quant::FREE_SHARE
+                    "none subtracted: no phase has under {:.0} % of the richest phase's counts or under {:.0} wt% of it",
+                    100.0 * quant::FREE_SHARE,
+                    100.0 * quant::FREE_WT
                 ),
             };
             (e.symbol.to_string(), s)

@@ -282,7 +282,7 @@ pub fn best_match(
                     (c[i] - ri).powi(2) / (s[i] * s[i] + tau * tau)
                 })
                 .sum::<f64>();
-            Some((d2, 1.0 - measured, r))
+            d2.is_finite().then_some((d2, 1.0 - measured, r))
         })
         .collect();
     scored.sort_by(|a, b| a.0.total_cmp(&b.0).then(a.1.total_cmp(&b.1)));

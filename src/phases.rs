@@ -49,6 +49,9 @@ pub struct Phase {
     pub composition: PhaseComposition,
     /// Pixels the composition was summed over.
     pub composition_pixels: usize,
+    /// False when no pixel of the phase lies clear of its neighbours, so its composition
+    /// comes from all its pixels and is mixed with theirs.
+    pub composition_from_interior: bool,
     /// The closest reference phase, once matched.
     pub reference: Option<crate::library::Match>,
     /// Number of separate features (8-connected regions).
@@ -273,6 +276,7 @@ pub fn phase_table(seg: &mut Segmentation, counts: &MapStack, k: usize) -> Phase
                 sd,
                 composition,
                 composition_pixels: pixels[c],
+                composition_from_interior: false,
                 reference: None,
                 particles: 0,
                 mean_ecd_px: 0.0,

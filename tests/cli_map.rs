@@ -277,3 +277,72 @@ fn demo_maps_the_sample_and_checks_it_against_the_truth() {
     assert!(pct >= 98.0, "{line}");
     assert_eq!(report(&out)["phases"].as_array().unwrap().len(), 5);
 }
+
+/// `map --calibrate` on the sample field: compositions with uncertainty and method, library
+/// names, the advisor's messages, in report.json, phases.csv and the summary. The true
+/// compositions are the formulas the sample was generated from (mass fractions from
+/// standard atomic weights: Cu3Sn is Cu 61.63 wt%, computed from the formula).
+#[test]
+fn calibrated_map_reports_compositions_names_and_advice() {
+    let tmp = tempfile::tempdir().unwrap();
+    let out = tmp.path().join("out");
+    let r = modalmap(&[
+        "map",
+        &sample(),
+        "-o",
+        s(&out),
+        "--calibrate",
+        "Cu6Sn5 (eta)",
+        "--calibrate",
+        "Ag3Sn=Ag3Sn",
+    ]);
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    let rep = report(&out);
+    assert_eq!(rep["composition"]["basis"], "calibrated");
+    assert_eq!(
+        rep["composition"]["calibration"].as_array().unwrap().len(),
+        2
+    );
+    let names: Vec<&str> = rep["phases"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|p| p["name"].as_str().unwrap())
+        .collect();
+    for n in ["tin", "copper", "Cu6Sn5 (eta)", "Cu3Sn (epsilon)", "Ag3Sn"] {
+        assert!(names.contains(&n), "{n} not in {names:?}");
+    }
+    let cu3sn = rep["phases"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .find(|p| p["name"] == "Cu3Sn (epsilon)")
+        .unwrap();
+    let (cu, sd) = (
+        cu3sn["composition_wt"]["Cu"].as_f64().unwrap(),
+        cu3sn["composition_wt_sd"]["Cu"].as_f64().unwrap(),
+    );
+    assert!(sd > 0.0 && (cu - 61.63).abs() < 3.0 * sd, "{cu} ± {sd}");
+    assert!(cu3sn["match"]["quality"].as_f64().unwrap() > 0.5);
+    let at: f64 = cu3sn["composition_at"]
+        .as_object()
+        .unwrap()
+        .values()
+        .map(|v| v.as_f64().unwrap())
+        .sum();
+    assert!((at - 100.0).abs() < 1e-6);
+    // The sample is mapped at 15 kV: Cu Kα (edge 8.98 keV) is weakly excited.
+    let advice = rep["advisor"]["messages"].as_array().unwrap();
+    assert!(advice
+        .iter()
+        .any(|m| m.as_str().unwrap().contains("Cu Kα is weakly excited")));
+    assert!(rep["advisor"]["phases"].as_array().unwrap().len() == 5);
+    assert!(rep["cautions"][0].as_str().unwrap().contains("calibrated"));
+    let csv = std::fs::read_to_string(out.join("phases.csv")).unwrap();
+    let header = csv.lines().next().unwrap();
+    for col in ["wt_Cu", "wt_sd_Cu", "at_Sn", "match", "match_quality"] {
+        assert!(header.split(',').any(|c| c == col), "{col} in {header}");
+    }
+    assert!(r.stdout.contains("k-factors calibrated on"));
+    assert!(r.stdout.contains("beam-physics advice"));
+}

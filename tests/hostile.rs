@@ -512,6 +512,116 @@ fn corpus(root: &Path) -> Vec<Case> {
     ] {
         case(label, Expect::Fails(2), &[args[0]], &args, &|d| field(d));
     }
+    // Malformed k-factor and reference-library files, and impossible calibrations.
+    let k_ok = "format = \"modalmap.kfactors/1\"\n[k]\nFe = 1.0\nSi = 1.2\nO = 2.0\n";
+    for (label, file, text, names) in [
+        (
+            "k-factor file not TOML",
+            "k.toml",
+            "format = [",
+            vec!["k.toml"],
+        ),
+        (
+            "k-factor file of another format",
+            "k.toml",
+            "format = \"x/1\"\n[k]\nFe = 1\n",
+            vec!["k.toml", "format"],
+        ),
+        (
+            "k-factor file missing a mapped element",
+            "k.toml",
+            "format = \"modalmap.kfactors/1\"\n[k]\nFe = 1.0\nSi = 1.2\n",
+            vec!["k.toml", "O"],
+        ),
+        (
+            "negative k-factor",
+            "k.toml",
+            "format = \"modalmap.kfactors/1\"\n[k]\nFe = -1.0\nSi = 1.2\nO = 2\n",
+            vec!["k.toml", "Fe"],
+        ),
+        (
+            "k-factor for a non-element",
+            "k.toml",
+            "format = \"modalmap.kfactors/1\"\n[k]\nXx = 1.0\n",
+            vec!["k.toml", "Xx"],
+        ),
+        (
+            "k-factor reference without a factor",
+            "k.toml",
+            "format = \"modalmap.kfactors/1\"\nreference = \"Ni\"\n[k]\nFe = 1.0\n",
+            vec!["k.toml", "Ni"],
+        ),
+    ] {
+        case(
+            label,
+            Expect::Fails(2),
+            &names,
+            &["--kfactors", &format!("DIR/{file}")],
+            &move |d| {
+                std::fs::write(d.join(file), text).unwrap();
+                field(d)
+            },
+        );
+    }
+    for (label, text, names) in [
+        ("library file not TOML", "[[phase]", vec!["lib.toml"]),
+        ("library without format", "[[phase]]\nname = \"x\"\nformula = \"Fe\"\n", vec!["lib.toml"]),
+        ("library with a bad formula", "format = \"modalmap.phases/1\"\n[[phase]]\nname = \"x\"\nformula = \"Fe2(\"\n", vec!["lib.toml", "Fe2("]),
+        ("library entry with formula and composition", "format = \"modalmap.phases/1\"\n[[phase]]\nname = \"x\"\nformula = \"Fe\"\ncomposition = { Fe = 1 }\n", vec!["lib.toml", "exactly one"]),
+        ("library with an absurd density", "format = \"modalmap.phases/1\"\n[[phase]]\nname = \"x\"\nformula = \"Fe\"\ndensity = 900\n", vec!["lib.toml", "density"]),
+    ] {
+        case(label, Expect::Fails(2), &names, &["--library", "DIR/lib.toml"], &move |d| {
+            std::fs::write(d.join("lib.toml"), text).unwrap();
+            field(d)
+        });
+    }
+    for (label, args, names) in [
+        (
+            "calibration on a phase that does not exist",
+            vec!["--calibrate", "9=Fe2SiO4"],
+            vec!["phase 9"],
+        ),
+        (
+            "calibration with a bad formula",
+            vec!["--calibrate", "1=Qq2"],
+            vec!["Qq2"],
+        ),
+        (
+            "calibration that leaves elements without a factor",
+            vec!["--calibrate", "1=Fe"],
+            vec!["Si"],
+        ),
+        (
+            "calibration on an unknown phase name",
+            vec!["--calibrate", "unobtainium=Fe"],
+            vec!["unobtainium"],
+        ),
+        (
+            "calibration and k-factor file together",
+            vec!["--calibrate", "1=Fe2SiO4", "--kfactors", "DIR/k.toml"],
+            vec!["--kfactors"],
+        ),
+        (
+            "malformed valence",
+            vec!["--oxygen", "stoichiometry", "--valence", "Fe=x"],
+            vec!["Fe=x"],
+        ),
+    ] {
+        case(label, Expect::Fails(2), &names, &args, &move |d| {
+            std::fs::write(d.join("k.toml"), k_ok).unwrap();
+            field(d)
+        });
+    }
+    case(
+        "valid k-factor file",
+        Expect::Fails(0),
+        &[],
+        &["--kfactors", "DIR/k.toml", "--oxygen", "stoichiometry"],
+        &move |d| {
+            std::fs::write(d.join("k.toml"), k_ok).unwrap();
+            field(d)
+        },
+    );
     // Odd but valid paths.
     case(
         "spaces and non-ASCII in the path",
@@ -587,6 +697,8 @@ fn every_hostile_input_fails_cleanly_and_leaves_the_inputs_alone() {
         for a in &c.extra {
             args.push(if a == "CONFIG" {
                 dir.join("run.toml").display().to_string()
+            } else if let Some(name) = a.strip_prefix("DIR/") {
+                dir.join(name).display().to_string()
             } else {
                 a.clone()
             });

@@ -13,8 +13,8 @@
 //! **Background.** Element maps hold gross counts: characteristic X-rays plus the
 //! continuum under the peak. By default the continuum of each element's window is taken
 //! from the phase with the fewest counts of it, when that phase has under
-//! [`FREE_SHARE`] of the richest phase's counts (it is then taken to be free of the
-//! element), and scaled to every other phase by the ratio of mean atomic numbers, since the
+//! [`FREE_SHARE`] of the richest phase's counts or its k-weighted counts make under
+//! [`FREE_WT`] of its composition (it is then taken to be free of the element), and scaled to every other phase by the ratio of mean atomic numbers, since the
 //! continuum grows in proportion to Z (Kramers 1923). Where no phase is that poor in an
 //! element, nothing is subtracted and the report says so.
 //!
@@ -33,6 +33,10 @@ use super::ElementInfo;
 /// A phase with under this share of the richest phase's counts of an element is taken to
 /// be free of it, and its counts to be continuum background (common practice, no source).
 pub const FREE_SHARE: f64 = 0.10;
+
+/// ... or if its gross counts, weighted by the k-factors, make under this share of its
+/// composition (common practice, no source: about the detection limit of element maps).
+pub const FREE_WT: f64 = 0.03;
 
 /// Summed raw counts of each mapped element over the pixels a phase's composition comes
 /// from.
@@ -107,15 +111,33 @@ impl Background {
         }
     }
 
-    /// Finds, per element, the phase with the fewest counts of it, if it has under
-    /// [`FREE_SHARE`] of the richest phase's counts.
-    pub fn lowest_phase(phases: &[PhaseCounts], n_elements: usize) -> Background {
-        let from = (0..n_elements)
+    /// Finds, per element, the phase with the fewest counts of it, and takes it to be
+    /// free of the element if its counts are under [`FREE_SHARE`] of the richest phase's,
+    /// or its gross counts weighted by the factors `k` make under [`FREE_WT`] of it
+    /// (elements with a `NaN` factor are left out of that share). Only phases marked
+    /// `eligible` (sums over interior pixels, not mixed with neighbours) can serve.
+    pub fn lowest_phase(phases: &[PhaseCounts], eligible: &[bool], k: &[f64]) -> Background {
+        let from = (0..k.len())
             .map(|e| {
-                let usable = || phases.iter().enumerate().filter(|(_, p)| p.pixels > 0);
+                let usable = || {
+                    phases
+                        .iter()
+                        .enumerate()
+                        .filter(|(i, p)| p.pixels > 0 && eligible[*i])
+                };
                 let (lo, plo) = usable().min_by(|a, b| a.1.rate(e).total_cmp(&b.1.rate(e)))?;
                 let hi = usable().map(|(_, p)| p.rate(e)).fold(0.0, f64::max);
-                (phases.len() > 1 && hi > 0.0 && plo.rate(e) <= FREE_SHARE * hi).then_some(lo)
+                let weighted: f64 = (0..k.len())
+                    .filter(|&j| k[j].is_finite())
+                    .map(|j| k[j] * plo.rate(j))
+                    .sum();
+                let share = if k[e].is_finite() && weighted > 0.0 {
+                    k[e] * plo.rate(e) / weighted
+                } else {
+                    1.0
+                };
+                let poor = plo.rate(e) <= FREE_SHARE * hi || share <= FREE_WT;
+                (phases.len() > 1 && hi > 0.0 && poor).then_some(lo)
             })
             .collect();
         Background { from }
@@ -614,7 +636,7 @@ mod tests {
                 sums: vec![150.0, 3800.0],
             },
         ];
-        let b = Background::lowest_phase(&phases, 2);
+        let b = Background::lowest_phase(&phases, &[true, true], &[1.0, 1.0]);
         assert_eq!(b.from, vec![Some(1), Some(0)]);
         let rules = Rules {
             k: KFactors::unit(2),
@@ -625,7 +647,7 @@ mod tests {
         assert_eq!(q.phases[0].wt[1], 0.0);
         assert_eq!(q.phases[1].wt[0], 0.0);
         assert!(
-            Background::lowest_phase(&phases[..1], 2)
+            Background::lowest_phase(&phases[..1], &[true], &[1.0, 1.0])
                 .from
                 .iter()
                 .all(Option::is_none),

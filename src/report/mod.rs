@@ -69,6 +69,9 @@ pub struct PhaseEntry {
     pub composition_basis: String,
     /// Pixels the composition was summed over (interior pixels).
     pub composition_pixels: usize,
+    /// False when the phase has too few pixels clear of its neighbours, so its
+    /// composition comes from all its pixels and is mixed with theirs.
+    pub composition_from_interior: bool,
     /// The closest reference phase and the match quality.
     #[serde(rename = "match", skip_serializing_if = "Option::is_none", default)]
     pub reference: Option<crate::library::Match>,
@@ -251,6 +254,7 @@ pub fn build(
                 composition_at_sd: cmap(&p.composition.at_sd),
                 composition_basis: composition.basis.clone(),
                 composition_pixels: p.composition_pixels,
+                composition_from_interior: p.composition_from_interior,
                 reference: p.reference.clone(),
                 particles: p.particles,
                 mean_ecd_px: p.mean_ecd_px,

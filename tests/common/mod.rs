@@ -2,6 +2,8 @@
 
 #![allow(dead_code)]
 
+pub mod fields;
+
 /// Agreement of predicted labels with true labels (both 0 = void/unassigned).
 pub struct Score {
     /// Fraction of pixels whose matched label equals the truth.
