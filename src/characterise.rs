@@ -391,6 +391,8 @@ pub struct CompositionReport {
     pub uncertainty: String,
     /// Things to know about these compositions.
     pub notes: Vec<String>,
+    /// The options as given (with `options` of the report, enough to rerun).
+    pub options: CompositionOptions,
 }
 
 /// Mapped elements with the line named with each map.
@@ -730,6 +732,7 @@ pub fn characterise(
         clearance_px: clearance,
         uncertainty: "± is one standard deviation from counting statistics (Poisson) of the summed counts, the background and the calibration; it leaves out the error of the ratio method itself".into(),
         notes,
+        options: opts.given.clone(),
     };
 
     let inputs: Vec<_> = table

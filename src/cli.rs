@@ -470,6 +470,13 @@ pub fn map_field(
         warnings,
         ..
     } = field;
+    // k-factor and library files are inputs too: their hashes go into the provenance.
+    let given = composition.options();
+    for p in given.kfactors.iter().chain(&given.libraries) {
+        if !files.contains(p) {
+            files.push(p.clone());
+        }
+    }
     // The BSE image is an input too: its hash goes into the provenance.
     if let Some(crate::io::BseSource::File(p)) = bse_source {
         if !files.contains(&p) {

@@ -181,6 +181,37 @@ fn config_file_and_flags() {
     assert_eq!(rep["options"]["refine"]["smoothing"], 0.5);
     assert_eq!(rep["phase_count"]["mode"], "fixed");
 
+    // Composition options from the file too, recorded with the report; the library file
+    // is an input, hashed into the provenance.
+    let lib = tmp.path().join("lab.toml");
+    std::fs::write(
+        &lib,
+        "format = \"modalmap.phases/1\"\n[[phase]]\nname = \"lab bronze\"\ncomposition = { Cu = 88, Sn = 12 }\n",
+    )
+    .unwrap();
+    std::fs::write(
+        &cfg,
+        format!(
+            "calibrate = [\"Cu6Sn5 (eta)\", \"Ag3Sn\"]\nbackground = \"poorest-phase\"\nlibrary = [\"{}\"]\n",
+            lib.display()
+        ),
+    )
+    .unwrap();
+    let out = tmp.path().join("o3");
+    let r = modalmap(&["map", &sample(), "-o", s(&out), "--config", s(&cfg)]);
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    let rep = report(&out);
+    assert_eq!(rep["composition"]["basis"], "calibrated");
+    assert_eq!(
+        rep["composition"]["options"]["calibrate"],
+        serde_json::json!(["Cu6Sn5 (eta)", "Ag3Sn"])
+    );
+    assert!(rep["provenance"]["inputs"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .any(|i| i["path"].as_str().unwrap().ends_with("lab.toml")));
+
     std::fs::write(&cfg, "phase = 5\n").unwrap();
     let r = modalmap(&[
         "map",
