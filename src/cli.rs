@@ -13,10 +13,12 @@ use crate::characterise::{BackgroundMode, CompositionOptions, OxygenMode};
 use crate::cluster::select::{ClusterParams, PhaseCount};
 use crate::cluster::Method;
 use crate::error::{Error, Result};
+use crate::fields::PhaseModel;
 use crate::io::{load_field, Limits};
 use crate::pipeline::MapOptions;
 use crate::prepare::{Denoise, MinCounts, PrepareParams, Stabilise};
 use crate::refine::RefineParams;
+use crate::run::{process_field, FieldJob, Labelling};
 use crate::stack::FieldMetadata;
 
 /// Phase maps from SEM-EDS element maps.
@@ -74,6 +76,64 @@ pub enum Command {
         #[command(flatten)]
         map: Box<MapArgs>,
     },
+    /// Fit one phase model on several fields (the same elements in each) and save it.
+    ///
+    /// Every field gives an equal-sized window at a seeded place; the windows are mapped
+    /// together with the `map` pipeline. The model (JSON, schema modalmap.model/1) holds
+    /// the options, the clusters and the phase names, for `apply`.
+    Fit {
+        /// Fields: folders of element maps or HDF5 files.
+        #[arg(required = true)]
+        inputs: Vec<PathBuf>,
+        /// Model file to write.
+        #[arg(short, long, value_name = "MODEL.json")]
+        output: PathBuf,
+        #[command(flatten)]
+        map: Box<MapArgs>,
+    },
+    /// Label many fields with a saved model: one output folder per field in OUT.
+    ///
+    /// No refit: every field gets the model's phases, ids and names. A BSE image found
+    /// with a field (a `BSE…` image in its folder, or the HDF5 `bse` dataset) is checked.
+    /// A field that fails is reported and the others go on; the exit code is then 5.
+    /// Writes OUT/apply.json (or OUT/apply-I-of-N.json with --shard) listing every field.
+    Apply {
+        /// Model file written by `modalmap fit`.
+        model: PathBuf,
+        /// Fields: folders of element maps or HDF5 files.
+        #[arg(required = true)]
+        inputs: Vec<PathBuf>,
+        /// Output folder (one subfolder per field).
+        #[arg(short, long, value_name = "OUT")]
+        output: PathBuf,
+        /// Take only the I-th of N slices of the inputs (every N-th field from the I-th),
+        /// e.g. --shard $SLURM_ARRAY_TASK_ID/4.
+        #[arg(long, value_name = "I/N")]
+        shard: Option<String>,
+        /// Fields processed at the same time (default 2; each also uses every thread).
+        #[arg(long, value_name = "N")]
+        jobs: Option<usize>,
+        #[command(flatten)]
+        map: Box<MapArgs>,
+    },
+    /// Pool the per-field reports of `apply` (one model) into field-to-field statistics.
+    ///
+    /// Reads every report.json below the given folders; writes summary.json,
+    /// summary.csv and summary.html into SUMMARY.
+    Merge {
+        /// Output folders of `apply` (searched recursively for report.json).
+        #[arg(required = true)]
+        folders: Vec<PathBuf>,
+        /// Summary folder (must be empty or new, unless --force).
+        #[arg(short, long, value_name = "SUMMARY")]
+        output: PathBuf,
+        /// Replace the summary folder's contents.
+        #[arg(long)]
+        force: bool,
+        /// Print nothing but errors.
+        #[arg(long)]
+        quiet: bool,
+    },
     /// Map the bundled sample field (an invented solder joint) and compare with its truth.
     Demo {
         /// Output folder.
@@ -97,6 +157,9 @@ pub enum Command {
         /// Width and height of the benchmark rock, pixels.
         #[arg(long, default_value_t = 2048)]
         size: usize,
+        /// Seed of the benchmark rock's microstructure and counts.
+        #[arg(long, default_value_t = 2048)]
+        seed: u64,
     },
 }
 
@@ -410,81 +473,26 @@ pub fn map_field(
 ) -> Result<crate::report::Report> {
     let Resolved {
         map: opts,
-        metadata: md,
+        metadata,
         bse_pixel_size,
         composition,
         ..
     } = args.resolve()?;
     let valid = opts.check()?;
     let composition = composition.check()?;
-    let dir = crate::report::prepare_output(out, args.force)?;
-    let t = crate::profile::stage("load");
-    let mut field = load_field(
-        input,
-        &Limits {
-            max_pixels: args.limits.max_pixels,
-        },
-    )?;
-    drop(t);
-    field.stack.override_metadata(&md);
-    let map_size = (field.stack.width(), field.stack.height());
-    let map_pixel_um = field.stack.metadata().pixel_size_um;
-    let bse_pixel_size = bse_pixel_size.or(field.stack.metadata().bse_pixel_size_um);
-    if let Some(v) = bse_pixel_size {
-        if !(v.is_finite() && v > 0.0) {
-            return Err(Error::options(
-                format!("--bse-pixel-size {v} is not a positive number"),
-                "give the BSE pixel size in µm",
-            ));
-        }
-        if map_pixel_um.is_none() {
-            return Err(Error::options(
-                "--bse-pixel-size needs the maps' pixel size too",
-                "set pixel_size_um in field.toml or give --pixel-size",
-            ));
-        }
-    }
-    let bse_source = if args.no_bse {
-        None
-    } else {
-        args.bse
-            .clone()
-            .map(crate::io::BseSource::File)
-            .or(field.bse.clone())
+    let job = FieldJob {
+        labelling: Labelling::Fit,
+        map: &valid,
+        composition: &composition,
+        metadata,
+        bse_file: args.bse.clone(),
+        no_bse: args.no_bse,
+        bse_pixel_size,
+        max_pixels: args.limits.max_pixels,
+        force: args.force,
     };
-    let bse_image = bse_source
-        .as_ref()
-        .map(|s| {
-            crate::io::load_bse(
-                s,
-                &Limits {
-                    max_pixels: args.limits.max_pixels.saturating_mul(16),
-                },
-            )
-        })
-        .transpose()?;
-    let crate::io::LoadedField {
-        stack,
-        name,
-        mut files,
-        warnings,
-        ..
-    } = field;
-    // k-factor and library files are inputs too: their hashes go into the provenance.
-    let given = composition.options();
-    for p in given.kfactors.iter().chain(&given.libraries) {
-        if !files.contains(p) {
-            files.push(p.clone());
-        }
-    }
-    // The BSE image is an input too: its hash goes into the provenance.
-    if let Some(crate::io::BseSource::File(p)) = bse_source {
-        if !files.contains(&p) {
-            files.push(p);
-        }
-    }
     let spinner = spinner(args.quiet);
-    let result = crate::pipeline::map_stack_with_progress(stack, &valid, &mut |stage| {
+    let result = process_field(input, out, &job, &mut |stage| {
         if let Some(s) = &spinner {
             s.set_message(stage.to_string());
         }
@@ -492,48 +500,7 @@ pub fn map_field(
     if let Some(s) = spinner {
         s.finish_and_clear();
     }
-    let mut result = result?;
-    let (composition_report, advice) = {
-        let _t = crate::profile::stage("composition");
-        crate::pipeline::characterise(&mut result, &composition)?
-    };
-    let bse = match &bse_image {
-        Some(img) => {
-            let _t = crate::profile::stage("bse check");
-            let seg = &result.segmentation;
-            Some(crate::bse::check(
-                img,
-                &seg.labels,
-                seg.width,
-                seg.height,
-                &result.table,
-                crate::bse::Geometry {
-                    map_size,
-                    bin: valid.options().prepare.bin,
-                    pixel_sizes_um: map_pixel_um.zip(bse_pixel_size),
-                },
-            )?)
-        }
-        None => None,
-    };
-    let t = crate::profile::stage("report (hashes)");
-    let report = crate::report::build(
-        &name,
-        &files,
-        &result,
-        valid.options(),
-        warnings,
-        crate::report::Findings {
-            bse: bse.as_ref(),
-            composition: &composition_report,
-            advisor: &advice,
-        },
-    )?;
-    drop(t);
-    let _t = crate::profile::stage("write outputs");
-    crate::report::write_outputs(&dir, &report, &result, bse.as_ref())?;
-    dir.commit()?;
-    Ok(report)
+    result
 }
 
 /// A spinner with the current stage on standard error, only when it is a terminal and the
@@ -597,6 +564,31 @@ pub fn run(cli: Cli) -> Result<u8> {
             }
             Ok(0)
         }
+        Command::Fit {
+            inputs,
+            output,
+            map,
+        } => {
+            install_threads(map.resolve()?.threads)?;
+            fit(&inputs, &output, &map)
+        }
+        Command::Apply {
+            model,
+            inputs,
+            output,
+            shard,
+            jobs,
+            map,
+        } => {
+            install_threads(map.resolve()?.threads)?;
+            apply(&model, &inputs, &output, shard.as_deref(), jobs, &map)
+        }
+        Command::Merge {
+            folders,
+            output,
+            force,
+            quiet,
+        } => merge(&folders, &output, force, quiet),
         Command::Demo { output, force } => {
             // The sample field is generated into a private temporary folder (the same maps
             // as sample-maps/), mapped into OUT, then removed.
@@ -633,6 +625,7 @@ pub fn run(cli: Cli) -> Result<u8> {
             truth,
             scenario,
             size,
+            seed,
         } => {
             let field = match scenario {
                 Scenario::SolderJoint => crate::synth::sample_field()?,
@@ -643,7 +636,7 @@ pub fn run(cli: Cli) -> Result<u8> {
                             "use 16 to 20000 pixels",
                         ));
                     }
-                    let (micro, opts) = crate::synth::benchmark_rock(size, 2048);
+                    let (micro, opts) = crate::synth::benchmark_rock(size, seed);
                     crate::synth::generate(&micro, &opts)?
                 }
             };
@@ -666,4 +659,413 @@ pub fn run(cli: Cli) -> Result<u8> {
             Ok(0)
         }
     }
+}
+
+/// `fit`: one model from several fields.
+fn fit(inputs: &[PathBuf], output: &std::path::Path, args: &MapArgs) -> Result<u8> {
+    let Resolved {
+        map: opts,
+        metadata,
+        composition,
+        ..
+    } = args.resolve()?;
+    let valid = opts.check()?;
+    let composition = composition.check()?;
+    if output.is_dir() {
+        return Err(Error::output(
+            output,
+            "is a folder",
+            "give the model a file name, e.g. -o model.json",
+        ));
+    }
+    if output.exists() && !args.force {
+        return Err(Error::output(
+            output,
+            "already exists",
+            "choose another file name, or add --force to replace it",
+        ));
+    }
+    let limits = Limits {
+        max_pixels: args.limits.max_pixels,
+    };
+    let mut fields = Vec::new();
+    for input in inputs {
+        let mut f = load_field(input, &limits)?;
+        f.stack.override_metadata(&metadata);
+        fields.push(f);
+    }
+    let named: Vec<(String, &crate::stack::MapStack)> = fields
+        .iter()
+        .map(|f| (f.input.display().to_string(), &f.stack))
+        .collect();
+    let (training, windows) = crate::fields::training_stack(
+        &named,
+        valid.options().prepare.bin,
+        valid.options().cluster.seed,
+    )?;
+    let spinner = spinner(args.quiet);
+    let result = crate::pipeline::map_stack_with_progress(training, &valid, &mut |stage| {
+        if let Some(s) = &spinner {
+            s.set_message(stage.to_string());
+        }
+    });
+    if let Some(s) = spinner {
+        s.finish_and_clear();
+    }
+    let mut result = result?;
+    crate::pipeline::characterise(&mut result, &composition)?;
+    let live: Vec<Option<f64>> = fields
+        .iter()
+        .map(|f| f.stack.metadata().live_time_s)
+        .collect();
+    let live_time_s = live[0].filter(|a| live.iter().all(|b| *b == Some(*a)));
+    let training = fields
+        .iter()
+        .zip(&windows)
+        .map(|(f, w)| {
+            let inputs = f
+                .files
+                .iter()
+                .map(|p| {
+                    Ok(crate::report::InputFile {
+                        path: p.display().to_string(),
+                        sha256: crate::report::hash_file(p)?,
+                    })
+                })
+                .collect::<Result<Vec<_>>>()?;
+            Ok(crate::fields::TrainingField {
+                field: f.name.clone(),
+                window: *w,
+                inputs,
+            })
+        })
+        .collect::<Result<Vec<_>>>()?;
+    let model = PhaseModel {
+        schema: crate::fields::MODEL_SCHEMA.into(),
+        tool_version: env!("CARGO_PKG_VERSION").into(),
+        elements: result.table.elements.clone(),
+        options: *valid.options(),
+        clusters: result.clusters.clone(),
+        phases: result
+            .table
+            .phases
+            .iter()
+            .map(|p| crate::fields::ModelPhase {
+                id: p.id,
+                name: p.name.clone(),
+                model_index: p.model_index,
+                training_area_fraction: p.area_fraction,
+            })
+            .collect(),
+        live_time_s,
+        training,
+    };
+    let json = serde_json::to_string_pretty(&model)
+        .map_err(|e| Error::internal(format!("model encoding failed: {e}")))?;
+    write_file_atomically(output, json.as_bytes())?;
+    if !args.quiet {
+        println!(
+            "fitted {} phases on {} fields ({} × {} pixel windows):",
+            model.phases.len(),
+            fields.len(),
+            windows[0][2],
+            windows[0][3]
+        );
+        for p in &model.phases {
+            println!(
+                "  {:>3}  {:<24} {:>6.2} % of the training windows",
+                p.id,
+                p.name,
+                100.0 * p.training_area_fraction
+            );
+        }
+        println!("  model written to {}", output.display());
+    }
+    Ok(0)
+}
+
+/// Writes a file through a temporary file beside it and a rename.
+fn write_file_atomically(path: &std::path::Path, bytes: &[u8]) -> Result<()> {
+    let name = path
+        .file_name()
+        .map(|n| n.to_string_lossy().into_owned())
+        .unwrap_or_else(|| "model.json".into());
+    let tmp = path.with_file_name(format!(".{name}.modalmap-tmp-{}", std::process::id()));
+    let err = |e: std::io::Error| {
+        Error::output(
+            path,
+            format!("could not be written: {e}"),
+            "check that the folder exists and is writable",
+        )
+    };
+    std::fs::write(&tmp, bytes).map_err(err)?;
+    std::fs::rename(&tmp, path).map_err(|e| {
+        let _ = std::fs::remove_file(&tmp);
+        err(e)
+    })
+}
+
+/// Options of `map` that a saved model fixes, when given to `apply`.
+fn model_fixed_options(args: &MapArgs) -> Vec<&'static str> {
+    let mut v = Vec::new();
+    let given = [
+        ("--phases", args.phases.is_some()),
+        ("--method", args.method.is_some()),
+        ("--seed", args.seed.is_some()),
+        ("--bin", args.bin.is_some()),
+        ("--denoise", args.denoise.is_some()),
+        ("--transform", args.transform.is_some()),
+        ("--min-counts", args.min_counts.is_some()),
+        ("--smoothing", args.smoothing.is_some()),
+        ("--min-feature", args.min_feature.is_some()),
+        ("--min-phase", args.min_phase.is_some()),
+        ("--bse", args.bse.is_some()),
+        ("--config", args.config.is_some()),
+    ];
+    for (name, set) in given {
+        if set {
+            v.push(name);
+        }
+    }
+    v
+}
+
+/// `apply`: label fields with a saved model.
+fn apply(
+    model_path: &std::path::Path,
+    inputs: &[PathBuf],
+    out: &std::path::Path,
+    shard: Option<&str>,
+    jobs: Option<usize>,
+    args: &MapArgs,
+) -> Result<u8> {
+    let fixed = model_fixed_options(args);
+    if !fixed.is_empty() {
+        return Err(Error::options(
+            format!("{} cannot be given to apply", fixed.join(", ")),
+            "the model fixes the mapping options (fit a new model to change them); a BSE image is found with each field",
+        ));
+    }
+    let (model, reference) = PhaseModel::load(model_path)?;
+    let valid = model.options.check()?;
+    let Resolved {
+        metadata,
+        bse_pixel_size,
+        composition,
+        ..
+    } = args.resolve()?;
+    let composition = composition.check()?;
+    let (i, n) = match shard {
+        Some(s) => crate::fields::parse_shard(s).map_err(|p| {
+            Error::options(
+                format!("--shard {p}"),
+                "give the slice as I/N with 1 ≤ I ≤ N, e.g. --shard 2/4",
+            )
+        })?,
+        None => (1, 1),
+    };
+    let jobs = jobs.unwrap_or(2);
+    if jobs == 0 || jobs > 256 {
+        return Err(Error::options(
+            format!("--jobs {jobs} is out of range"),
+            "give 1 to 256 fields at a time",
+        ));
+    }
+    if out.is_file() {
+        return Err(Error::output(
+            out,
+            "is a file, not a folder",
+            "give a folder for the outputs (-o DIR)",
+        ));
+    }
+    std::fs::create_dir_all(out).map_err(|e| {
+        Error::output(
+            out,
+            format!("cannot be created: {e}"),
+            "check that its parent folder exists and is writable",
+        )
+    })?;
+    let names = crate::run::output_names(inputs);
+    let all: Vec<(PathBuf, String)> = inputs.iter().cloned().zip(names).collect();
+    let mine = crate::fields::shard(&all, i, n);
+    let job = FieldJob {
+        labelling: Labelling::Model {
+            model: &model,
+            reference: &reference,
+        },
+        map: &valid,
+        composition: &composition,
+        metadata,
+        bse_file: None,
+        no_bse: args.no_bse,
+        bse_pixel_size,
+        max_pixels: args.limits.max_pixels,
+        force: args.force,
+    };
+    let bar = progress_bar(args.quiet, mine.len());
+    let outcomes = crate::run::run_batch(&mine, out, &job, jobs, &|o| {
+        if let Some(b) = &bar {
+            b.set_message(o.field.clone());
+            b.inc(1);
+        }
+    });
+    if let Some(b) = bar {
+        b.finish_and_clear();
+    }
+    let summary_name = if n > 1 {
+        format!("apply-{i}-of-{n}.json")
+    } else {
+        "apply.json".into()
+    };
+    let summary = serde_json::json!({
+        "model": reference,
+        "shard": [i, n],
+        "fields": outcomes,
+    });
+    let text = serde_json::to_string_pretty(&summary)
+        .map_err(|e| Error::internal(format!("summary encoding failed: {e}")))?;
+    write_file_atomically(&out.join(&summary_name), text.as_bytes())?;
+    let failed: Vec<&crate::run::FieldOutcome> =
+        outcomes.iter().filter(|o| o.status != "ok").collect();
+    if !args.quiet {
+        println!(
+            "labelled {} of {} fields with {} (shard {i}/{n}); outputs in {}",
+            outcomes.len() - failed.len(),
+            outcomes.len(),
+            model_path.display(),
+            out.display()
+        );
+    }
+    for f in &failed {
+        eprintln!(
+            "error: field {} failed: {}",
+            f.field,
+            f.error.as_deref().unwrap_or("")
+        );
+    }
+    if failed.is_empty() {
+        Ok(0)
+    } else {
+        eprintln!(
+            "{} of {} fields failed; the others are done (listed in {})",
+            failed.len(),
+            outcomes.len(),
+            out.join(summary_name).display()
+        );
+        Ok(crate::error::PARTIAL_FAILURE_EXIT)
+    }
+}
+
+/// A progress bar over fields with an ETA, on a terminal only.
+fn progress_bar(quiet: bool, n: usize) -> Option<indicatif::ProgressBar> {
+    use std::io::IsTerminal;
+    if quiet || !std::io::stderr().is_terminal() {
+        return None;
+    }
+    let b = indicatif::ProgressBar::new(n as u64);
+    if let Ok(style) = indicatif::ProgressStyle::with_template(
+        "{bar:30} {pos}/{len} fields, {elapsed} elapsed, ETA {eta}  {msg}",
+    ) {
+        b.set_style(style);
+    }
+    Some(b)
+}
+
+/// Every report.json below `root` (temporary and hidden folders skipped), sorted.
+fn find_reports(root: &std::path::Path, found: &mut Vec<PathBuf>) -> Result<()> {
+    let entries = std::fs::read_dir(root).map_err(|e| {
+        Error::input(
+            root,
+            format!("cannot be read: {e}"),
+            "give the output folders of `modalmap apply`",
+        )
+    })?;
+    let mut paths: Vec<PathBuf> = entries.flatten().map(|e| e.path()).collect();
+    paths.sort();
+    for p in paths {
+        let hidden = p
+            .file_name()
+            .is_some_and(|n| n.to_string_lossy().starts_with('.'));
+        if hidden {
+            continue;
+        }
+        if p.is_dir() {
+            find_reports(&p, found)?;
+        } else if p.file_name().is_some_and(|n| n == "report.json") {
+            found.push(p);
+        }
+    }
+    Ok(())
+}
+
+/// `merge`: pool reports made with one model.
+fn merge(folders: &[PathBuf], out: &std::path::Path, force: bool, quiet: bool) -> Result<u8> {
+    let mut paths = Vec::new();
+    for f in folders {
+        if f.is_file() && f.file_name().is_some_and(|n| n == "report.json") {
+            paths.push(f.clone());
+        } else {
+            find_reports(f, &mut paths)?;
+        }
+    }
+    let mut seen = std::collections::BTreeSet::new();
+    paths.retain(|p| seen.insert(std::fs::canonicalize(p).unwrap_or_else(|_| p.clone())));
+    let dir = crate::report::prepare_output(out, force)?;
+    let reports = paths
+        .iter()
+        .map(|p| {
+            let text = std::fs::read_to_string(p)
+                .map_err(|e| Error::input(p, format!("cannot be read: {e}"), "check the file"))?;
+            let r: crate::report::Report = serde_json::from_str(&text).map_err(|e| {
+                Error::input(
+                    p,
+                    format!("is not a modalmap report of this version: {e}"),
+                    "merge reports written by this version of `modalmap apply`",
+                )
+            })?;
+            Ok((p.clone(), r))
+        })
+        .collect::<Result<Vec<_>>>()?;
+    let summary = crate::fields::merge(&reports)?;
+    let json = serde_json::to_string_pretty(&summary)
+        .map_err(|e| Error::internal(format!("summary encoding failed: {e}")))?;
+    dir.write("summary.json", json.as_bytes())?;
+    dir.write(
+        "summary.csv",
+        crate::fields::summary_csv(&summary).as_bytes(),
+    )?;
+    dir.write(
+        "summary.html",
+        crate::fields::summary_html(&summary).as_bytes(),
+    )?;
+    dir.commit()?;
+    if !quiet {
+        println!(
+            "pooled {} fields labelled with {}\n",
+            summary.fields.len(),
+            summary.model.path
+        );
+        println!(
+            "  {:>3}  {:<24} {:>10} {:>8} {:>17} {:>7}",
+            "id", "phase", "mean area %", "SD %", "95 % CI %", "%RA"
+        );
+        for p in &summary.phases {
+            println!(
+                "  {:>3}  {:<24} {:>10.2} {:>8.2} {:>17} {:>7}",
+                p.id,
+                p.name,
+                100.0 * p.area_fraction_mean,
+                100.0 * p.area_fraction_sd,
+                format!(
+                    "{:.2}–{:.2}",
+                    100.0 * p.area_fraction_ci95[0],
+                    100.0 * p.area_fraction_ci95[1]
+                ),
+                p.relative_accuracy_pct
+                    .map_or("–".into(), |v| format!("{v:.1}"))
+            );
+        }
+        println!("\n  outputs in {}", out.display());
+    }
+    Ok(0)
 }

@@ -8,6 +8,9 @@
 use std::fmt;
 use std::path::{Path, PathBuf};
 
+/// Exit code of a batch (`apply`) in which some fields failed and the others were done.
+pub const PARTIAL_FAILURE_EXIT: u8 = 5;
+
 /// What went wrong, in categories a user (or a batch script) can act on.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 #[non_exhaustive]

@@ -13,6 +13,7 @@ pub mod chem;
 pub mod cli;
 pub mod cluster;
 pub mod error;
+pub mod fields;
 pub mod inspect;
 pub mod io;
 pub mod library;
@@ -23,6 +24,7 @@ pub mod prepare;
 pub mod profile;
 pub mod refine;
 pub mod report;
+pub mod run;
 pub mod stack;
 pub mod synth;
 

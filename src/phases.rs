@@ -127,6 +127,18 @@ fn name_of(elements: &[String], comp: &[f64]) -> String {
 
 /// Computes the table and renumbers the labels (1 = largest phase; 0 stays unassigned).
 pub fn phase_table(seg: &mut Segmentation, counts: &MapStack, k: usize) -> PhaseTable {
+    phase_table_in_order(seg, counts, k, None)
+}
+
+/// As [`phase_table`], but with `fixed` (model indices in id order, as a saved model
+/// numbers its phases) every phase keeps its id, including those with no pixel in this
+/// field (area 0), so that fields labelled with one model can be pooled phase by phase.
+pub fn phase_table_in_order(
+    seg: &mut Segmentation,
+    counts: &MapStack,
+    k: usize,
+    fixed: Option<&[usize]>,
+) -> PhaseTable {
     let (w, h) = (seg.width, seg.height);
     let n = w * h;
     let d = counts.maps().len();
@@ -187,8 +199,14 @@ pub fn phase_table(seg: &mut Segmentation, counts: &MapStack, k: usize) -> Phase
         sum2,
         conf,
     } = acc;
-    let mut order: Vec<usize> = (0..k).filter(|&c| pixels[c] > 0).collect();
-    order.sort_by(|&a, &b| pixels[b].cmp(&pixels[a]).then(a.cmp(&b)));
+    let order: Vec<usize> = match fixed {
+        Some(f) => f.to_vec(),
+        None => {
+            let mut order: Vec<usize> = (0..k).filter(|&c| pixels[c] > 0).collect();
+            order.sort_by(|&a, &b| pixels[b].cmp(&pixels[a]).then(a.cmp(&b)));
+            order
+        }
+    };
     let mut new_id = vec![0u16; k + 1];
     for (i, &c) in order.iter().enumerate() {
         new_id[c + 1] = i as u16 + 1;
@@ -235,7 +253,7 @@ pub fn phase_table(seg: &mut Segmentation, counts: &MapStack, k: usize) -> Phase
         .map(|(i, &c)| {
             let id = i as u16 + 1;
             let np = pixels[c] as f64;
-            let mean: Vec<f64> = (0..d).map(|e| sum[c * d + e] / np).collect();
+            let mean: Vec<f64> = (0..d).map(|e| sum[c * d + e] / np.max(1.0)).collect();
             let sd: Vec<f64> = (0..d)
                 .map(|e| {
                     if np > 1.0 {
@@ -281,7 +299,7 @@ pub fn phase_table(seg: &mut Segmentation, counts: &MapStack, k: usize) -> Phase
                 particles: 0,
                 mean_ecd_px: 0.0,
                 largest_px: 0,
-                mean_confidence: conf[c] / np,
+                mean_confidence: if np > 0.0 { conf[c] / np } else { 0.0 },
             }
         })
         .collect::<Vec<_>>();

@@ -7,7 +7,7 @@ use crate::cluster::select::{self, ClusterParams, CurvePoint, PhaseCount, ValidC
 use crate::cluster::simplify::{self, Simplification};
 use crate::cluster::{Clusters, Method};
 use crate::error::{Error, Result};
-use crate::phases::{phase_table, PhaseTable};
+use crate::phases::{phase_table, phase_table_in_order, PhaseTable};
 use crate::prepare::{prepare, FeatureTransform, PrepareParams, Stabilise};
 use crate::refine::{
     interior_fractions, interior_means, refine, refine_from, RefineParams, Segmentation,
@@ -209,6 +209,37 @@ pub fn map_stack_with_progress(
         counts: f.counts,
         min_counts_used: f.min_counts_used,
         fitted_pixels: fit.fitted_pixels,
+    })
+}
+
+/// Labels a field with a saved model's clusters (no refit): prepare with the model's
+/// options, score and clean up every pixel, and number the phases in the model's order
+/// (`order`: model indices in id order), keeping phases absent from this field.
+pub fn label_with_model(
+    stack: MapStack,
+    opts: &ValidMapOptions,
+    clusters: &Clusters,
+    order: &[usize],
+) -> Result<MapResult> {
+    let f = prepare(stack, &opts.transform)?;
+    if f.dims != clusters.d() {
+        return Err(Error::internal(format!(
+            "the model has {} dimensions but the field {}",
+            clusters.d(),
+            f.dims
+        )));
+    }
+    let mut seg = refine(&f, clusters, &opts.refine);
+    let table = phase_table_in_order(&mut seg, &f.counts, clusters.k(), Some(order));
+    Ok(MapResult {
+        clusters: clusters.clone(),
+        curve: Vec::new(),
+        simplifications: Vec::new(),
+        segmentation: seg,
+        table,
+        counts: f.counts,
+        min_counts_used: f.min_counts_used,
+        fitted_pixels: 0,
     })
 }
 

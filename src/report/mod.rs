@@ -180,9 +180,21 @@ pub struct Report {
     pub composition: crate::characterise::CompositionReport,
     /// Beam-physics advice.
     pub advisor: crate::advisor::Advice,
+    /// The saved model the field was labelled with (`apply`).
+    #[serde(skip_serializing_if = "Option::is_none", default)]
+    pub model: Option<crate::fields::ModelRef>,
 }
 
-fn hash_file(path: &std::path::Path) -> Result<String> {
+/// SHA-256 of `bytes` as lowercase hex (FIPS 180-4).
+pub fn sha256_hex(bytes: &[u8]) -> String {
+    Sha256::digest(bytes)
+        .iter()
+        .map(|b| format!("{b:02x}"))
+        .collect()
+}
+
+/// SHA-256 of a file's bytes.
+pub fn hash_file(path: &std::path::Path) -> Result<String> {
     let bytes = std::fs::read(path).map_err(|e| {
         Error::input(
             path,
@@ -190,10 +202,7 @@ fn hash_file(path: &std::path::Path) -> Result<String> {
             "check the file",
         )
     })?;
-    Ok(Sha256::digest(&bytes)
-        .iter()
-        .map(|b| format!("{b:02x}"))
-        .collect())
+    Ok(sha256_hex(&bytes))
 }
 
 /// What the stages after labelling found, for the report.
@@ -205,6 +214,8 @@ pub struct Findings<'a> {
     pub composition: &'a crate::characterise::CompositionReport,
     /// Beam-physics advice.
     pub advisor: &'a crate::advisor::Advice,
+    /// The saved model, with `apply`.
+    pub model: Option<&'a crate::fields::ModelRef>,
 }
 
 /// Builds the report of a mapped field.
@@ -220,6 +231,7 @@ pub fn build(
         bse,
         composition,
         advisor,
+        model,
     } = findings;
     use rayon::prelude::*;
     let t = &result.table;
@@ -360,6 +372,7 @@ pub fn build(
         bse: bse.cloned(),
         composition: composition.clone(),
         advisor: advisor.clone(),
+        model: model.cloned(),
     })
 }
 

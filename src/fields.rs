@@ -1,0 +1,585 @@
+//! Many fields: one saved phase model for all of them (`fit`), labelling with it (`apply`,
+//! in shards), and pooling the fields' reports (`merge`).
+//!
+//! **Model file** (`modalmap.model/1`, JSON): the element list, the `map` options (feature
+//! transform, clustering, spatial prior), the fitted clusters, the phases in id order with
+//! their names, and the training fields with their windows and input hashes. A model only
+//! labels fields with exactly its elements.
+//!
+//! **Fitting.** Each training field gives a window of the same size at a seeded random
+//! place (so every field weighs the same, whatever its size); the windows are set side by
+//! side, separated by a strip of empty pixels (which the pipeline treats as pores, so no
+//! spatial step couples two fields), and mapped as one field with the `map` pipeline. The
+//! phases are numbered by their area on the training windows.
+//!
+//! **Pooling** follows the field-to-field statistics of quantitative metallography
+//! (ASTM E562, E1245): per phase the mean area fraction over n fields, the sample standard
+//! deviation s, the 95 % interval mean ± t₀.₉₇₅,ₙ₋₁ · s/√n and the relative accuracy
+//! %RA = 100 · (t s/√n) / mean.
+
+use std::collections::BTreeMap;
+use std::path::{Path, PathBuf};
+
+use rand::{Rng, SeedableRng};
+use rand_chacha::ChaCha8Rng;
+use serde::{Deserialize, Serialize};
+
+use crate::cluster::Clusters;
+use crate::error::{Error, Result};
+use crate::phases::mean_ci;
+use crate::pipeline::MapOptions;
+use crate::report::{InputFile, Report};
+use crate::stack::{ElementMap, MapStack};
+
+/// The model file's schema name and version.
+pub const MODEL_SCHEMA: &str = "modalmap.model/1";
+
+/// The merged summary's schema name and version.
+pub const SUMMARY_SCHEMA: &str = "modalmap.summary/1";
+
+/// Most pixels of all training windows together (common practice, no source: the fit
+/// itself samples at most 200 000 pixels; windows this size keep the spatial steps
+/// meaningful).
+pub const TRAINING_PIXELS: usize = 2_000_000;
+
+/// Empty columns between training windows.
+pub const GAP_PX: usize = 4;
+
+/// One phase of a model.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct ModelPhase {
+    /// Phase id in every output made with the model.
+    pub id: u16,
+    /// Name.
+    pub name: String,
+    /// Index of the phase in the clusters.
+    pub model_index: usize,
+    /// Area fraction on the training windows.
+    pub training_area_fraction: f64,
+}
+
+/// One training field.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct TrainingField {
+    /// Field name.
+    pub field: String,
+    /// Window used: x, y, width, height in map pixels.
+    pub window: [usize; 4],
+    /// Its input files and their SHA-256.
+    pub inputs: Vec<InputFile>,
+}
+
+/// A saved phase model.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct PhaseModel {
+    /// Schema name and version.
+    pub schema: String,
+    /// Version of modalmap that wrote it.
+    pub tool_version: String,
+    /// Element symbols, in the order of the clusters' dimensions.
+    pub elements: Vec<String>,
+    /// The `map` options of the fit (applied again when labelling).
+    pub options: MapOptions,
+    /// The fitted clusters.
+    pub clusters: Clusters,
+    /// Phases in id order.
+    pub phases: Vec<ModelPhase>,
+    /// Live time of the training fields, s, when known and equal.
+    pub live_time_s: Option<f64>,
+    /// The training fields.
+    pub training: Vec<TrainingField>,
+}
+
+/// Which model a report was made with.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct ModelRef {
+    /// Path of the model file as given.
+    pub path: String,
+    /// SHA-256 of the model file.
+    pub sha256: String,
+    /// Its schema.
+    pub schema: String,
+}
+
+impl PhaseModel {
+    /// Reads and checks a model file; returns it with a reference for reports.
+    pub fn load(path: &Path) -> Result<(PhaseModel, ModelRef)> {
+        let bytes = std::fs::read(path).map_err(|e| {
+            Error::input(path, format!("cannot be read: {e}"), "check the model path")
+        })?;
+        let value: serde_json::Value = serde_json::from_slice(&bytes).map_err(|e| {
+            Error::input(
+                path,
+                format!("is not a modalmap model (not JSON: {e})"),
+                "give a model file written by `modalmap fit`",
+            )
+        })?;
+        let schema = value.get("schema").and_then(|s| s.as_str()).unwrap_or("");
+        if schema != MODEL_SCHEMA {
+            return Err(Error::input(
+                path,
+                format!(
+                    "is a model of schema \"{schema}\"; this modalmap reads \"{MODEL_SCHEMA}\""
+                ),
+                "fit the model again with this version (`modalmap fit`)",
+            ));
+        }
+        let mut model: PhaseModel = serde_json::from_value(value).map_err(|e| {
+            Error::input(
+                path,
+                format!("is a damaged model file: {e}"),
+                "fit the model again (`modalmap fit`)",
+            )
+        })?;
+        let consistent = model.clusters.d() == model.elements.len()
+            && model.phases.len() == model.clusters.k()
+            && model
+                .phases
+                .iter()
+                .enumerate()
+                .all(|(i, p)| usize::from(p.id) == i + 1 && p.model_index < model.clusters.k());
+        if !consistent || model.clusters.refresh().is_err() {
+            return Err(Error::input(
+                path,
+                "is inconsistent: its elements, clusters and phases do not agree",
+                "fit the model again (`modalmap fit`)",
+            ));
+        }
+        let sha = crate::report::sha256_hex(&bytes);
+        Ok((
+            model,
+            ModelRef {
+                path: path.display().to_string(),
+                sha256: sha,
+                schema: MODEL_SCHEMA.into(),
+            },
+        ))
+    }
+
+    /// The model's phase order: model indices in id order.
+    pub fn order(&self) -> Vec<usize> {
+        self.phases.iter().map(|p| p.model_index).collect()
+    }
+
+    /// Refuses a field whose elements differ from the model's.
+    pub fn check_elements(&self, stack: &MapStack, field: &Path) -> Result<()> {
+        let have: Vec<&str> = stack.symbols();
+        if have != self.elements.iter().map(String::as_str).collect::<Vec<_>>() {
+            return Err(Error::input(
+                field,
+                format!(
+                    "has the elements {}, but the model was fitted on {}",
+                    have.join(", "),
+                    self.elements.join(", ")
+                ),
+                "label it with a model fitted on fields with the same element maps, or add or remove maps",
+            ));
+        }
+        Ok(())
+    }
+}
+
+/// Training windows side by side (see the module docs). `bin` keeps windows and gaps
+/// whole multiples of the binning factor. Returns the combined stack and each field's
+/// window.
+pub fn training_stack(
+    fields: &[(String, &MapStack)],
+    bin: usize,
+    seed: u64,
+) -> Result<(MapStack, Vec<[usize; 4]>)> {
+    let first = fields
+        .first()
+        .ok_or_else(|| Error::options("no field given", "give at least one field to fit on"))?;
+    let symbols = first.1.symbols();
+    for (name, s) in fields {
+        if s.symbols() != symbols {
+            return Err(Error::input(
+                Path::new(name),
+                format!(
+                    "has the elements {}, but {} has {}",
+                    s.symbols().join(", "),
+                    first.0,
+                    symbols.join(", ")
+                ),
+                "fit a model on fields mapped for the same elements",
+            ));
+        }
+    }
+    let n = fields.len();
+    let cap = ((TRAINING_PIXELS / n) as f64).sqrt() as usize;
+    let round = |v: usize| (v / bin) * bin;
+    let ww = round(
+        fields
+            .iter()
+            .map(|f| f.1.width())
+            .min()
+            .unwrap_or(0)
+            .min(cap.max(bin)),
+    );
+    let wh = round(
+        fields
+            .iter()
+            .map(|f| f.1.height())
+            .min()
+            .unwrap_or(0)
+            .min(cap.max(bin)),
+    );
+    if ww == 0 || wh == 0 {
+        return Err(Error::input(
+            Path::new(&first.0),
+            "is too small to fit on",
+            "fit on fields of at least a few pixels, or bin less",
+        ));
+    }
+    let gap = GAP_PX.div_ceil(bin) * bin;
+    let width = n * ww + (n - 1) * gap;
+    let mut rng = ChaCha8Rng::seed_from_u64(seed ^ 0x6669_7421);
+    let windows: Vec<[usize; 4]> = fields
+        .iter()
+        .map(|(_, s)| {
+            let x = round(rng.random_range(0..=s.width() - ww));
+            let y = round(rng.random_range(0..=s.height() - wh));
+            [x, y, ww, wh]
+        })
+        .collect();
+    let maps: Vec<ElementMap> = (0..symbols.len())
+        .map(|e| {
+            let mut counts = vec![0f32; width * wh];
+            for (f, ((_, s), w)) in fields.iter().zip(&windows).enumerate() {
+                let src = &s.maps()[e].counts;
+                let x0 = f * (ww + gap);
+                for y in 0..wh {
+                    let from = (w[1] + y) * s.width() + w[0];
+                    counts[y * width + x0..y * width + x0 + ww]
+                        .copy_from_slice(&src[from..from + ww]);
+                }
+            }
+            ElementMap {
+                element: first.1.maps()[e].element,
+                line: first.1.maps()[e].line.clone(),
+                counts,
+                source: "training windows".into(),
+            }
+        })
+        .collect();
+    let stack = MapStack::new(
+        Path::new("training windows"),
+        width,
+        wh,
+        maps,
+        first.1.metadata().clone(),
+    )?;
+    Ok((stack, windows))
+}
+
+/// The fields of shard `i` of `n` (1-based): every n-th field starting at the i-th, in
+/// the order given, so shards are deterministic and balanced.
+pub fn shard<T: Clone>(items: &[T], i: usize, n: usize) -> Vec<T> {
+    items
+        .iter()
+        .enumerate()
+        .filter(|(k, _)| k % n == i - 1)
+        .map(|(_, x)| x.clone())
+        .collect()
+}
+
+/// Parses `I/N` (1 ≤ I ≤ N).
+pub fn parse_shard(s: &str) -> std::result::Result<(usize, usize), String> {
+    let (i, n) = s
+        .split_once('/')
+        .ok_or_else(|| format!("`{s}` is not I/N"))?;
+    let (i, n): (usize, usize) = (
+        i.trim()
+            .parse()
+            .map_err(|_| format!("`{i}` is not a number"))?,
+        n.trim()
+            .parse()
+            .map_err(|_| format!("`{n}` is not a number"))?,
+    );
+    if n == 0 || i == 0 || i > n {
+        return Err(format!("shard {i}/{n}: need 1 ≤ I ≤ N"));
+    }
+    Ok((i, n))
+}
+
+/// Field-to-field statistics of one phase.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct PooledPhase {
+    /// Phase id (the model's).
+    pub id: u16,
+    /// Name (the model's).
+    pub name: String,
+    /// Fields pooled.
+    pub fields: usize,
+    /// Mean area fraction over the fields, 0..1.
+    pub area_fraction_mean: f64,
+    /// Sample standard deviation of the fields' area fractions.
+    pub area_fraction_sd: f64,
+    /// 95 % interval of the mean (Student t, n − 1 degrees of freedom).
+    pub area_fraction_ci95: [f64; 2],
+    /// Two-sided 95 % t quantile used.
+    pub t_quantile: f64,
+    /// Relative accuracy, % (half-width of the interval over the mean).
+    pub relative_accuracy_pct: Option<f64>,
+    /// Composition, wt%, pooled over the fields weighted by the pixels each was summed
+    /// over.
+    pub composition_wt: BTreeMap<String, f64>,
+    /// Features over all fields.
+    pub particles: usize,
+    /// Pixels over all fields.
+    pub pixels: usize,
+}
+
+/// One pooled field.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct PooledField {
+    /// Field name.
+    pub field: String,
+    /// Its report.
+    pub report: String,
+}
+
+/// `summary.json`.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Summary {
+    /// Schema name and version.
+    pub schema: String,
+    /// The model every field was labelled with.
+    pub model: ModelRef,
+    /// The fields pooled.
+    pub fields: Vec<PooledField>,
+    /// Per phase, in id order.
+    pub phases: Vec<PooledPhase>,
+    /// Mean unassigned fraction.
+    pub unassigned_fraction_mean: f64,
+    /// How the statistics were computed.
+    pub method: String,
+    /// Limits of what the numbers mean.
+    pub cautions: Vec<String>,
+}
+
+/// Pools reports made with one model. `reports` are (path of report.json, report).
+pub fn merge(reports: &[(PathBuf, Report)]) -> Result<Summary> {
+    let Some((first_path, first)) = reports.first() else {
+        return Err(Error::options(
+            "no report.json found below the given folders",
+            "give the output folders of `modalmap apply`",
+        ));
+    };
+    let model = first.model.clone().ok_or_else(|| {
+        Error::input(
+            first_path,
+            "was made by `map`, not with a saved model",
+            "label every field with one model (`modalmap fit`, then `modalmap apply`) and merge those outputs",
+        )
+    })?;
+    for (p, r) in reports {
+        match &r.model {
+            Some(m) if m.sha256 == model.sha256 => {}
+            Some(m) => {
+                return Err(Error::input(
+                    p,
+                    format!(
+                        "was made with another model ({}, not {})",
+                        m.path, model.path
+                    ),
+                    "merge only fields labelled with the same model file",
+                ))
+            }
+            None => {
+                return Err(Error::input(
+                    p,
+                    "was made by `map`, not with a saved model",
+                    "merge only the outputs of `modalmap apply`",
+                ))
+            }
+        }
+    }
+    let n = reports.len();
+    let phases = first
+        .phases
+        .iter()
+        .map(|p0| {
+            let entries: Vec<&crate::report::PhaseEntry> = reports
+                .iter()
+                .filter_map(|(_, r)| r.phases.iter().find(|q| q.id == p0.id))
+                .collect();
+            let fractions: Vec<f64> = reports
+                .iter()
+                .map(|(_, r)| {
+                    r.phases
+                        .iter()
+                        .find(|q| q.id == p0.id)
+                        .map_or(0.0, |q| q.area_fraction)
+                })
+                .collect();
+            let (mean, sd, half, t) = mean_ci(&fractions);
+            let (lo, hi) = if half.is_finite() {
+                ((mean - half).max(0.0), (mean + half).min(1.0))
+            } else {
+                (mean, mean)
+            };
+            let weight: f64 = entries.iter().map(|q| q.composition_pixels as f64).sum();
+            let mut composition_wt = BTreeMap::new();
+            if weight > 0.0 {
+                for e in p0.composition_wt.keys() {
+                    let v: f64 = entries
+                        .iter()
+                        .map(|q| {
+                            q.composition_pixels as f64
+                                * q.composition_wt.get(e).copied().unwrap_or(0.0)
+                        })
+                        .sum::<f64>()
+                        / weight;
+                    composition_wt.insert(e.clone(), v);
+                }
+            }
+            PooledPhase {
+                id: p0.id,
+                name: p0.name.clone(),
+                fields: n,
+                area_fraction_mean: mean,
+                area_fraction_sd: sd,
+                area_fraction_ci95: [lo, hi],
+                t_quantile: t,
+                relative_accuracy_pct: (half.is_finite() && mean > 0.0)
+                    .then(|| 100.0 * half / mean),
+                composition_wt,
+                particles: entries.iter().map(|q| q.particles).sum(),
+                pixels: entries.iter().map(|q| q.pixels).sum(),
+            }
+        })
+        .collect();
+    Ok(Summary {
+        schema: SUMMARY_SCHEMA.into(),
+        model,
+        fields: reports
+            .iter()
+            .map(|(p, r)| PooledField {
+                field: r.field.clone(),
+                report: p.display().to_string(),
+            })
+            .collect(),
+        phases,
+        unassigned_fraction_mean: reports.iter().map(|(_, r)| r.unassigned_fraction).sum::<f64>()
+            / n as f64,
+        method: "per phase over n fields: mean area fraction, sample SD s, 95 % interval mean ± t·s/√n (Student t, n − 1 degrees of freedom), %RA = 100·(t·s/√n)/mean (ASTM E562, E1245 field statistics); compositions pooled weighted by the pixels each field's was summed over".into(),
+        cautions: vec![
+            "The interval covers the variation between these fields; it estimates the material's value only if the fields were placed without regard to the microstructure (systematic or random sampling) and are enough in number (ASTM E562 §11: four times the fields halves %RA).".into(),
+            "Area fractions estimate volume fractions only for an isotropic, uniform microstructure.".into(),
+            "Compositions carry the cautions of the individual reports: semi-quantitative, and uncalibrated unless a report says otherwise.".into(),
+            "Follow your laboratory's accredited procedures and the applicable standards for results that go into a materials report.".into(),
+        ],
+    })
+}
+
+/// `summary.csv`: one row per phase.
+pub fn summary_csv(s: &Summary) -> String {
+    let elements: Vec<String> = s
+        .phases
+        .first()
+        .map(|p| p.composition_wt.keys().cloned().collect())
+        .unwrap_or_default();
+    let mut out = String::from("id,name,fields,area_fraction_mean,area_fraction_sd,area_fraction_ci95_low,area_fraction_ci95_high,relative_accuracy_pct,particles,pixels");
+    for e in &elements {
+        out.push_str(&format!(",wt_{e}"));
+    }
+    out.push('\n');
+    for p in &s.phases {
+        let name = if p.name.contains([',', '"']) {
+            format!("\"{}\"", p.name.replace('"', "\"\""))
+        } else {
+            p.name.clone()
+        };
+        out.push_str(&format!(
+            "{},{},{},{:.6},{:.6},{:.6},{:.6},{},{},{}",
+            p.id,
+            name,
+            p.fields,
+            p.area_fraction_mean,
+            p.area_fraction_sd,
+            p.area_fraction_ci95[0],
+            p.area_fraction_ci95[1],
+            p.relative_accuracy_pct
+                .map_or(String::new(), |v| format!("{v:.2}")),
+            p.particles,
+            p.pixels
+        ));
+        for e in &elements {
+            out.push_str(&format!(
+                ",{}",
+                p.composition_wt
+                    .get(e)
+                    .map_or(String::new(), |v| format!("{v:.3}"))
+            ));
+        }
+        out.push('\n');
+    }
+    out
+}
+
+fn html_escape(s: &str) -> String {
+    s.replace('&', "&amp;")
+        .replace('<', "&lt;")
+        .replace('>', "&gt;")
+        .replace('"', "&quot;")
+}
+
+/// `summary.html`: a short self-contained page with the pooled table.
+pub fn summary_html(s: &Summary) -> String {
+    let mut rows = String::new();
+    for p in &s.phases {
+        let comp: Vec<String> = p
+            .composition_wt
+            .iter()
+            .filter(|(_, v)| **v >= 1.0)
+            .map(|(e, v)| format!("{e} {v:.1}"))
+            .collect();
+        rows.push_str(&format!(
+            "<tr><td>{}</td><td>{}</td><td>{:.2}</td><td>{:.2}</td><td>{:.2} – {:.2}</td><td>{}</td><td>{}</td><td>{}</td></tr>\n",
+            p.id,
+            html_escape(&p.name),
+            100.0 * p.area_fraction_mean,
+            100.0 * p.area_fraction_sd,
+            100.0 * p.area_fraction_ci95[0],
+            100.0 * p.area_fraction_ci95[1],
+            p.relative_accuracy_pct.map_or("–".into(), |v| format!("{v:.1}")),
+            p.particles,
+            html_escape(&comp.join(", "))
+        ));
+    }
+    let cautions: String = s
+        .cautions
+        .iter()
+        .map(|c| format!("<li>{}</li>", html_escape(c)))
+        .collect();
+    let fields: String = s
+        .fields
+        .iter()
+        .map(|f| format!("<li>{}</li>", html_escape(&f.field)))
+        .collect();
+    format!(
+        "<!DOCTYPE html>\n<html lang=\"en\"><head><meta charset=\"utf-8\"><title>modalmap summary</title>\n<style>body{{font-family:sans-serif;max-width:60em;margin:2em auto;}}table{{border-collapse:collapse;}}td,th{{border:1px solid #999;padding:.3em .6em;text-align:right;}}td:nth-child(2){{text-align:left;}}</style></head><body>\n<h1>Pooled phase statistics over {} fields</h1>\n<p>Model: {} (SHA-256 {}).</p>\n<table>\n<tr><th>id</th><th>phase</th><th>mean area %</th><th>SD %</th><th>95 % CI %</th><th>%RA</th><th>features</th><th>composition wt%</th></tr>\n{rows}</table>\n<p>{}</p>\n<h2>Cautions</h2><ul>{cautions}</ul>\n<h2>Fields</h2><ul>{fields}</ul>\n</body></html>\n",
+        s.fields.len(),
+        html_escape(&s.model.path),
+        &s.model.sha256,
+        html_escape(&s.method),
+    )
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn shards_are_disjoint_and_cover_everything() {
+        let items: Vec<usize> = (0..11).collect();
+        let mut all: Vec<usize> = (1..=4).flat_map(|i| shard(&items, i, 4)).collect();
+        all.sort();
+        assert_eq!(all, items);
+        assert_eq!(shard(&items, 2, 4), vec![1, 5, 9]);
+        assert_eq!(parse_shard("3/4"), Ok((3, 4)));
+        assert!(parse_shard("0/4").is_err() && parse_shard("5/4").is_err());
+        assert!(parse_shard("x").is_err());
+    }
+}

@@ -1,0 +1,283 @@
+//! One field end to end (load → label → compositions → BSE check → report → outputs), as
+//! `map` and `apply` run it, and batches of fields for `apply`.
+//!
+//! The command line resolves options into a [`FieldJob`]; nothing here prints, progress is
+//! reported through callbacks.
+
+use std::path::{Path, PathBuf};
+
+use serde::{Deserialize, Serialize};
+
+use crate::characterise::ValidCompositionOptions;
+use crate::error::{Error, Result};
+use crate::fields::{ModelRef, PhaseModel};
+use crate::io::{load_field, BseSource, Limits};
+use crate::pipeline::ValidMapOptions;
+use crate::report::Report;
+use crate::stack::FieldMetadata;
+
+/// How a field's pixels are labelled.
+#[derive(Debug, Clone, Copy)]
+pub enum Labelling<'a> {
+    /// Fit a model to this field (`map`).
+    Fit,
+    /// Use a saved model (`apply`): no refit, the model's phase ids and names.
+    Model {
+        /// The model.
+        model: &'a PhaseModel,
+        /// Its file and hash, for the report.
+        reference: &'a ModelRef,
+    },
+}
+
+/// Everything needed to run one field, resolved from the command line.
+#[derive(Debug, Clone)]
+pub struct FieldJob<'a> {
+    /// Labelling.
+    pub labelling: Labelling<'a>,
+    /// Mapping options (for `apply`, the model's).
+    pub map: &'a ValidMapOptions,
+    /// Composition options.
+    pub composition: &'a ValidCompositionOptions,
+    /// Metadata given on the command line (wins over the field's).
+    pub metadata: FieldMetadata,
+    /// A BSE image given explicitly.
+    pub bse_file: Option<PathBuf>,
+    /// Skip the BSE check.
+    pub no_bse: bool,
+    /// BSE pixel size given on the command line.
+    pub bse_pixel_size: Option<f64>,
+    /// Decoding limit.
+    pub max_pixels: u64,
+    /// Replace a non-empty output folder.
+    pub force: bool,
+}
+
+/// Runs one field into `out` (atomically); `progress` hears the stage names.
+pub fn process_field(
+    input: &Path,
+    out: &Path,
+    job: &FieldJob,
+    progress: &mut dyn FnMut(&str),
+) -> Result<Report> {
+    let dir = crate::report::prepare_output(out, job.force)?;
+    let t = crate::profile::stage("load");
+    let limits = Limits {
+        max_pixels: job.max_pixels,
+    };
+    let mut field = load_field(input, &limits)?;
+    drop(t);
+    field.stack.override_metadata(&job.metadata);
+    if let Labelling::Model { model, .. } = job.labelling {
+        model.check_elements(&field.stack, input)?;
+    }
+    let map_size = (field.stack.width(), field.stack.height());
+    let map_pixel_um = field.stack.metadata().pixel_size_um;
+    let bse_pixel_size = job
+        .bse_pixel_size
+        .or(field.stack.metadata().bse_pixel_size_um);
+    if let Some(v) = bse_pixel_size {
+        if !(v.is_finite() && v > 0.0) {
+            return Err(Error::options(
+                format!("--bse-pixel-size {v} is not a positive number"),
+                "give the BSE pixel size in µm",
+            ));
+        }
+        if map_pixel_um.is_none() {
+            return Err(Error::options(
+                "--bse-pixel-size needs the maps' pixel size too",
+                "set pixel_size_um in field.toml or give --pixel-size",
+            ));
+        }
+    }
+    let bse_source = if job.no_bse {
+        None
+    } else {
+        job.bse_file
+            .clone()
+            .map(BseSource::File)
+            .or(field.bse.clone())
+    };
+    let bse_image = bse_source
+        .as_ref()
+        .map(|s| {
+            crate::io::load_bse(
+                s,
+                &Limits {
+                    max_pixels: job.max_pixels.saturating_mul(16),
+                },
+            )
+        })
+        .transpose()?;
+    let crate::io::LoadedField {
+        stack,
+        name,
+        mut files,
+        mut warnings,
+        ..
+    } = field;
+    // k-factor and library files are inputs too: their hashes go into the provenance.
+    let given = job.composition.options();
+    for p in given.kfactors.iter().chain(&given.libraries) {
+        if !files.contains(p) {
+            files.push(p.clone());
+        }
+    }
+    // The BSE image is an input too.
+    if let Some(BseSource::File(p)) = bse_source {
+        if !files.contains(&p) {
+            files.push(p);
+        }
+    }
+    let mut result = match job.labelling {
+        Labelling::Fit => crate::pipeline::map_stack_with_progress(stack, job.map, progress)?,
+        Labelling::Model { model, .. } => {
+            if let (Some(a), Some(b)) = (model.live_time_s, stack.metadata().live_time_s) {
+                if (a - b).abs() > 0.05 * a {
+                    warnings.push(format!(
+                        "this field's live time ({b} s) differs from the model's training fields ({a} s): counts scale with live time, so phases may be mislabelled; fit a model on fields acquired alike"
+                    ));
+                }
+            }
+            progress("labelling pixels with the model");
+            crate::pipeline::label_with_model(stack, job.map, &model.clusters, &model.order())?
+        }
+    };
+    progress("compositions");
+    let (composition_report, advice) = {
+        let _t = crate::profile::stage("composition");
+        crate::pipeline::characterise(&mut result, job.composition)?
+    };
+    let model_ref = match job.labelling {
+        Labelling::Model { model, reference } => {
+            // One model, one set of names: the model's, whatever each field matches.
+            for (p, m) in result.table.phases.iter_mut().zip(&model.phases) {
+                p.name = m.name.clone();
+            }
+            Some(reference)
+        }
+        Labelling::Fit => None,
+    };
+    let bse = match &bse_image {
+        Some(img) => {
+            progress("BSE check");
+            let _t = crate::profile::stage("bse check");
+            let seg = &result.segmentation;
+            Some(crate::bse::check(
+                img,
+                &seg.labels,
+                seg.width,
+                seg.height,
+                &result.table,
+                crate::bse::Geometry {
+                    map_size,
+                    bin: job.map.options().prepare.bin,
+                    pixel_sizes_um: map_pixel_um.zip(bse_pixel_size),
+                },
+            )?)
+        }
+        None => None,
+    };
+    let t = crate::profile::stage("report (hashes)");
+    let report = crate::report::build(
+        &name,
+        &files,
+        &result,
+        job.map.options(),
+        warnings,
+        crate::report::Findings {
+            bse: bse.as_ref(),
+            composition: &composition_report,
+            advisor: &advice,
+            model: model_ref,
+        },
+    )?;
+    drop(t);
+    let _t = crate::profile::stage("write outputs");
+    crate::report::write_outputs(&dir, &report, &result, bse.as_ref())?;
+    dir.commit()?;
+    Ok(report)
+}
+
+/// What happened to one field of a batch.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct FieldOutcome {
+    /// Field name (its output folder's name).
+    pub field: String,
+    /// Input path as given.
+    pub input: String,
+    /// Output folder.
+    pub output: String,
+    /// `ok` or `failed`.
+    pub status: String,
+    /// Error message, when it failed.
+    #[serde(skip_serializing_if = "Option::is_none", default)]
+    pub error: Option<String>,
+    /// Number of phases with pixels, when it succeeded.
+    #[serde(skip_serializing_if = "Option::is_none", default)]
+    pub phases_present: Option<usize>,
+}
+
+/// Output folder names for a list of inputs: each input's field name, made unique by
+/// `-2`, `-3`, ... in input order (so every shard names a field the same way).
+pub fn output_names(inputs: &[PathBuf]) -> Vec<String> {
+    let mut seen: Vec<String> = Vec::new();
+    inputs
+        .iter()
+        .map(|p| {
+            let base = crate::io::field_name(p);
+            let mut name = base.clone();
+            let mut k = 1;
+            while seen.contains(&name) {
+                k += 1;
+                name = format!("{base}-{k}");
+            }
+            seen.push(name.clone());
+            name
+        })
+        .collect()
+}
+
+/// Runs `fields` (input, output folder name) into `out`, `jobs` at a time, carrying on
+/// past failures; `done` is told each finished field. Outcomes are in input order.
+pub fn run_batch(
+    fields: &[(PathBuf, String)],
+    out: &Path,
+    job: &FieldJob,
+    jobs: usize,
+    done: &(dyn Fn(&FieldOutcome) + Sync),
+) -> Vec<FieldOutcome> {
+    use rayon::prelude::*;
+    let run_one = |(input, name): &(PathBuf, String)| {
+        let target = out.join(name);
+        let r = std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| {
+            process_field(input, &target, job, &mut |_| {})
+        }))
+        .unwrap_or_else(|_| {
+            Err(Error::internal(format!(
+                "labelling {} failed unexpectedly",
+                input.display()
+            )))
+        });
+        let outcome = FieldOutcome {
+            field: name.clone(),
+            input: input.display().to_string(),
+            output: target.display().to_string(),
+            status: if r.is_ok() { "ok" } else { "failed" }.into(),
+            error: r.as_ref().err().map(|e| e.to_string()),
+            phases_present: r
+                .as_ref()
+                .ok()
+                .map(|rep| rep.phases.iter().filter(|p| p.pixels > 0).count()),
+        };
+        done(&outcome);
+        outcome
+    };
+    match rayon::ThreadPoolBuilder::new()
+        .num_threads(jobs.max(1))
+        .build()
+    {
+        Ok(pool) if jobs > 1 => pool.install(|| fields.par_iter().map(run_one).collect()),
+        _ => fields.iter().map(run_one).collect(),
+    }
+}

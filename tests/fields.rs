@@ -1,0 +1,234 @@
+//! Many fields: `fit` on three synthetic fields, `apply` to eight in four shards, `merge`,
+//! against the generator's ground truth; the pooled statistics against scipy; failures.
+//!
+//! The fields are invented six-mineral rocks from `modalmap::synth::benchmark_rock`
+//! (seeded), so every field has its own grains and the true labels are known.
+
+mod common;
+
+use std::path::{Path, PathBuf};
+
+use common::modalmap;
+use modalmap::synth::{benchmark_rock, generate, match_labels, write_folder};
+
+const SIZE: usize = 160;
+
+/// Writes rock `seed` as a maps folder under `dir`; returns the folder and the truth.
+fn rock(dir: &Path, seed: u64) -> (PathBuf, Vec<u16>) {
+    let (micro, opts) = benchmark_rock(SIZE, seed);
+    let field = generate(&micro, &opts).unwrap();
+    let p = dir.join(format!("rock{seed:02}"));
+    write_folder(&field, &p).unwrap();
+    (p, field.truth)
+}
+
+fn s(p: &Path) -> String {
+    p.display().to_string()
+}
+
+fn json(p: &Path) -> serde_json::Value {
+    serde_json::from_str(&std::fs::read_to_string(p).unwrap()).unwrap()
+}
+
+/// Field statistics as ASTM E562/E1245 write them, against numpy/scipy values
+/// (tests/fixtures/stats/make_fixtures.py; includes the worked example of REFERENCES.md
+/// §7: 10, 12, 8, 11, 9 % → mean 10.0, s 1.581, t 2.776, CI ± 1.963, %RA 19.6).
+#[test]
+fn field_statistics_match_scipy() {
+    let fx: serde_json::Value =
+        serde_json::from_str(include_str!("fixtures/stats/field_statistics.json")).unwrap();
+    for c in fx["cases"].as_array().unwrap() {
+        let v: Vec<f64> = c["values"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .map(|x| x.as_f64().unwrap())
+            .collect();
+        let (mean, sd, half, t) = modalmap::phases::mean_ci(&v);
+        let close = |a: f64, key: &str| {
+            let b = c[key].as_f64().unwrap();
+            assert!(
+                (a - b).abs() <= 1e-9 * b.abs().max(1.0),
+                "{key}: {a} vs {b}"
+            );
+        };
+        close(mean, "mean");
+        close(sd, "sd");
+        close(t, "t");
+        close(half, "half_width");
+        close(100.0 * half / mean, "relative_accuracy_pct");
+    }
+}
+
+#[test]
+fn fit_apply_in_shards_and_merge_match_the_truth() {
+    let tmp = tempfile::tempdir().unwrap();
+    let d = tmp.path();
+    let train: Vec<PathBuf> = (1..=3).map(|k| rock(d, k).0).collect();
+    let fields: Vec<(PathBuf, Vec<u16>)> = (4..=11).map(|k| rock(d, k)).collect();
+    let model = d.join("model.json");
+    let mut args = vec!["fit".to_string()];
+    args.extend(train.iter().map(|p| s(p)));
+    args.extend(["-o".into(), s(&model)]);
+    let refs: Vec<&str> = args.iter().map(String::as_str).collect();
+    let r = modalmap(&refs);
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    let m = json(&model);
+    assert_eq!(m["schema"], "modalmap.model/1");
+    assert_eq!(m["phases"].as_array().unwrap().len(), 6, "six minerals");
+    assert_eq!(m["training"].as_array().unwrap().len(), 3);
+
+    // One machine, all fields; then four shards into another folder.
+    let apply = |out: &Path, shard: Option<&str>| {
+        let mut a = vec!["apply".to_string(), s(&model)];
+        a.extend(fields.iter().map(|f| s(&f.0)));
+        a.extend(["-o".into(), s(out), "--quiet".into()]);
+        if let Some(sh) = shard {
+            a.extend(["--shard".into(), sh.into()]);
+        }
+        let refs: Vec<&str> = a.iter().map(String::as_str).collect();
+        modalmap(&refs)
+    };
+    let (all, sharded) = (d.join("all"), d.join("sharded"));
+    let r = apply(&all, None);
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    for i in 1..=4 {
+        let r = apply(&sharded, Some(&format!("{i}/4")));
+        assert_eq!(r.code, 0, "{}", r.stderr);
+        let listed = json(&sharded.join(format!("apply-{i}-of-4.json")));
+        assert_eq!(listed["fields"].as_array().unwrap().len(), 2);
+    }
+    let merge = |from: &Path, to: &Path| {
+        let r = modalmap(&["merge", &s(from), "-o", &s(to)]);
+        assert_eq!(r.code, 0, "{}", r.stderr);
+        json(&to.join("summary.json"))
+    };
+    let one = merge(&all, &d.join("sum-all"));
+    let four = merge(&sharded, &d.join("sum-sharded"));
+    assert_eq!(one["phases"], four["phases"], "shards change nothing");
+    assert_eq!(one["fields"].as_array().unwrap().len(), 8);
+    assert!(d.join("sum-all/summary.csv").is_file() && d.join("sum-all/summary.html").is_file());
+
+    // Per model phase: the true area fraction of the truth phase it covers, field by
+    // field, against the pooled mean and its interval.
+    let k = one["phases"].as_array().unwrap().len();
+    let mut truth = vec![Vec::new(); k];
+    let mut labelled = vec![Vec::new(); k];
+    for (path, t) in &fields {
+        let name = path.file_name().unwrap().to_string_lossy().into_owned();
+        let img =
+            modalmap::io::read_raster(&all.join(&name).join("labels.png"), &Default::default())
+                .unwrap();
+        let pred: Vec<u16> = img.data.iter().map(|&v| v as u16).collect();
+        let map = match_labels(&pred, t);
+        let n = t.len() as f64;
+        for id in 1..=k {
+            let tl = map.get(id).copied().flatten();
+            truth[id - 1]
+                .push(tl.map_or(0.0, |tl| t.iter().filter(|&&x| x == tl).count() as f64 / n));
+            labelled[id - 1].push(pred.iter().filter(|&&x| x as usize == id).count() as f64 / n);
+        }
+    }
+    for (i, p) in one["phases"].as_array().unwrap().iter().enumerate() {
+        let mean = p["area_fraction_mean"].as_f64().unwrap();
+        let [lo, hi] = [0, 1].map(|j| p["area_fraction_ci95"][j].as_f64().unwrap());
+        // The summary's numbers are the field statistics of the labelled fractions.
+        let (m, sd, half, _) = modalmap::phases::mean_ci(&labelled[i]);
+        assert!(
+            (m - mean).abs() < 1e-9 && (sd - p["area_fraction_sd"].as_f64().unwrap()).abs() < 1e-9
+        );
+        assert!((lo - (m - half).max(0.0)).abs() < 1e-9 && (hi - (m + half)).abs() < 1e-9);
+        // And they match the truth within the interval.
+        let true_mean = truth[i].iter().sum::<f64>() / truth[i].len() as f64;
+        assert!(
+            true_mean >= lo && true_mean <= hi && (true_mean - mean).abs() < 0.01,
+            "phase {} ({}): truth {true_mean:.4}, pooled {mean:.4} [{lo:.4}, {hi:.4}]",
+            p["id"],
+            p["name"]
+        );
+    }
+}
+
+#[test]
+fn a_bad_field_fails_alone_and_models_are_checked() {
+    let tmp = tempfile::tempdir().unwrap();
+    let d = tmp.path();
+    let (a, _) = rock(d, 21);
+    let (b, _) = rock(d, 22);
+    let model = d.join("model.json");
+    let r = modalmap(&["fit", &s(&a), "-o", &s(&model), "--quiet"]);
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    // Refit over an existing model needs --force.
+    let r = modalmap(&["fit", &s(&a), "-o", &s(&model)]);
+    assert_eq!(r.code, 4, "{}", r.stderr);
+
+    // The sample field has other elements: it fails, the rock is done, exit code 5.
+    let sample = Path::new(env!("CARGO_MANIFEST_DIR")).join("sample-maps");
+    let out = d.join("out");
+    let r = modalmap(&[
+        "apply",
+        &s(&model),
+        &s(&sample),
+        &s(&b),
+        "-o",
+        &s(&out),
+        "--quiet",
+    ]);
+    assert_eq!(r.code, 5, "{}", r.stderr);
+    assert!(
+        r.stderr.contains("sample-maps") && r.stderr.contains("elements"),
+        "{}",
+        r.stderr
+    );
+    let listed = json(&out.join("apply.json"));
+    let f = listed["fields"].as_array().unwrap();
+    assert_eq!(
+        (f[0]["status"].as_str(), f[1]["status"].as_str()),
+        (Some("failed"), Some("ok"))
+    );
+    assert!(out.join("rock22/report.json").is_file() && !out.join("sample-maps").exists());
+    let rep = json(&out.join("rock22/report.json"));
+    assert_eq!(rep["model"]["schema"], "modalmap.model/1");
+
+    // Options the model fixes are refused.
+    let r = modalmap(&[
+        "apply",
+        &s(&model),
+        &s(&b),
+        "-o",
+        &s(&d.join("o2")),
+        "--phases",
+        "3",
+    ]);
+    assert_eq!(r.code, 2, "{}", r.stderr);
+    assert!(r.stderr.contains("--phases"));
+    // A model of another schema version.
+    let mut m = json(&model);
+    m["schema"] = "modalmap.model/2".into();
+    let other = d.join("other.json");
+    std::fs::write(&other, m.to_string()).unwrap();
+    let r = modalmap(&["apply", &s(&other), &s(&b), "-o", &s(&d.join("o3"))]);
+    assert_eq!(r.code, 3, "{}", r.stderr);
+    assert!(r.stderr.contains("other.json") && r.stderr.contains("modalmap.model/1"));
+
+    // merge refuses a `map` output, and fields of two models.
+    let mapped = d.join("mapped");
+    let r = modalmap(&["map", &s(&b), "-o", &s(&mapped), "--quiet"]);
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    let r = modalmap(&["merge", &s(&mapped), "-o", &s(&d.join("s1"))]);
+    assert_eq!(r.code, 3, "{}", r.stderr);
+    let model2 = d.join("model2.json");
+    assert_eq!(
+        modalmap(&["fit", &s(&b), "-o", &s(&model2), "--quiet"]).code,
+        0
+    );
+    let out2 = d.join("out2");
+    assert_eq!(
+        modalmap(&["apply", &s(&model2), &s(&a), "-o", &s(&out2), "--quiet"]).code,
+        0
+    );
+    let r = modalmap(&["merge", &s(&out), &s(&out2), "-o", &s(&d.join("s2"))]);
+    assert_eq!(r.code, 3, "{}", r.stderr);
+    assert!(r.stderr.contains("another model"), "{}", r.stderr);
+    assert!(!d.join("s2").exists(), "nothing written");
+}
