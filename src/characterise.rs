@@ -429,10 +429,28 @@ pub fn characterise(
     counts: &MapStack,
     opts: &ValidCompositionOptions,
 ) -> Result<(CompositionReport, Advice)> {
-    let md = counts.metadata();
-    let lines = mapped(counts);
-    let infos: Vec<ElementInfo> = lines.iter().map(|l| l.0).collect();
     let k = table.phases.len();
+    characterise_with(
+        table,
+        &mapped(counts),
+        counts.metadata(),
+        &|clearance| interior_counts(labels, width, height, counts, k, clearance),
+        opts,
+    )
+}
+
+/// The composition stage given the mapped elements with their lines, the field's
+/// metadata, and the phases' summed counts for a clearance in pixels (each with whether
+/// it came from interior pixels): a field streamed in strips provides the sums itself.
+pub fn characterise_with(
+    table: &mut PhaseTable,
+    lines: &[(ElementInfo, Option<String>)],
+    md: &crate::stack::FieldMetadata,
+    sums_at: &dyn Fn(usize) -> Vec<(PhaseCounts, bool)>,
+    opts: &ValidCompositionOptions,
+) -> Result<(CompositionReport, Advice)> {
+    let lines = lines.to_vec();
+    let infos: Vec<ElementInfo> = lines.iter().map(|l| l.0).collect();
     let mut notes = Vec::new();
     let oxygen = match opts.given.oxygen {
         OxygenMode::Measured => Oxygen::Measured,
@@ -460,9 +478,6 @@ pub fn characterise(
     let calibrated_basis = opts.kfile.is_some() || !opts.calibrations.is_empty();
 
     // Sums over interior pixels; widen the clearance to half the X-ray range when known.
-    let sums_at = |clearance: usize| -> Vec<(PhaseCounts, bool)> {
-        interior_counts(labels, width, height, counts, k, clearance)
-    };
     let background_of =
         |sums: &[PhaseCounts], eligible: &[bool], k: &[f64]| match opts.given.background {
             BackgroundMode::PoorestPhase => Background::lowest_phase(sums, eligible, k),

@@ -113,6 +113,16 @@ pub enum Command {
         /// Fields processed at the same time (default 2; each also uses every thread).
         #[arg(long, value_name = "N")]
         jobs: Option<usize>,
+        /// Label every field strip by strip in bounded memory (a folder of PNG maps; done
+        /// anyway for fields over 2^28 values).
+        #[arg(long, conflicts_with = "no_stream")]
+        stream: bool,
+        /// Load every field whole, however big.
+        #[arg(long)]
+        no_stream: bool,
+        /// Strip height in rows for --stream (for tests and measurements).
+        #[arg(long, value_name = "ROWS", hide = true, requires = "stream")]
+        strip_rows: Option<usize>,
         #[command(flatten)]
         map: Box<MapArgs>,
     },
@@ -490,6 +500,7 @@ pub fn map_field(
         bse_pixel_size,
         max_pixels: args.limits.max_pixels,
         force: args.force,
+        stream: crate::run::Stream::Never,
     };
     let spinner = spinner(args.quiet);
     let result = process_field(input, out, &job, &mut |stage| {
@@ -578,10 +589,28 @@ pub fn run(cli: Cli) -> Result<u8> {
             output,
             shard,
             jobs,
+            stream,
+            no_stream,
+            strip_rows,
             map,
         } => {
             install_threads(map.resolve()?.threads)?;
-            apply(&model, &inputs, &output, shard.as_deref(), jobs, &map)
+            let stream = if stream {
+                crate::run::Stream::Always(strip_rows)
+            } else if no_stream {
+                crate::run::Stream::Never
+            } else {
+                crate::run::Stream::Auto
+            };
+            apply(
+                &model,
+                &inputs,
+                &output,
+                shard.as_deref(),
+                jobs,
+                stream,
+                &map,
+            )
         }
         Command::Merge {
             folders,
@@ -837,6 +866,7 @@ fn apply(
     out: &std::path::Path,
     shard: Option<&str>,
     jobs: Option<usize>,
+    stream: crate::run::Stream,
     args: &MapArgs,
 ) -> Result<u8> {
     let fixed = model_fixed_options(args);
@@ -901,6 +931,7 @@ fn apply(
         bse_pixel_size,
         max_pixels: args.limits.max_pixels,
         force: args.force,
+        stream,
     };
     let bar = progress_bar(args.quiet, mine.len());
     let outcomes = crate::run::run_batch(&mine, out, &job, jobs, &|o| {

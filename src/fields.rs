@@ -163,7 +163,11 @@ impl PhaseModel {
 
     /// Refuses a field whose elements differ from the model's.
     pub fn check_elements(&self, stack: &MapStack, field: &Path) -> Result<()> {
-        let have: Vec<&str> = stack.symbols();
+        self.check_symbols(&stack.symbols(), field)
+    }
+
+    /// Refuses a field whose element symbols (by atomic number) differ from the model's.
+    pub fn check_symbols(&self, have: &[&str], field: &Path) -> Result<()> {
         if have != self.elements.iter().map(String::as_str).collect::<Vec<_>>() {
             return Err(Error::input(
                 field,

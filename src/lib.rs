@@ -17,6 +17,7 @@ pub mod fields;
 pub mod inspect;
 pub mod io;
 pub mod library;
+pub mod montage;
 pub mod phases;
 pub mod physics;
 pub mod pipeline;

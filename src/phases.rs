@@ -21,6 +21,7 @@ use statrs::distribution::{ContinuousCDF, StudentsT};
 use crate::chem::quant::{
     quantify, Background, KFactors, Oxygen, PhaseComposition, PhaseCounts, Rules,
 };
+use crate::chem::ElementInfo;
 use crate::refine::Segmentation;
 use crate::stack::MapStack;
 
@@ -139,66 +140,103 @@ pub fn phase_table_in_order(
     k: usize,
     fixed: Option<&[usize]>,
 ) -> PhaseTable {
+    let planes: Vec<&[f32]> = counts.maps().iter().map(|m| m.counts.as_slice()).collect();
+    let sums = PhaseSums::accumulate(&seg.labels, &seg.confidence, &planes, k);
+    let infos: Vec<ElementInfo> = counts.maps().iter().map(|m| m.element).collect();
+    table_from_sums(sums, seg, &infos, fixed)
+}
+
+/// Per-phase sums of counts over pixels, which add up over the strips of a field too big
+/// to hold whole. Labels are model labels (1..=k, 0 unassigned).
+#[derive(Debug, Clone, PartialEq)]
+pub struct PhaseSums {
+    k: usize,
+    d: usize,
+    pixels: Vec<usize>,
+    sum: Vec<f64>,
+    sum2: Vec<f64>,
+    conf: Vec<f64>,
+}
+
+impl PhaseSums {
+    /// No pixel yet.
+    pub fn new(k: usize, d: usize) -> PhaseSums {
+        PhaseSums {
+            k,
+            d,
+            pixels: vec![0; k],
+            sum: vec![0.0; k * d],
+            sum2: vec![0.0; k * d],
+            conf: vec![0.0; k],
+        }
+    }
+
+    /// Adds another set of sums.
+    pub fn add(&mut self, b: &PhaseSums) {
+        self.pixels
+            .iter_mut()
+            .zip(&b.pixels)
+            .for_each(|(x, y)| *x += y);
+        self.sum.iter_mut().zip(&b.sum).for_each(|(x, y)| *x += y);
+        self.sum2.iter_mut().zip(&b.sum2).for_each(|(x, y)| *x += y);
+        self.conf.iter_mut().zip(&b.conf).for_each(|(x, y)| *x += y);
+    }
+
+    /// Sums over `labels` with their posteriors and the count planes (one per element),
+    /// over fixed chunks of pixels added in chunk order (deterministic).
+    pub fn accumulate(labels: &[u16], confidence: &[f32], planes: &[&[f32]], k: usize) -> Self {
+        let n = labels.len();
+        let d = planes.len();
+        const CHUNK: usize = 1 << 16;
+        (0..n.div_ceil(CHUNK))
+            .into_par_iter()
+            .map(|chunk| {
+                let mut a = PhaseSums::new(k, d);
+                for i in chunk * CHUNK..((chunk + 1) * CHUNK).min(n) {
+                    let l = labels[i];
+                    if l == 0 {
+                        continue;
+                    }
+                    let c = l as usize - 1;
+                    a.pixels[c] += 1;
+                    a.conf[c] += f64::from(confidence[i]);
+                    for (e, p) in planes.iter().enumerate() {
+                        let v = f64::from(p[i]);
+                        a.sum[c * d + e] += v;
+                        a.sum2[c * d + e] += v * v;
+                    }
+                }
+                a
+            })
+            .collect::<Vec<_>>()
+            .into_iter()
+            .fold(PhaseSums::new(k, d), |mut a, b| {
+                a.add(&b);
+                a
+            })
+    }
+}
+
+/// Builds the table from the sums and renumbers `seg`'s labels (see
+/// [`phase_table_in_order`]); `elements` are the mapped elements.
+pub fn table_from_sums(
+    sums: PhaseSums,
+    seg: &mut Segmentation,
+    elements: &[ElementInfo],
+    fixed: Option<&[usize]>,
+) -> PhaseTable {
     let (w, h) = (seg.width, seg.height);
     let n = w * h;
-    let d = counts.maps().len();
-    let elements: Vec<String> = counts.symbols().iter().map(|s| s.to_string()).collect();
-
-    // Per-phase sums over fixed chunks of pixels, added in chunk order (deterministic).
-    struct Acc {
-        pixels: Vec<usize>,
-        sum: Vec<f64>,
-        sum2: Vec<f64>,
-        conf: Vec<f64>,
-    }
-    let planes: Vec<&[f32]> = counts.maps().iter().map(|m| m.counts.as_slice()).collect();
-    let labels = &seg.labels;
-    let confidence = &seg.confidence;
-    const CHUNK: usize = 1 << 16;
-    let acc = (0..n.div_ceil(CHUNK))
-        .into_par_iter()
-        .map(|chunk| {
-            let mut a = Acc {
-                pixels: vec![0; k],
-                sum: vec![0.0; k * d],
-                sum2: vec![0.0; k * d],
-                conf: vec![0.0; k],
-            };
-            for i in chunk * CHUNK..((chunk + 1) * CHUNK).min(n) {
-                let l = labels[i];
-                if l == 0 {
-                    continue;
-                }
-                let c = l as usize - 1;
-                a.pixels[c] += 1;
-                a.conf[c] += f64::from(confidence[i]);
-                for (e, p) in planes.iter().enumerate() {
-                    let v = f64::from(p[i]);
-                    a.sum[c * d + e] += v;
-                    a.sum2[c * d + e] += v * v;
-                }
-            }
-            a
-        })
-        .collect::<Vec<_>>()
-        .into_iter()
-        .reduce(|mut a, b| {
-            a.pixels
-                .iter_mut()
-                .zip(&b.pixels)
-                .for_each(|(x, y)| *x += y);
-            a.sum.iter_mut().zip(&b.sum).for_each(|(x, y)| *x += y);
-            a.sum2.iter_mut().zip(&b.sum2).for_each(|(x, y)| *x += y);
-            a.conf.iter_mut().zip(&b.conf).for_each(|(x, y)| *x += y);
-            a
-        })
-        .expect("at least one pixel");
-    let Acc {
+    let PhaseSums {
+        k,
+        d,
         pixels,
         sum,
         sum2,
         conf,
-    } = acc;
+    } = sums;
+    let infos = elements;
+    let elements: Vec<String> = infos.iter().map(|e| e.symbol.to_string()).collect();
     let order: Vec<usize> = match fixed {
         Some(f) => f.to_vec(),
         None => {
@@ -228,7 +266,6 @@ pub fn phase_table_in_order(
         }
     }
     // The apparent composition: every k-factor 1, no background, all pixels.
-    let infos: Vec<_> = counts.maps().iter().map(|m| m.element).collect();
     let phase_counts: Vec<PhaseCounts> = order
         .iter()
         .map(|&c| PhaseCounts {
@@ -237,7 +274,7 @@ pub fn phase_table_in_order(
         })
         .collect();
     let apparent = quantify(
-        &infos,
+        infos,
         &phase_counts,
         &Rules {
             k: KFactors::unit(d),
@@ -320,6 +357,129 @@ pub fn phase_table_in_order(
 /// phase's pixels (common practice, no source).
 pub const MIN_COMPOSITION_PIXELS: usize = 25;
 
+/// Largest clearance for which [`ClearSums`] keeps sums.
+pub const MAX_CLEARANCE: usize = 8;
+
+/// Per-phase sums of counts by clearance: for r = 0..=[`MAX_CLEARANCE`], the pixels of each
+/// phase with no other label within r pixels (chessboard distance; r = 0 is every pixel)
+/// and their summed counts. They add up over the strips of a field too big to hold whole.
+#[derive(Debug, Clone, PartialEq)]
+pub struct ClearSums {
+    k: usize,
+    d: usize,
+    /// `[r][phase]` pixels.
+    pixels: Vec<Vec<usize>>,
+    /// `[r][phase × d + element]` summed counts.
+    sums: Vec<Vec<f64>>,
+}
+
+impl ClearSums {
+    /// Nothing summed yet.
+    pub fn new(k: usize, d: usize) -> ClearSums {
+        ClearSums {
+            k,
+            d,
+            pixels: vec![vec![0; k]; MAX_CLEARANCE + 1],
+            sums: vec![vec![0.0; k * d]; MAX_CLEARANCE + 1],
+        }
+    }
+
+    /// Adds another set.
+    pub fn add(&mut self, o: &ClearSums) {
+        for r in 0..=MAX_CLEARANCE {
+            self.pixels[r]
+                .iter_mut()
+                .zip(&o.pixels[r])
+                .for_each(|(a, b)| *a += b);
+            self.sums[r]
+                .iter_mut()
+                .zip(&o.sums[r])
+                .for_each(|(a, b)| *a += b);
+        }
+    }
+
+    /// Sums over the pixels of `rows` of a `width × height` label image (labels 1..=k) and
+    /// its count planes; the clearance looks at the whole image, so rows far enough from
+    /// its top and bottom edges get the same answer as in a bigger image.
+    pub fn over_rows(
+        labels: &[u16],
+        width: usize,
+        height: usize,
+        planes: &[&[f32]],
+        k: usize,
+        rows: std::ops::Range<usize>,
+    ) -> ClearSums {
+        use imageproc::distance_transform::{distance_transform, Norm};
+        // Boundary pixels: an 8-neighbour carries another label. A pixel is r clear of
+        // other labels exactly when it is at least r from every boundary pixel.
+        let mut boundary = vec![0u8; width * height];
+        for y in 0..height {
+            for x in 0..width {
+                let l = labels[y * width + x];
+                let differs = (y.saturating_sub(1)..(y + 2).min(height)).any(|yy| {
+                    (x.saturating_sub(1)..(x + 2).min(width)).any(|xx| labels[yy * width + xx] != l)
+                });
+                if differs {
+                    boundary[y * width + x] = 255;
+                }
+            }
+        }
+        let img: ImageBuffer<Luma<u8>, Vec<u8>> =
+            ImageBuffer::from_raw(width as u32, height as u32, boundary).expect("size matches");
+        let any_boundary = img.as_raw().iter().any(|&v| v > 0);
+        let dist = distance_transform(&img, Norm::LInf).into_raw();
+        let d = planes.len();
+        let mut s = ClearSums::new(k, d);
+        for y in rows {
+            for x in 0..width {
+                let i = y * width + x;
+                let l = labels[i];
+                if l == 0 {
+                    continue;
+                }
+                let c = l as usize - 1;
+                let clear = if any_boundary {
+                    usize::from(dist[i]).min(MAX_CLEARANCE)
+                } else {
+                    MAX_CLEARANCE
+                };
+                // Pixels clear by `clear` count for every r up to it.
+                for r in 0..=clear {
+                    s.pixels[r][c] += 1;
+                    for (e, p) in planes.iter().enumerate() {
+                        s.sums[r][c * d + e] += f64::from(p[i]);
+                    }
+                }
+            }
+        }
+        s
+    }
+
+    /// Each phase's counts with clearance `radius` (at most [`MAX_CLEARANCE`]), or over all
+    /// its pixels when fewer than [`MIN_COMPOSITION_PIXELS`] are that clear; the flag says
+    /// which.
+    pub fn at(&self, radius: usize) -> Vec<(PhaseCounts, bool)> {
+        let r = radius.min(MAX_CLEARANCE);
+        let d = self.d;
+        (0..self.k)
+            .map(|c| {
+                let (rr, interior) = if self.pixels[r][c] >= MIN_COMPOSITION_PIXELS {
+                    (r, true)
+                } else {
+                    (0, false)
+                };
+                (
+                    PhaseCounts {
+                        pixels: self.pixels[rr][c],
+                        sums: self.sums[rr][c * d..(c + 1) * d].to_vec(),
+                    },
+                    interior,
+                )
+            })
+            .collect()
+    }
+}
+
 /// Summed counts of each phase (label 1..=k) over its interior: pixels with no other label
 /// (unassigned included) within `radius` pixels (chessboard distance). A phase with fewer
 /// than [`MIN_COMPOSITION_PIXELS`] such pixels is summed over all its pixels; the flag says
@@ -332,67 +492,8 @@ pub fn interior_counts(
     k: usize,
     radius: usize,
 ) -> Vec<(PhaseCounts, bool)> {
-    use imageproc::distance_transform::{distance_transform, Norm};
-    // Boundary pixels: an 8-neighbour carries another label. A pixel is `radius` clear of
-    // other labels exactly when it is at least `radius` from every boundary pixel.
-    let mut boundary = vec![0u8; width * height];
-    for y in 0..height {
-        for x in 0..width {
-            let l = labels[y * width + x];
-            let differs = (y.saturating_sub(1)..(y + 2).min(height)).any(|yy| {
-                (x.saturating_sub(1)..(x + 2).min(width)).any(|xx| labels[yy * width + xx] != l)
-            });
-            if differs {
-                boundary[y * width + x] = 255;
-            }
-        }
-    }
-    let img: ImageBuffer<Luma<u8>, Vec<u8>> =
-        ImageBuffer::from_raw(width as u32, height as u32, boundary).expect("size matches");
-    let any_boundary = img.as_raw().iter().any(|&v| v > 0);
-    let dist = distance_transform(&img, Norm::LInf).into_raw();
-    let clear = |i: usize| !any_boundary || usize::from(dist[i]) >= radius.min(255);
-    let d = counts.maps().len();
-    let sums_over = |inside: &dyn Fn(usize) -> bool| {
-        let mut px = vec![0usize; k];
-        let mut sums = vec![0.0f64; k * d];
-        for (i, &l) in labels.iter().enumerate() {
-            if l == 0 || !inside(i) {
-                continue;
-            }
-            let c = l as usize - 1;
-            px[c] += 1;
-            for (e, m) in counts.maps().iter().enumerate() {
-                sums[c * d + e] += f64::from(m.counts[i]);
-            }
-        }
-        (px, sums)
-    };
-    let (ipx, isums) = sums_over(&clear);
-    let (apx, asums) = sums_over(&|_| true);
-    (0..k)
-        .map(|c| {
-            if ipx[c] >= MIN_COMPOSITION_PIXELS {
-                let sums = isums[c * d..(c + 1) * d].to_vec();
-                (
-                    PhaseCounts {
-                        pixels: ipx[c],
-                        sums,
-                    },
-                    true,
-                )
-            } else {
-                let sums = asums[c * d..(c + 1) * d].to_vec();
-                (
-                    PhaseCounts {
-                        pixels: apx[c],
-                        sums,
-                    },
-                    false,
-                )
-            }
-        })
-        .collect()
+    let planes: Vec<&[f32]> = counts.maps().iter().map(|m| m.counts.as_slice()).collect();
+    ClearSums::over_rows(labels, width, height, &planes, k, 0..height).at(radius)
 }
 
 /// Counts the separate features of each phase and their sizes.

@@ -85,6 +85,16 @@ impl ValidMapOptions {
     pub fn options(&self) -> &MapOptions {
         &self.given
     }
+
+    /// The checked feature transform.
+    pub fn transform(&self) -> FeatureTransform {
+        self.transform
+    }
+
+    /// The checked refine options.
+    pub fn refine(&self) -> ValidRefineParams {
+        self.refine
+    }
 }
 
 /// Everything the main job computes for a field.

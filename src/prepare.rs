@@ -233,8 +233,22 @@ pub struct Features {
     pub counts: MapStack,
     /// The empty-pixel threshold used, total counts per pixel.
     pub min_counts_used: f64,
+    /// Share of empty pixels in the whole field (clamped to 0.001..0.5).
+    pub empty_fraction: f64,
     /// The transform that made these features.
     pub transform: FeatureTransform,
+}
+
+/// Where a window of rows sits in a field too big to prepare whole (a strip of a
+/// montage): everything that depends on the whole field, computed beforehand.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct WindowContext {
+    /// Index on the binned grid of the window's first pixel (its first row × the width).
+    pub first_pixel: usize,
+    /// The whole field's empty-pixel threshold.
+    pub min_counts_used: f64,
+    /// The whole field's share of empty pixels.
+    pub empty_fraction: f64,
 }
 
 impl Features {
@@ -327,7 +341,7 @@ fn jitter(key: u64) -> f32 {
 }
 
 /// The median of the per-pixel total counts.
-fn median_total(totals: &[f32]) -> f64 {
+pub fn median_total(totals: &[f32]) -> f64 {
     let mut t = totals.to_vec();
     let mid = t.len() / 2;
     f64::from(*t.select_nth_unstable_by(mid, f32::total_cmp).1)
@@ -335,6 +349,23 @@ fn median_total(totals: &[f32]) -> f64 {
 
 /// Runs the prepare stage.
 pub fn prepare(stack: MapStack, transform: &FeatureTransform) -> Result<Features> {
+    prepare_window(stack, transform, None)
+}
+
+/// The share of empty pixels as the refine stage uses it.
+pub fn empty_share(empty: usize, n: usize) -> f64 {
+    (empty as f64 / n.max(1) as f64).clamp(1e-3, 0.5)
+}
+
+/// Runs the prepare stage on a whole field, or with `window` on a window of rows of a
+/// bigger one: the threshold and empty share are then the whole field's, and the
+/// dequantisation offsets those of the pixels' places in the whole field, so a window
+/// gives exactly the features of the same pixels prepared whole.
+pub fn prepare_window(
+    stack: MapStack,
+    transform: &FeatureTransform,
+    window: Option<&WindowContext>,
+) -> Result<Features> {
     let p = transform.params;
     let counts = bin_stack(stack, p.bin)?;
     let (w, h) = (counts.width(), counts.height());
@@ -347,14 +378,20 @@ pub fn prepare(stack: MapStack, transform: &FeatureTransform) -> Result<Features
             *t += c;
         }
     }
-    let min_counts_used = match p.min_counts {
-        MinCounts::Relative { fraction } => fraction * median_total(&totals),
-        MinCounts::Absolute { counts } => counts,
+    let min_counts_used = match (window, p.min_counts) {
+        (Some(wc), _) => wc.min_counts_used,
+        (None, MinCounts::Relative { fraction }) => fraction * median_total(&totals),
+        (None, MinCounts::Absolute { counts }) => counts,
     };
     let mask: Vec<bool> = totals
         .iter()
         .map(|&t| f64::from(t) >= min_counts_used && t > 0.0)
         .collect();
+    let empty_fraction = match window {
+        Some(wc) => wc.empty_fraction,
+        None => empty_share(mask.iter().filter(|m| !**m).count(), n),
+    };
+    let first_pixel = window.map_or(0, |wc| wc.first_pixel);
 
     // Plane by plane into the pixel-major matrix: only one transformed plane is held at a
     // time beside the counts and the matrix.
@@ -363,7 +400,8 @@ pub fn prepare(stack: MapStack, transform: &FeatureTransform) -> Result<Features
         let salt = u64::from(m.element.z) << 40;
         let transform_one = |i: usize, x: f32| {
             if p.dequantise {
-                p.stabilise.apply(x + jitter(salt | i as u64))
+                p.stabilise
+                    .apply(x + jitter(salt | (first_pixel + i) as u64))
             } else {
                 p.stabilise.apply(x)
             }
@@ -404,6 +442,7 @@ pub fn prepare(stack: MapStack, transform: &FeatureTransform) -> Result<Features
         mask,
         counts,
         min_counts_used,
+        empty_fraction,
         transform: *transform,
     })
 }

@@ -112,6 +112,8 @@ pub struct Segmentation {
     pub empty_pixels: usize,
     /// Pixels unassigned as unlike every phase.
     pub outlier_pixels: usize,
+    /// Per pixel: unassigned as unlike every phase (the rest of label 0 is empty).
+    pub outliers: Vec<bool>,
     /// Pixels changed by each smoothing sweep.
     pub sweep_changes: Vec<usize>,
     /// Pixels moved by the minimum-feature-size rule.
@@ -228,8 +230,7 @@ pub fn refine_from(
     let (w, h, d, k) = (f.width, f.height, f.dims, clusters.k());
     let n = w * h;
     let st = f.transform.params().stabilise;
-    let empty_fraction =
-        (f.mask.iter().filter(|m| !**m).count() as f64 / n as f64).clamp(1e-3, 0.5);
+    let empty_fraction = f.empty_fraction;
     let (space, empty_counts, empty_log_norm) = match clusters {
         Clusters::Poisson { .. } => (
             Space::Counts,
@@ -576,6 +577,7 @@ pub fn refine_from(
     Segmentation {
         width: w,
         height: h,
+        outliers: labels.iter().map(|&l| l == outlier_label).collect(),
         labels: out,
         confidence,
         empty_pixels,

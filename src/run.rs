@@ -51,7 +51,24 @@ pub struct FieldJob<'a> {
     pub max_pixels: u64,
     /// Replace a non-empty output folder.
     pub force: bool,
+    /// Whether to label the field strip by strip (with a saved model only).
+    pub stream: Stream,
 }
+
+/// When a field is labelled strip by strip ([`crate::montage`]).
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Stream {
+    /// Never: load it whole.
+    Never,
+    /// When a folder of PNG maps holds more than [`STREAM_ABOVE_VALUES`] values.
+    Auto,
+    /// Always, with this strip height (rows of the labelling grid) if given.
+    Always(Option<usize>),
+}
+
+/// Fields with more values (pixels × elements) than this are streamed by `apply` when they
+/// can be (1 GiB as 32-bit floats).
+pub const STREAM_ABOVE_VALUES: u64 = 1 << 28;
 
 /// Runs one field into `out` (atomically); `progress` hears the stage names.
 pub fn process_field(
@@ -60,6 +77,29 @@ pub fn process_field(
     job: &FieldJob,
     progress: &mut dyn FnMut(&str),
 ) -> Result<Report> {
+    if let Labelling::Model { model, reference } = job.labelling {
+        let strip = match job.stream {
+            Stream::Never => None,
+            Stream::Always(rows) => Some(rows),
+            Stream::Auto => {
+                let big = input.is_dir()
+                    && crate::montage::StreamedField::open(
+                        input,
+                        &Limits {
+                            max_pixels: job.max_pixels,
+                        },
+                    )
+                    .is_ok_and(|f| {
+                        (f.width as u64) * (f.height as u64) * (f.lines.len() as u64)
+                            > STREAM_ABOVE_VALUES
+                    });
+                big.then_some(None)
+            }
+        };
+        if let Some(rows) = strip {
+            return process_streamed(input, out, job, model, reference, rows, progress);
+        }
+    }
     let dir = crate::report::prepare_output(out, job.force)?;
     let t = crate::profile::stage("load");
     let limits = Limits {
@@ -179,10 +219,26 @@ pub fn process_field(
         None => None,
     };
     let t = crate::profile::stage("report (hashes)");
+    let lines: Vec<_> = result
+        .counts
+        .maps()
+        .iter()
+        .map(|m| (m.element, m.line.clone()))
+        .collect();
+    let labelled = crate::report::Labelled {
+        table: &result.table,
+        segmentation: &result.segmentation,
+        curve: &result.curve,
+        simplifications: &result.simplifications,
+        min_counts_used: result.min_counts_used,
+        fitted_pixels: result.fitted_pixels,
+        metadata: result.counts.metadata(),
+        lines: &lines,
+    };
     let report = crate::report::build(
         &name,
         &files,
-        &result,
+        &labelled,
         job.map.options(),
         warnings,
         crate::report::Findings {
@@ -194,7 +250,95 @@ pub fn process_field(
     )?;
     drop(t);
     let _t = crate::profile::stage("write outputs");
-    crate::report::write_outputs(&dir, &report, &result, bse.as_ref())?;
+    crate::report::write_outputs(&dir, &report, &labelled, bse.as_ref())?;
+    dir.commit()?;
+    Ok(report)
+}
+
+/// [`process_field`] for a field labelled strip by strip with a saved model.
+fn process_streamed(
+    input: &Path,
+    out: &Path,
+    job: &FieldJob,
+    model: &PhaseModel,
+    reference: &ModelRef,
+    strip: Option<usize>,
+    progress: &mut dyn FnMut(&str),
+) -> Result<Report> {
+    let dir = crate::report::prepare_output(out, job.force)?;
+    let limits = Limits {
+        max_pixels: job.max_pixels,
+    };
+    let mut field = crate::montage::StreamedField::open(input, &limits)?;
+    field.metadata.override_with(&job.metadata);
+    model.check_symbols(&field.symbols(), input)?;
+    let mut warnings = std::mem::take(&mut field.warnings);
+    if !job.no_bse && field.has_bse {
+        warnings.push(
+            "the BSE check is not run on a field labelled strip by strip (a montage); check the contrast on a field small enough to map whole".into(),
+        );
+    }
+    let streamed = crate::montage::label_streamed(
+        &mut field,
+        job.map,
+        &model.clusters,
+        &model.order(),
+        strip,
+        &mut |done, all| progress(&format!("strip {done} of {all}")),
+    )?;
+    let crate::montage::Streamed {
+        mut table,
+        segmentation,
+        clear,
+        min_counts_used,
+        ..
+    } = streamed;
+    progress("compositions");
+    let model_index: Vec<usize> = table.phases.iter().map(|p| p.model_index).collect();
+    let (composition_report, advice) = crate::characterise::characterise_with(
+        &mut table,
+        &field.lines,
+        &field.metadata,
+        &|r| {
+            let by_model = clear.at(r);
+            model_index.iter().map(|&m| by_model[m].clone()).collect()
+        },
+        job.composition,
+    )?;
+    for (p, m) in table.phases.iter_mut().zip(&model.phases) {
+        p.name = m.name.clone();
+    }
+    let mut files = field.files.clone();
+    let given = job.composition.options();
+    for p in given.kfactors.iter().chain(&given.libraries) {
+        if !files.contains(p) {
+            files.push(p.clone());
+        }
+    }
+    let labelled = crate::report::Labelled {
+        table: &table,
+        segmentation: &segmentation,
+        curve: &[],
+        simplifications: &[],
+        min_counts_used,
+        fitted_pixels: 0,
+        metadata: &field.metadata,
+        lines: &field.lines,
+    };
+    let report = crate::report::build(
+        &field.name,
+        &files,
+        &labelled,
+        job.map.options(),
+        warnings,
+        crate::report::Findings {
+            bse: None,
+            composition: &composition_report,
+            advisor: &advice,
+            model: Some(reference),
+        },
+    )?;
+    crate::report::write_outputs(&dir, &report, &labelled, None)?;
     dir.commit()?;
     Ok(report)
 }

@@ -184,17 +184,24 @@ impl MapStack {
 
     /// Replaces metadata values with those given (command-line overrides).
     pub fn override_metadata(&mut self, m: &FieldMetadata) {
+        self.metadata.override_with(m);
+    }
+}
+
+impl FieldMetadata {
+    /// Replaces values with those given in `m` (command-line overrides).
+    pub fn override_with(&mut self, m: &FieldMetadata) {
         if m.pixel_size_um.is_some() {
-            self.metadata.pixel_size_um = m.pixel_size_um;
+            self.pixel_size_um = m.pixel_size_um;
         }
         if m.beam_kv.is_some() {
-            self.metadata.beam_kv = m.beam_kv;
+            self.beam_kv = m.beam_kv;
         }
         if m.live_time_s.is_some() {
-            self.metadata.live_time_s = m.live_time_s;
+            self.live_time_s = m.live_time_s;
         }
         if m.bse_pixel_size_um.is_some() {
-            self.metadata.bse_pixel_size_um = m.bse_pixel_size_um;
+            self.bse_pixel_size_um = m.bse_pixel_size_um;
         }
     }
 }

@@ -232,3 +232,69 @@ fn a_bad_field_fails_alone_and_models_are_checked() {
     assert!(r.stderr.contains("another model"), "{}", r.stderr);
     assert!(!d.join("s2").exists(), "nothing written");
 }
+
+/// A field labelled strip by strip (`apply --stream`, strips of 32 rows with their halo)
+/// gets exactly the labels, phase image and numbers of the same field loaded whole.
+#[test]
+fn streamed_montage_matches_the_in_memory_path() {
+    let tmp = tempfile::tempdir().unwrap();
+    let d = tmp.path();
+    let (train, _) = rock(d, 31);
+    let model = d.join("model.json");
+    assert_eq!(
+        modalmap(&["fit", &s(&train), "-o", &s(&model), "--quiet"]).code,
+        0
+    );
+    // 360 rows: more than a strip and two halos (115 rows each with these options).
+    let (micro, opts) = benchmark_rock(360, 32);
+    let big = d.join("big");
+    write_folder(&generate(&micro, &opts).unwrap(), &big).unwrap();
+    let (whole, strips) = (d.join("whole"), d.join("strips"));
+    let r = modalmap(&["apply", &s(&model), &s(&big), "-o", &s(&whole), "--quiet"]);
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    let r = modalmap(&[
+        "apply",
+        &s(&model),
+        &s(&big),
+        "-o",
+        &s(&strips),
+        "--stream",
+        "--strip-rows",
+        "32",
+        "--quiet",
+    ]);
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    for f in ["labels.png", "phase-map.png"] {
+        assert_eq!(
+            std::fs::read(whole.join("big").join(f)).unwrap(),
+            std::fs::read(strips.join("big").join(f)).unwrap(),
+            "{f} differs"
+        );
+    }
+    let (a, b) = (
+        json(&whole.join("big/report.json")),
+        json(&strips.join("big/report.json")),
+    );
+    assert_eq!(a["unassigned"], b["unassigned"]);
+    for (p, q) in a["phases"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .zip(b["phases"].as_array().unwrap())
+    {
+        for key in [
+            "pixels",
+            "particles",
+            "area_fraction",
+            "area_fraction_ci95",
+            "mean",
+            "sd",
+            "composition_pixels",
+            "composition_wt",
+            "composition_wt_sd",
+        ] {
+            assert_eq!(p[key], q[key], "phase {} {key}", p["id"]);
+        }
+    }
+    assert!(b.get("bse").is_none() && b["model"].is_object());
+}

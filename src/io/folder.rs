@@ -18,7 +18,77 @@ pub(crate) fn is_bse_name(name: &str) -> bool {
     name[..end].eq_ignore_ascii_case("bse")
 }
 
+/// What a maps folder holds, before any image is decoded.
+pub(crate) struct Listing {
+    /// Element maps: file, element, line from the name or the sidecar.
+    pub map_files: Vec<(PathBuf, crate::chem::ElementInfo, Option<String>)>,
+    /// BSE images.
+    pub bse_files: Vec<PathBuf>,
+    /// Files not used, with the reason.
+    pub skipped: Vec<Skipped>,
+    /// Metadata from the sidecar.
+    pub metadata: FieldMetadata,
+    /// Things to tell the user.
+    pub warnings: Vec<String>,
+}
+
 pub(super) fn load(dir: &Path, limits: &Limits) -> Result<LoadedField> {
+    let Listing {
+        map_files,
+        bse_files,
+        skipped,
+        metadata,
+        warnings,
+    } = list(dir)?;
+    let rasters: Vec<_> = map_files
+        .par_iter()
+        .map(|(path, _, _)| read_raster(path, limits))
+        .collect::<Result<Vec<_>>>()?;
+    let (w, h) = (rasters[0].width, rasters[0].height);
+    for (r, (path, _, _)) in rasters.iter().zip(&map_files) {
+        if (r.width, r.height) != (w, h) {
+            return Err(Error::input(
+                path,
+                format!(
+                    "is {}×{} but {} is {w}×{h}",
+                    r.width,
+                    r.height,
+                    file_name(&map_files[0].0)
+                ),
+                "all maps of a field must share one size: re-export them together, \
+                 or bin the larger ones to the common size",
+            ));
+        }
+    }
+    let mut files = Vec::new();
+    let maps: Vec<ElementMap> = rasters
+        .into_iter()
+        .zip(map_files)
+        .map(|(r, (path, element, line))| {
+            files.push(path.clone());
+            ElementMap {
+                element,
+                line,
+                counts: r.data,
+                source: path.display().to_string(),
+            }
+        })
+        .collect();
+    let stack = MapStack::new(dir, w, h, maps, metadata)?;
+    Ok(LoadedField {
+        name: field_name(dir),
+        input: dir.to_path_buf(),
+        stack,
+        skipped,
+        bse: bse_files.into_iter().next().map(BseSource::File),
+        files,
+        warnings,
+    })
+}
+
+/// Lists a maps folder: which files are maps of which element, the BSE images, the
+/// sidecar's metadata; refuses an empty folder and duplicate elements.
+pub(crate) fn list(dir: &Path) -> Result<Listing> {
     let entries = std::fs::read_dir(dir).map_err(|e| {
         Error::input(
             dir,
@@ -113,41 +183,6 @@ pub(super) fn load(dir: &Path, limits: &Limits) -> Result<LoadedField> {
         }
     }
 
-    let rasters: Vec<_> = map_files
-        .par_iter()
-        .map(|(path, _, _)| read_raster(path, limits))
-        .collect::<Result<Vec<_>>>()?;
-    let (w, h) = (rasters[0].width, rasters[0].height);
-    for (r, (path, _, _)) in rasters.iter().zip(&map_files) {
-        if (r.width, r.height) != (w, h) {
-            return Err(Error::input(
-                path,
-                format!(
-                    "is {}×{} but {} is {w}×{h}",
-                    r.width,
-                    r.height,
-                    file_name(&map_files[0].0)
-                ),
-                "all maps of a field must share one size: re-export them together, \
-                 or bin the larger ones to the common size",
-            ));
-        }
-    }
-    let mut files = Vec::new();
-    let maps: Vec<ElementMap> = rasters
-        .into_iter()
-        .zip(map_files)
-        .map(|(r, (path, element, line))| {
-            files.push(path.clone());
-            let line = sidecar.lines.get(element.symbol).cloned().or(line);
-            ElementMap {
-                element,
-                line,
-                counts: r.data,
-                source: path.display().to_string(),
-            }
-        })
-        .collect();
     let metadata: FieldMetadata = sidecar.metadata_checked(&dir.join(SIDECAR_NAME))?;
     if bse_files.len() > 1 {
         warnings.push(format!(
@@ -156,14 +191,16 @@ pub(super) fn load(dir: &Path, limits: &Limits) -> Result<LoadedField> {
             file_name(&bse_files[0])
         ));
     }
-    let stack = MapStack::new(dir, w, h, maps, metadata)?;
-    Ok(LoadedField {
-        name: field_name(dir),
-        input: dir.to_path_buf(),
-        stack,
+    for (_, element, line) in &mut map_files {
+        if let Some(l) = sidecar.lines.get(element.symbol) {
+            *line = Some(l.clone());
+        }
+    }
+    Ok(Listing {
+        map_files,
+        bse_files,
         skipped,
-        bse: bse_files.into_iter().next().map(BseSource::File),
-        files,
+        metadata,
         warnings,
     })
 }

@@ -4,7 +4,7 @@
 //! [`MapStack`], what was skipped and why, where a BSE image was found, and warnings.
 //! Only this module and the writers touch the disk.
 
-mod folder;
+pub(crate) mod folder;
 pub mod hdf5;
 pub mod raster;
 mod sidecar;

@@ -18,7 +18,7 @@ pub use output::{prepare_output, OutputDir};
 use crate::cluster::select::{CurvePoint, PhaseCount};
 use crate::cluster::simplify::Simplification;
 use crate::error::{Error, Result};
-use crate::pipeline::{MapOptions, MapResult};
+use crate::pipeline::MapOptions;
 
 /// The report's schema name.
 pub const SCHEMA: &str = "modalmap.report/1";
@@ -205,6 +205,28 @@ pub fn hash_file(path: &std::path::Path) -> Result<String> {
     Ok(sha256_hex(&bytes))
 }
 
+/// What a labelled field hands to the report: its table and labels, how the phase count
+/// was reached, and the field's metadata and lines.
+#[derive(Debug, Clone, Copy)]
+pub struct Labelled<'a> {
+    /// Per-phase statistics.
+    pub table: &'a crate::phases::PhaseTable,
+    /// The labels.
+    pub segmentation: &'a crate::refine::Segmentation,
+    /// BIC per phase count.
+    pub curve: &'a [CurvePoint],
+    /// Merges and dissolutions after BIC.
+    pub simplifications: &'a [Simplification],
+    /// Empty-pixel threshold used.
+    pub min_counts_used: f64,
+    /// Pixels the model was fitted on.
+    pub fitted_pixels: usize,
+    /// The field's metadata.
+    pub metadata: &'a crate::stack::FieldMetadata,
+    /// Mapped elements with the line named with each map.
+    pub lines: &'a [(crate::chem::ElementInfo, Option<String>)],
+}
+
 /// What the stages after labelling found, for the report.
 #[derive(Debug, Clone, Copy)]
 pub struct Findings<'a> {
@@ -222,7 +244,7 @@ pub struct Findings<'a> {
 pub fn build(
     field_name: &str,
     files: &[std::path::PathBuf],
-    result: &MapResult,
+    result: &Labelled,
     options: &MapOptions,
     mut warnings: Vec<String>,
     findings: Findings,
@@ -235,7 +257,7 @@ pub fn build(
     } = findings;
     use rayon::prelude::*;
     let t = &result.table;
-    let md = result.counts.metadata();
+    let md = result.metadata;
     let map = |v: &[f64]| -> BTreeMap<String, f64> {
         t.elements.iter().cloned().zip(v.iter().copied()).collect()
     };
@@ -338,10 +360,9 @@ pub fn build(
         field: field_name.to_string(),
         elements: t.elements.clone(),
         lines: result
-            .counts
-            .maps()
+            .lines
             .iter()
-            .filter_map(|m| m.line.clone().map(|l| (m.element.symbol.to_string(), l)))
+            .filter_map(|(e, l)| l.clone().map(|l| (e.symbol.to_string(), l)))
             .collect(),
         width: result.segmentation.width,
         height: result.segmentation.height,
@@ -353,9 +374,9 @@ pub fn build(
         phase_count: PhaseCountReport {
             mode: if auto { "auto".into() } else { "fixed".into() },
             phases: t.phases.len(),
-            curve: result.curve.clone(),
+            curve: result.curve.to_vec(),
             bic_minimum,
-            simplifications: result.simplifications.clone(),
+            simplifications: result.simplifications.to_vec(),
         },
         statistics,
         options: *options,
@@ -559,7 +580,7 @@ pub fn summary(r: &Report) -> String {
 pub fn write_outputs(
     dir: &OutputDir,
     r: &Report,
-    result: &MapResult,
+    result: &Labelled,
     bse: Option<&crate::bse::BseCheck>,
 ) -> Result<()> {
     let seg = &result.segmentation;
