@@ -13,7 +13,6 @@
 //! several fields (`merge`).
 
 use image::{ImageBuffer, Luma};
-use imageproc::region_labelling::{connected_components, Connectivity};
 use rayon::prelude::*;
 use serde::{Deserialize, Serialize};
 use statrs::distribution::{ContinuousCDF, StudentsT};
@@ -498,22 +497,9 @@ pub fn interior_counts(
 
 /// Counts the separate features of each phase and their sizes.
 fn particle_statistics(table: &mut PhaseTable, seg: &Segmentation) {
-    let img: ImageBuffer<Luma<u16>, Vec<u16>> =
-        ImageBuffer::from_raw(seg.width as u32, seg.height as u32, seg.labels.clone())
-            .expect("size matches");
-    let comp = connected_components(&img, Connectivity::Eight, Luma([0u16])).into_raw();
-    let ncomp = comp.iter().copied().max().unwrap_or(0) as usize;
-    let mut size = vec![0usize; ncomp + 1];
-    let mut phase_of = vec![0u16; ncomp + 1];
-    for (i, &c) in comp.iter().enumerate() {
-        size[c as usize] += 1;
-        phase_of[c as usize] = seg.labels[i];
-    }
+    let comps = component_sizes(&seg.labels, seg.width, seg.height);
     for p in &mut table.phases {
-        let sizes: Vec<usize> = (1..=ncomp)
-            .filter(|&c| phase_of[c] == p.id)
-            .map(|c| size[c])
-            .collect();
+        let sizes: Vec<usize> = comps.iter().filter(|c| c.0 == p.id).map(|c| c.1).collect();
         p.particles = sizes.len();
         p.largest_px = sizes.iter().copied().max().unwrap_or(0);
         p.mean_ecd_px = if sizes.is_empty() {
@@ -526,6 +512,87 @@ fn particle_statistics(table: &mut PhaseTable, seg: &Segmentation) {
                 / sizes.len() as f64
         };
     }
+}
+
+/// The 8-connected features of a label image (label 0 is background): (label, pixels) of
+/// each, in the raster order of their first pixel.
+///
+/// One pass over the rows with a union–find over provisional feature numbers, holding only
+/// the previous row's numbers: memory grows with the number of features, not the pixels,
+/// so a montage of 10⁸ pixels does not need the 4-byte-per-pixel component image of a
+/// general labelling routine (`imageproc::region_labelling`, which the tests compare with).
+pub fn component_sizes(labels: &[u16], w: usize, h: usize) -> Vec<(u16, usize)> {
+    fn root(parent: &mut [u32], mut i: u32) -> u32 {
+        while parent[i as usize] != i {
+            let p = parent[i as usize];
+            parent[i as usize] = parent[p as usize];
+            i = p;
+        }
+        i
+    }
+    let mut parent: Vec<u32> = Vec::new();
+    let mut size: Vec<usize> = Vec::new();
+    let mut label_of: Vec<u16> = Vec::new();
+    let mut prev = vec![u32::MAX; w];
+    let mut cur = vec![u32::MAX; w];
+    for y in 0..h {
+        for x in 0..w {
+            let l = labels[y * w + x];
+            cur[x] = u32::MAX;
+            if l == 0 {
+                continue;
+            }
+            // Neighbours already seen with the same label: W, NW, N, NE.
+            let mut id = u32::MAX;
+            let seen = |id: &mut u32, other: u32, parent: &mut Vec<u32>| {
+                if other == u32::MAX {
+                    return;
+                }
+                let b = root(parent, other);
+                if *id == u32::MAX {
+                    *id = b;
+                } else {
+                    let a = root(parent, *id);
+                    if a != b {
+                        // The smaller number (earlier first pixel) stays the root.
+                        let (lo, hi) = if a < b { (a, b) } else { (b, a) };
+                        parent[hi as usize] = lo;
+                        *id = lo;
+                    }
+                }
+            };
+            if x > 0 && labels[y * w + x - 1] == l {
+                seen(&mut id, cur[x - 1], &mut parent);
+            }
+            if y > 0 {
+                for xx in x.saturating_sub(1)..(x + 2).min(w) {
+                    if labels[(y - 1) * w + xx] == l {
+                        seen(&mut id, prev[xx], &mut parent);
+                    }
+                }
+            }
+            if id == u32::MAX {
+                id = parent.len() as u32;
+                parent.push(id);
+                size.push(0);
+                label_of.push(l);
+            }
+            size[id as usize] += 1;
+            cur[x] = id;
+        }
+        std::mem::swap(&mut prev, &mut cur);
+    }
+    // Sizes onto the roots, in the order of the roots' first pixels.
+    let n = parent.len();
+    let mut total = vec![0usize; n];
+    for (i, &s) in size.iter().enumerate() {
+        let r = root(&mut parent, i as u32) as usize;
+        total[r] += s;
+    }
+    (0..n)
+        .filter(|&i| parent[i] == i as u32)
+        .map(|i| (label_of[i], total[i]))
+        .collect()
 }
 
 #[cfg(test)]
@@ -580,6 +647,39 @@ mod tests {
         let r = interior_counts(&labels, w, h, &stack, 2, 7);
         assert_eq!(r[0].0.pixels, 6 * h);
         assert!(!r[0].1);
+    }
+
+    /// Feature counts and sizes against imageproc's connected-component labelling
+    /// (8-connected, background 0) on random label images of a few labels.
+    #[test]
+    fn features_match_imageproc() {
+        use imageproc::region_labelling::{connected_components, Connectivity};
+        use rand::{Rng, SeedableRng};
+        let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(5);
+        for (w, h, k) in [
+            (1, 1, 1),
+            (7, 1, 2),
+            (1, 9, 2),
+            (37, 23, 3),
+            (64, 64, 2),
+            (50, 40, 5),
+        ] {
+            let labels: Vec<u16> = (0..w * h).map(|_| rng.random_range(0..=k)).collect();
+            let img: ImageBuffer<Luma<u16>, Vec<u16>> =
+                ImageBuffer::from_raw(w as u32, h as u32, labels.clone()).unwrap();
+            let comp = connected_components(&img, Connectivity::Eight, Luma([0u16])).into_raw();
+            let n = comp.iter().copied().max().unwrap_or(0) as usize;
+            let mut want: Vec<(u16, usize)> = (1..=n)
+                .map(|c| {
+                    let px: Vec<usize> = (0..w * h).filter(|&i| comp[i] as usize == c).collect();
+                    (labels[px[0]], px.len())
+                })
+                .collect();
+            let mut got = component_sizes(&labels, w, h);
+            want.sort();
+            got.sort();
+            assert_eq!(got, want, "{w}×{h}, {k} labels");
+        }
     }
 
     #[test]
