@@ -173,6 +173,27 @@ impl RowSource for PngRows {
     }
 }
 
+/// A map in an HDF5 file, read by row windows (only the chunks a window touches).
+struct Hdf5Rows {
+    path: PathBuf,
+    file: std::rc::Rc<hdf5_pure::File>,
+    group: Option<String>,
+    name: String,
+}
+
+impl RowSource for Hdf5Rows {
+    fn rows(&mut self, y0: usize, n: usize) -> Result<Vec<f32>> {
+        crate::io::hdf5::read_rows(
+            &self.path,
+            &self.file,
+            self.group.as_deref(),
+            &self.name,
+            y0,
+            n,
+        )
+    }
+}
+
 /// A field opened for reading by rows.
 pub struct StreamedField {
     /// Field name.
@@ -231,13 +252,17 @@ impl StreamedField {
         }
     }
 
-    /// Opens a folder of PNG maps for reading by rows.
+    /// Opens a folder of PNG maps, or an HDF5 file with one 2-D dataset per element, for
+    /// reading by rows.
     pub fn open(input: &Path, limits: &Limits) -> Result<StreamedField> {
+        if input.is_file() && crate::io::hdf5::looks_like_hdf5(input) {
+            return Self::open_hdf5(input, limits);
+        }
         if !input.is_dir() {
             return Err(Error::input(
                 input,
-                "cannot be streamed: only a folder of PNG maps is read a strip at a time",
-                "give the montage as a folder of 8/16-bit grayscale PNG maps, or leave out --stream to load it whole",
+                "cannot be streamed: a montage is read a strip at a time from a folder of PNG maps or an HDF5 file",
+                "give the montage as a folder of 8/16-bit grayscale PNG maps or an HDF5 file with one 2-D dataset per element, or leave out --stream to load it whole",
             ));
         }
         let listing = crate::io::folder::list(input)?;
@@ -285,6 +310,36 @@ impl StreamedField {
             files: maps.iter().map(|m| m.2.clone()).collect(),
             warnings: listing.warnings,
             has_bse: !listing.bse_files.is_empty(),
+            sources,
+        })
+    }
+
+    fn open_hdf5(input: &Path, limits: &Limits) -> Result<StreamedField> {
+        let l = crate::io::hdf5::list_rows(input, limits)?;
+        let file = std::rc::Rc::new(l.file);
+        let mut maps = l.maps;
+        maps.sort_by_key(|m| m.1.z);
+        let sources = maps
+            .iter()
+            .map(|(name, _, _)| {
+                Box::new(Hdf5Rows {
+                    path: input.to_path_buf(),
+                    file: file.clone(),
+                    group: l.group.clone(),
+                    name: name.clone(),
+                }) as Box<dyn RowSource>
+            })
+            .collect();
+        Ok(StreamedField {
+            name: crate::io::field_name(input),
+            input: input.to_path_buf(),
+            width: l.width,
+            height: l.height,
+            lines: maps.iter().map(|m| (m.1, m.2.clone())).collect(),
+            metadata: l.metadata,
+            files: vec![input.to_path_buf()],
+            warnings: Vec::new(),
+            has_bse: l.has_bse,
             sources,
         })
     }
@@ -494,8 +549,12 @@ pub fn label_streamed(
 impl StreamedField {
     /// Starts every map again from its first row.
     fn rewind(&mut self) -> Result<()> {
-        if self.files.is_empty() {
-            return Ok(()); // held in memory: reads are random access
+        let png = self
+            .files
+            .first()
+            .is_some_and(|p| p.extension().is_some_and(|x| x.eq_ignore_ascii_case("png")));
+        if !png {
+            return Ok(()); // in memory or HDF5: reads are random access
         }
         let limits = Limits {
             max_pixels: u64::MAX,

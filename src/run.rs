@@ -82,17 +82,16 @@ pub fn process_field(
             Stream::Never => None,
             Stream::Always(rows) => Some(rows),
             Stream::Auto => {
-                let big = input.is_dir()
-                    && crate::montage::StreamedField::open(
-                        input,
-                        &Limits {
-                            max_pixels: job.max_pixels,
-                        },
-                    )
-                    .is_ok_and(|f| {
-                        (f.width as u64) * (f.height as u64) * (f.lines.len() as u64)
-                            > STREAM_ABOVE_VALUES
-                    });
+                let big = crate::montage::StreamedField::open(
+                    input,
+                    &Limits {
+                        max_pixels: job.max_pixels,
+                    },
+                )
+                .is_ok_and(|f| {
+                    (f.width as u64) * (f.height as u64) * (f.lines.len() as u64)
+                        > STREAM_ABOVE_VALUES
+                });
                 big.then_some(None)
             }
         };

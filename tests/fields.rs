@@ -210,6 +210,19 @@ fn a_bad_field_fails_alone_and_models_are_checked() {
     let r = modalmap(&["apply", &s(&other), &s(&b), "-o", &s(&d.join("o3"))]);
     assert_eq!(r.code, 3, "{}", r.stderr);
     assert!(r.stderr.contains("other.json") && r.stderr.contains("modalmap.model/1"));
+    // A truncated model file, and one whose phases do not match its clusters.
+    let text = std::fs::read_to_string(&model).unwrap();
+    std::fs::write(&other, &text[..text.len() / 2]).unwrap();
+    let r = modalmap(&["apply", &s(&other), &s(&b), "-o", &s(&d.join("o4"))]);
+    assert_eq!(r.code, 3, "{}", r.stderr);
+    assert!(r.stderr.contains("other.json") && r.stderr.contains("fix: "));
+    let mut m = json(&model);
+    m["phases"].as_array_mut().unwrap().pop();
+    std::fs::write(&other, m.to_string()).unwrap();
+    let r = modalmap(&["apply", &s(&other), &s(&b), "-o", &s(&d.join("o5"))]);
+    assert_eq!(r.code, 3, "{}", r.stderr);
+    assert!(r.stderr.contains("inconsistent"), "{}", r.stderr);
+    assert!(!d.join("o3").exists() && !d.join("o4").exists() && !d.join("o5").exists());
 
     // merge refuses a `map` output, and fields of two models.
     let mapped = d.join("mapped");
@@ -297,4 +310,64 @@ fn streamed_montage_matches_the_in_memory_path() {
         }
     }
     assert!(b.get("bse").is_none() && b["model"].is_object());
+}
+
+/// The same for an HDF5 file with chunked, compressed 2-D datasets (one per element),
+/// read a window of rows at a time.
+#[test]
+fn streamed_hdf5_montage_matches_the_in_memory_path() {
+    let tmp = tempfile::tempdir().unwrap();
+    let d = tmp.path();
+    let (train, _) = rock(d, 41);
+    let model = d.join("model.json");
+    assert_eq!(
+        modalmap(&["fit", &s(&train), "-o", &s(&model), "--quiet"]).code,
+        0
+    );
+    let (micro, opts) = benchmark_rock(300, 42);
+    let field = generate(&micro, &opts).unwrap();
+    let (w, h) = (field.stack.width(), field.stack.height());
+    let mut b = hdf5_pure::FileBuilder::new();
+    for m in field.stack.maps() {
+        let v: Vec<u16> = m.counts.iter().map(|&c| c as u16).collect();
+        b.create_dataset(&format!("{}_Ka", m.element.symbol))
+            .with_u16_data(&v)
+            .with_shape(&[h as u64, w as u64])
+            .with_chunks(&[32, w as u64])
+            .with_deflate(4);
+    }
+    let file = d.join("montage.h5");
+    b.write(&file).unwrap();
+    let (whole, strips) = (d.join("whole"), d.join("strips"));
+    let r = modalmap(&["apply", &s(&model), &s(&file), "-o", &s(&whole), "--quiet"]);
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    let r = modalmap(&[
+        "apply",
+        &s(&model),
+        &s(&file),
+        "-o",
+        &s(&strips),
+        "--stream",
+        "--strip-rows",
+        "40",
+        "--quiet",
+    ]);
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    assert_eq!(
+        std::fs::read(whole.join("montage/labels.png")).unwrap(),
+        std::fs::read(strips.join("montage/labels.png")).unwrap()
+    );
+    let (a, b) = (
+        json(&whole.join("montage/report.json")),
+        json(&strips.join("montage/report.json")),
+    );
+    for (p, q) in a["phases"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .zip(b["phases"].as_array().unwrap())
+    {
+        assert_eq!(p["pixels"], q["pixels"]);
+        assert_eq!(p["composition_wt"], q["composition_wt"]);
+    }
 }

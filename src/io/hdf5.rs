@@ -24,7 +24,7 @@ use crate::error::{Error, Result};
 use crate::stack::{ElementMap, FieldMetadata, MapStack};
 
 /// True if the file starts with the HDF5 signature (or has an HDF5 extension).
-pub(super) fn looks_like_hdf5(path: &Path) -> bool {
+pub(crate) fn looks_like_hdf5(path: &Path) -> bool {
     let ext = path
         .extension()
         .and_then(|e| e.to_str())
@@ -374,6 +374,132 @@ fn load_inner(
         files: vec![path.to_path_buf()],
         warnings: Vec::new(),
     })
+}
+
+/// The element maps of an HDF5 field in the group-of-2-D-datasets layout, opened for
+/// reading a window of rows at a time (a montage): nothing is decoded yet.
+pub(crate) struct RowListing {
+    /// The file, opened for streaming reads.
+    pub file: File,
+    /// `maps/` or empty: where the datasets are.
+    pub group: Option<String>,
+    /// Dataset name, element, line.
+    pub maps: Vec<(String, crate::chem::ElementInfo, Option<String>)>,
+    /// Width.
+    pub width: usize,
+    /// Height.
+    pub height: usize,
+    /// Metadata from the attributes.
+    pub metadata: FieldMetadata,
+    /// A BSE dataset is present.
+    pub has_bse: bool,
+}
+
+/// Lists an HDF5 field for reading by rows (see [`RowListing`]).
+pub(crate) fn list_rows(path: &Path, limits: &Limits) -> Result<RowListing> {
+    let h5err = |e: hdf5_pure::Error| {
+        Error::input(
+            path,
+            format!("is not a readable HDF5 file ({e})"),
+            "the file is damaged, truncated or not HDF5; export it again",
+        )
+    };
+    let file = File::open_streaming(path).map_err(h5err)?;
+    let root = file.root();
+    let mut metadata = FieldMetadata::default();
+    metadata_from(&root.attrs().map_err(h5err)?, &mut metadata);
+    let root_datasets = root.datasets().map_err(h5err)?;
+    if root_datasets.iter().any(|d| d == "maps") {
+        return Err(Error::input(
+            path,
+            "holds its maps as one 3-D dataset, which cannot be read a strip of rows at a time",
+            "store one 2-D dataset per element (in a group `maps` or at the root) to stream a montage, or leave out --stream",
+        ));
+    }
+    let in_group = root.groups().map_err(h5err)?.iter().any(|g| g == "maps");
+    let group = if in_group {
+        let g = file.group("maps").map_err(h5err)?;
+        metadata_from(&g.attrs().map_err(h5err)?, &mut metadata);
+        g
+    } else {
+        root
+    };
+    let mut names = group.datasets().map_err(h5err)?;
+    names.sort();
+    let mut maps = Vec::new();
+    let mut size: Option<(usize, usize)> = None;
+    let mut has_bse = !in_group && root_datasets.iter().any(|d| d == "bse");
+    for name in names {
+        if is_bse_name(&name) {
+            has_bse = true;
+            continue;
+        }
+        let Some((element, line)) = parse_map_name(&name) else {
+            continue;
+        };
+        let ds = group.dataset(&name).map_err(h5err)?;
+        let shape = checked_shape(path, &name, &ds, file.file_size(), limits)?;
+        if shape.len() != 2 {
+            return Err(bad(
+                path,
+                format!("dataset {name} has shape {shape:?}; an element map must be 2-D (height × width)"),
+            ));
+        }
+        let (h, w) = (shape[0] as usize, shape[1] as usize);
+        match size {
+            Some((w0, h0)) if (w0, h0) != (w, h) => {
+                return Err(Error::input(
+                    path,
+                    format!("dataset {name} is {w}×{h} but the others are {w0}×{h0}"),
+                    "all maps of a field must share one size; re-export them together",
+                ))
+            }
+            _ => size = Some((w, h)),
+        }
+        let line = ds
+            .attrs()
+            .map_err(h5err)?
+            .get("line")
+            .and_then(|a| a.as_str().map(str::to_string))
+            .or(line);
+        maps.push((name, element, line));
+    }
+    metadata.check(path)?;
+    let Some((width, height)) = size else {
+        return Err(bad(path, "contains no element maps".into()));
+    };
+    Ok(RowListing {
+        file,
+        group: in_group.then(|| "maps".to_string()),
+        maps,
+        width,
+        height,
+        metadata,
+        has_bse,
+    })
+}
+
+/// Rows `y0..y0 + n` of one dataset of a listing, as `f32`.
+pub(crate) fn read_rows(
+    path: &Path,
+    file: &File,
+    group: Option<&str>,
+    name: &str,
+    y0: usize,
+    n: usize,
+) -> Result<Vec<f32>> {
+    let err = |e: hdf5_pure::Error| {
+        Error::input(
+            path,
+            format!("dataset {name} cannot be read ({e})"),
+            "the file is damaged; export it again",
+        )
+    };
+    let ds = match group {
+        Some(g) => file.group(g).map_err(err)?.dataset(name).map_err(err)?,
+        None => file.root().dataset(name).map_err(err)?,
+    };
+    ds.read_f32_rows(y0 as u64, n as u64).map_err(err)
 }
 
 /// Reads a 2-D BSE dataset (any numeric type) from an HDF5 file.
