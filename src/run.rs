@@ -233,6 +233,7 @@ pub fn process_field(
         fitted_pixels: result.fitted_pixels,
         metadata: result.counts.metadata(),
         lines: &lines,
+        counts: Some(&result.counts),
     };
     let report = crate::report::build(
         &name,
@@ -323,6 +324,7 @@ fn process_streamed(
         fitted_pixels: 0,
         metadata: &field.metadata,
         lines: &field.lines,
+        counts: None,
     };
     let report = crate::report::build(
         &field.name,

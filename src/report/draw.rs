@@ -167,20 +167,75 @@ pub fn phase_map(
         c.text(lx + 12 * ts, y, &e.text, ts, ink);
     }
     if let Some(px) = pixel_size_um {
-        let field_um = w as f64 * px;
-        let len_um = scale_bar_um(field_um);
-        let len = ((len_um / px) * zoom as f64).round() as usize;
-        let label = if len_um >= 1.0 {
-            format!("{len_um} µm")
-        } else {
-            format!("{} nm", len_um * 1000.0)
-        };
-        let bar_h = 3 * ts;
-        let tw = label.chars().count() * 8 * ts;
-        let (bx, by) = (4 * ts, header + mh - bar_h - 14 * ts);
-        c.rect(bx - ts, by - ts, len.max(tw) + 2 * ts, bar_h + 12 * ts, bg);
-        c.rect(bx, by, len, bar_h, ink);
-        c.text(bx, by + bar_h + 2 * ts, &label, ts, ink);
+        scale_bar(&mut c, px, w, zoom, ts, header + mh);
+    }
+    c
+}
+
+/// Draws a scale bar in the lower left of an image of `w` pixels of `px` µm drawn at
+/// `zoom` whose bottom edge is at `bottom`.
+fn scale_bar(c: &mut Canvas, px: f64, w: usize, zoom: usize, ts: usize, bottom: usize) {
+    let len_um = scale_bar_um(w as f64 * px);
+    let len = ((len_um / px) * zoom as f64).round() as usize;
+    let label = if len_um >= 1.0 {
+        format!("{len_um} µm")
+    } else {
+        format!("{} nm", len_um * 1000.0)
+    };
+    let bar_h = 3 * ts;
+    let tw = label.chars().count() * 8 * ts;
+    let (bx, by) = (4 * ts, bottom - bar_h - 14 * ts);
+    c.rect(
+        bx - ts,
+        by - ts,
+        len.max(tw) + 2 * ts,
+        bar_h + 12 * ts,
+        [255; 3],
+    );
+    c.rect(bx, by, len, bar_h, [0; 3]);
+    c.text(bx, by + bar_h + 2 * ts, &label, ts, [0; 3]);
+}
+
+/// One element's counts as a grey image (black 0 to white at the 99.5th percentile), with
+/// a title, a grey ramp labelled with the count range, and a scale bar.
+pub fn element_map(
+    counts: &[f32],
+    w: usize,
+    h: usize,
+    title: &str,
+    pixel_size_um: Option<f64>,
+) -> Canvas {
+    let mut sorted: Vec<f32> = counts.iter().copied().filter(|v| v.is_finite()).collect();
+    sorted.sort_unstable_by(f32::total_cmp);
+    let top = sorted
+        .get((sorted.len().max(1) - 1) - sorted.len() / 200)
+        .copied()
+        .unwrap_or(1.0)
+        .max(1.0);
+    let zoom = (600 / w.max(h)).clamp(1, 8);
+    let (mw, mh) = (w * zoom, h * zoom);
+    let ts = if mw >= 1500 { 3 } else { 2 };
+    let header = 16 * ts;
+    let label = format!("{top:.0}");
+    let ramp_w = 10 * ts + (label.len().max(2) + 1) * 8 * ts;
+    let mut c = Canvas::new(mw + ramp_w + 8 * ts, mh + header, [255; 3]);
+    c.text(4 * ts, 2 * ts, title, ts, [0; 3]);
+    for y in 0..h {
+        for x in 0..w {
+            let v = (255.0 * (counts[y * w + x] / top).clamp(0.0, 1.0)).round() as u8;
+            c.rect(x * zoom, header + y * zoom, zoom, zoom, [v; 3]);
+        }
+    }
+    // The ramp, white at the top.
+    let (rx, ry, rh) = (mw + 4 * ts, header, mh.min(256 * ts));
+    for i in 0..rh {
+        let v = (255.0 * (1.0 - i as f64 / rh as f64)).round() as u8;
+        c.rect(rx, ry + i, 6 * ts, 1, [v; 3]);
+    }
+    c.text(rx + 8 * ts, ry, &label, ts, [0; 3]);
+    c.text(rx + 8 * ts, ry + rh - 8 * ts, "0", ts, [0; 3]);
+    if let Some(px) = pixel_size_um {
+        scale_bar(&mut c, px, w, zoom, ts, header + mh);
     }
     c
 }

@@ -6,6 +6,7 @@
 //! half-written.
 
 pub mod draw;
+pub mod html;
 mod output;
 
 use std::collections::BTreeMap;
@@ -225,6 +226,9 @@ pub struct Labelled<'a> {
     pub metadata: &'a crate::stack::FieldMetadata,
     /// Mapped elements with the line named with each map.
     pub lines: &'a [(crate::chem::ElementInfo, Option<String>)],
+    /// The counts on the label grid, when the field was held whole (for the element maps
+    /// and the count plots).
+    pub counts: Option<&'a crate::stack::MapStack>,
 }
 
 /// What the stages after labelling found, for the report.
@@ -632,5 +636,89 @@ pub fn write_outputs(
         .map_err(|e| Error::internal(format!("report encoding failed: {e}")))?;
     dir.write("report.json", json.as_bytes())?;
     dir.write("phases.csv", phases_csv(r).as_bytes())?;
+
+    // Per-element maps, then the page with everything.
+    let read = |name: &str| {
+        std::fs::read(dir.path(name)).map_err(|e| {
+            Error::output(
+                &dir.path(name),
+                format!("could not be read back: {e}"),
+                "check free disk space",
+            )
+        })
+    };
+    let mut element_maps = Vec::new();
+    let mut scatters = Vec::new();
+    if let Some(counts) = result.counts {
+        for m in counts.maps() {
+            let line = m.line.clone().unwrap_or_default();
+            let title = format!("{} {} counts per pixel", m.element.symbol, line);
+            let canvas = draw::element_map(&m.counts, w, h, title.trim(), r.pixel_size_um);
+            let name = format!("element-{}.png", m.element.symbol);
+            crate::io::raster::write_png_rgb(
+                &dir.path(&name),
+                canvas.width,
+                canvas.height,
+                &canvas.rgb,
+            )?;
+            let mut s: Vec<f32> = m.counts.clone();
+            s.sort_unstable_by(f32::total_cmp);
+            let (lo, hi) = (s[0], s[s.len() - 1]);
+            element_maps.push(html::Figure {
+                png: read(&name)?,
+                alt: format!(
+                    "{} map: grey level proportional to counts per pixel",
+                    m.element.symbol
+                ),
+                caption: format!(
+                    "{} {line}: counts per pixel {lo:.0} to {hi:.0}",
+                    m.element.symbol
+                ),
+            });
+        }
+        for (ex, ey) in html::informative_pairs(r) {
+            let (a, b) = (counts.map(&ex), counts.map(&ey));
+            if let (Some(a), Some(b)) = (a, b) {
+                scatters.push(html::density_scatter(
+                    &ex,
+                    &ey,
+                    &a.counts,
+                    &b.counts,
+                    &seg.labels,
+                    r.phases.len(),
+                ));
+            }
+        }
+    }
+    let mut figures = vec![html::Figure {
+        png: read("phase-map.png")?,
+        alt: format!(
+            "Phase map of {} with {} phases; legend lists each phase's id, name and area",
+            r.field,
+            r.phases.len()
+        ),
+        caption: "Phases (ids as in the table; black: unassigned pixels).".into(),
+    }];
+    if bse.is_some() {
+        figures.push(html::Figure {
+            png: read("bse-registered.png")?,
+            alt: "BSE image registered onto the map grid".into(),
+            caption: "BSE image, registered and resampled onto the map grid.".into(),
+        });
+        figures.push(html::Figure {
+            png: read("overlay.png")?,
+            alt: "BSE image with the phase boundaries drawn in the phases' colours".into(),
+            caption: "Phase boundaries on the BSE image.".into(),
+        });
+    }
+    let page = html::page(
+        r,
+        &html::Extras {
+            figures,
+            element_maps,
+            scatters,
+        },
+    );
+    dir.write("report.html", page.as_bytes())?;
     Ok(())
 }
