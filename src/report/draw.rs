@@ -133,6 +133,19 @@ pub fn phase_map(
     pixel_size_um: Option<f64>,
     title: &str,
 ) -> Canvas {
+    framed(&|i| colour(labels[i]), w, h, legend, pixel_size_um, title)
+}
+
+/// Any RGB image (`pixel(i)` for pixel i, row-major) framed like the phase map: title,
+/// legend on the right, scale bar when the pixel size is known, small fields enlarged.
+pub fn framed(
+    pixel: &dyn Fn(usize) -> [u8; 3],
+    w: usize,
+    h: usize,
+    legend: &[LegendEntry],
+    pixel_size_um: Option<f64>,
+    title: &str,
+) -> Canvas {
     let zoom = (600 / w.max(h)).clamp(1, 8);
     let (mw, mh) = (w * zoom, h * zoom);
     let ts = if mw >= 1500 { 3 } else { 2 };
@@ -155,8 +168,7 @@ pub fn phase_map(
     c.text(4 * ts, 2 * ts, title, ts, ink);
     for y in 0..h {
         for x in 0..w {
-            let col = colour(labels[y * w + x]);
-            c.rect(x * zoom, header + y * zoom, zoom, zoom, col);
+            c.rect(x * zoom, header + y * zoom, zoom, zoom, pixel(y * w + x));
         }
     }
     let lx = mw + 6 * ts;

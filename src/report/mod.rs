@@ -630,7 +630,20 @@ pub fn write_outputs(
         let grey = draw::to_grey(&b.registered);
         crate::io::raster::write_png_u8(&dir.path("bse-registered.png"), w, h, &grey)?;
         let overlay = draw::overlay(&grey, &seg.labels, w, h);
-        crate::io::raster::write_png_rgb(&dir.path("overlay.png"), w, h, &overlay)?;
+        let canvas = draw::framed(
+            &|i| [overlay[3 * i], overlay[3 * i + 1], overlay[3 * i + 2]],
+            w,
+            h,
+            &legend[..legend.len() - 1],
+            r.pixel_size_um,
+            &format!("{}: phase boundaries on BSE", r.field),
+        );
+        crate::io::raster::write_png_rgb(
+            &dir.path("overlay.png"),
+            canvas.width,
+            canvas.height,
+            &canvas.rgb,
+        )?;
     }
     let json = serde_json::to_string_pretty(r)
         .map_err(|e| Error::internal(format!("report encoding failed: {e}")))?;
