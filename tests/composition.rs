@@ -9,7 +9,9 @@
 
 mod common;
 
-use common::fields::{ceramic_with_continuum, granite_with_continuum};
+use common::fields::{
+    ceramic_detector, ceramic_with_continuum, granite_detector, granite_with_continuum,
+};
 use modalmap::characterise::{BackgroundMode, CompositionOptions, CompositionReport, OxygenMode};
 use modalmap::chem::parse_formula;
 use modalmap::pipeline::{characterise, map_stack, MapOptions, MapResult};
@@ -119,11 +121,7 @@ fn calibrated_sample_field_recovers_every_phase() {
 fn kfactor_file_recovers_the_ceramic() {
     let field = ceramic_with_continuum(0.0);
     let dir = tempfile::tempdir().unwrap();
-    let det = Detector::new(
-        &[("O", "Ka", 30.0), ("Al", "Ka", 32.0), ("Zr", "La", 30.0)],
-        0.0,
-        1.0,
-    );
+    let det = ceramic_detector(0.0);
     let r = run(
         &field,
         CompositionOptions {
@@ -153,18 +151,7 @@ fn oxygen_by_stoichiometry_recovers_the_granite() {
             ..Default::default()
         });
     let dir = tempfile::tempdir().unwrap();
-    let det = Detector::new(
-        &[
-            ("O", "Ka", 25.0),
-            ("Na", "Ka", 30.0),
-            ("Al", "Ka", 30.0),
-            ("Si", "Ka", 30.0),
-            ("K", "Ka", 35.0),
-            ("Fe", "Ka", 30.0),
-        ],
-        0.0,
-        1.0,
-    );
+    let det = granite_detector(0.0);
     let (r, report) = run_with_report(
         &field,
         CompositionOptions {

@@ -181,13 +181,7 @@ fn load_inner(
     open: impl FnOnce() -> std::result::Result<File, hdf5_pure::Error>,
     limits: &Limits,
 ) -> Result<LoadedField> {
-    let h5err = |e: hdf5_pure::Error| {
-        Error::input(
-            path,
-            format!("is not a readable HDF5 file ({e})"),
-            "the file is damaged, truncated or not HDF5; export it again",
-        )
-    };
+    let h5err = |e: hdf5_pure::Error| unreadable(path, e);
     let file = open().map_err(h5err)?;
     let root = file.root();
     let mut metadata = FieldMetadata::default();
@@ -395,15 +389,18 @@ pub(crate) struct RowListing {
     pub has_bse: bool,
 }
 
+/// The error for a file the HDF5 reader refuses.
+fn unreadable(path: &Path, e: hdf5_pure::Error) -> Error {
+    Error::input(
+        path,
+        format!("is not a readable HDF5 file ({e})"),
+        "the file is damaged, truncated or not HDF5; export it again",
+    )
+}
+
 /// Lists an HDF5 field for reading by rows (see [`RowListing`]).
 pub(crate) fn list_rows(path: &Path, limits: &Limits) -> Result<RowListing> {
-    let h5err = |e: hdf5_pure::Error| {
-        Error::input(
-            path,
-            format!("is not a readable HDF5 file ({e})"),
-            "the file is damaged, truncated or not HDF5; export it again",
-        )
-    };
+    let h5err = |e: hdf5_pure::Error| unreadable(path, e);
     let file = File::open_streaming(path).map_err(h5err)?;
     let root = file.root();
     let mut metadata = FieldMetadata::default();

@@ -571,20 +571,12 @@ pub fn page(r: &Report, extras: &Extras) -> String {
         r.phases.len(),
         100.0 * r.unassigned_fraction
     );
-    h.push_str("<h2>Phase map</h2><div class=\"row\">");
-    for f in &extras.figures {
-        let _ = write!(
-            h,
-            "<figure><img src=\"data:image/png;base64,{}\" alt=\"{}\"><figcaption>{}</figcaption></figure>",
-            base64(&f.png),
-            esc(&f.alt),
-            esc(&f.caption)
-        );
-    }
-    h.push_str("</div>\n");
-    if !extras.element_maps.is_empty() {
-        h.push_str("<h2>Element maps</h2><div class=\"row maps\">");
-        for f in &extras.element_maps {
+    let figures = |h: &mut String, title: &str, class: &str, figs: &[Figure]| {
+        if figs.is_empty() {
+            return;
+        }
+        let _ = write!(h, "<h2>{title}</h2><div class=\"{class}\">");
+        for f in figs {
             let _ = write!(
                 h,
                 "<figure><img src=\"data:image/png;base64,{}\" alt=\"{}\"><figcaption>{}</figcaption></figure>",
@@ -594,7 +586,9 @@ pub fn page(r: &Report, extras: &Extras) -> String {
             );
         }
         h.push_str("</div>\n");
-    }
+    };
+    figures(&mut h, "Phase map", "row", &extras.figures);
+    figures(&mut h, "Element maps", "row maps", &extras.element_maps);
     // The phase table.
     h.push_str("<h2>Phases</h2><table id=\"phases\"><thead><tr><th>id</th><th class=\"l\">phase</th><th>area %</th><th>95 % CI</th><th class=\"l\">composition wt% ± 1σ</th><th class=\"l\">reference match</th><th>features</th><th>mean ECD</th></tr></thead><tbody>\n");
     for p in &r.phases {

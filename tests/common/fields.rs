@@ -63,20 +63,7 @@ pub fn ceramic_with_continuum(continuum: f64) -> SynthField {
             }
         },
     );
-    generate(
-        &micro,
-        &opts(
-            w,
-            h,
-            Detector::new(
-                &[("O", "Ka", 30.0), ("Al", "Ka", 32.0), ("Zr", "La", 30.0)],
-                continuum,
-                1.0,
-            ),
-            5,
-        ),
-    )
-    .unwrap()
+    generate(&micro, &opts(w, h, ceramic_detector(continuum), 5)).unwrap()
 }
 
 /// A duplex steel: grains of two Fe–Cr–Ni phases of similar chemistry, plus a minor
@@ -174,7 +161,21 @@ pub fn granite_with_continuum(continuum: f64) -> SynthField {
             }
         },
     );
-    let det = Detector::new(
+    generate(&micro, &opts(w, h, granite_detector(continuum), 7)).unwrap()
+}
+
+/// The ceramic's detector: sensitivities per element, a continuum, σ 1 px blur.
+pub fn ceramic_detector(continuum: f64) -> Detector {
+    Detector::new(
+        &[("O", "Ka", 30.0), ("Al", "Ka", 32.0), ("Zr", "La", 30.0)],
+        continuum,
+        1.0,
+    )
+}
+
+/// The granite's detector.
+pub fn granite_detector(continuum: f64) -> Detector {
+    Detector::new(
         &[
             ("O", "Ka", 25.0),
             ("Na", "Ka", 30.0),
@@ -185,6 +186,5 @@ pub fn granite_with_continuum(continuum: f64) -> SynthField {
         ],
         continuum,
         1.0,
-    );
-    generate(&micro, &opts(w, h, det, 7)).unwrap()
+    )
 }
