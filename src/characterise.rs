@@ -529,6 +529,9 @@ pub fn characterise_with(
         }
     }
     let plain: Vec<PhaseCounts> = sums.iter().map(|s| s.0.clone()).collect();
+    let eligible: Vec<bool> = sums.iter().map(|s| s.1).collect();
+    // Net counts with unit factors on the final sums: what a calibration is fitted to.
+    let unit = run(&plain, &eligible, &KFactors::unit(infos.len()));
 
     // k-factors.
     let mut calibration_used = Vec::new();
@@ -593,7 +596,7 @@ pub fn characterise_with(
                     "name each calibration phase once",
                 ));
             }
-            let net = &first.phases[idx];
+            let net = &unit.phases[idx];
             // Net rates and variances with the current background, unit factors.
             standards.push(Standard {
                 net: net.net_rate.clone(),
@@ -646,7 +649,6 @@ pub fn characterise_with(
         )
     };
     // Recompute with the (possibly widened) sums and the factors.
-    let eligible: Vec<bool> = sums.iter().map(|s| s.1).collect();
     let q = run(&plain, &eligible, &kf);
     let matches = match_all(&q, calibrated_basis);
     let background = background_of(&plain, &eligible, &kf.k);

@@ -113,8 +113,8 @@ pub enum Command {
         /// Fields processed at the same time (default 2; each also uses every thread).
         #[arg(long, value_name = "N")]
         jobs: Option<usize>,
-        /// Label every field strip by strip in bounded memory (a folder of PNG maps; done
-        /// anyway for fields over 2^28 values).
+        /// Label every field strip by strip in bounded memory (a folder of PNG maps or an
+        /// HDF5 file of 2-D maps; done anyway for such fields over 2^28 values).
         #[arg(long, conflicts_with = "no_stream")]
         stream: bool,
         /// Load every field whole, however big.
@@ -700,6 +700,12 @@ fn fit(inputs: &[PathBuf], output: &std::path::Path, args: &MapArgs) -> Result<u
     } = args.resolve()?;
     let valid = opts.check()?;
     let composition = composition.check()?;
+    if args.bse.is_some() || args.bse_pixel_size.is_some() {
+        return Err(Error::options(
+            "--bse and --bse-pixel-size cannot be given to fit",
+            "fit learns the phases from the element maps; check the BSE contrast with map or apply",
+        ));
+    }
     if output.is_dir() {
         return Err(Error::output(
             output,
