@@ -940,12 +940,23 @@ fn apply(
         stream,
     };
     let bar = progress_bar(args.quiet, mine.len());
-    let outcomes = crate::run::run_batch(&mine, out, &job, jobs, &|o| {
-        if let Some(b) = &bar {
-            b.set_message(o.field.clone());
-            b.inc(1);
-        }
-    });
+    let outcomes = crate::run::run_batch(
+        &mine,
+        out,
+        &job,
+        jobs,
+        &|field, stage| {
+            if let Some(b) = &bar {
+                b.set_message(format!("{field}: {stage}"));
+            }
+        },
+        &|o| {
+            if let Some(b) = &bar {
+                b.set_message(o.field.clone());
+                b.inc(1);
+            }
+        },
+    );
     if let Some(b) = bar {
         b.finish_and_clear();
     }

@@ -384,19 +384,21 @@ pub fn output_names(inputs: &[PathBuf]) -> Vec<String> {
 }
 
 /// Runs `fields` (input, output folder name) into `out`, `jobs` at a time, carrying on
-/// past failures; `done` is told each finished field. Outcomes are in input order.
+/// past failures; `stage` hears (field, stage) as each field goes on (strips of a
+/// montage included), `done` each finished field. Outcomes are in input order.
 pub fn run_batch(
     fields: &[(PathBuf, String)],
     out: &Path,
     job: &FieldJob,
     jobs: usize,
+    stage: &(dyn Fn(&str, &str) + Sync),
     done: &(dyn Fn(&FieldOutcome) + Sync),
 ) -> Vec<FieldOutcome> {
     use rayon::prelude::*;
     let run_one = |(input, name): &(PathBuf, String)| {
         let target = out.join(name);
         let r = std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| {
-            process_field(input, &target, job, &mut |_| {})
+            process_field(input, &target, job, &mut |s| stage(name, s))
         }))
         .unwrap_or_else(|_| {
             Err(Error::internal(format!(
