@@ -309,21 +309,8 @@ fn load_inner(
                 continue;
             };
             let ds = group.dataset(&name).map_err(h5err)?;
-            let shape = checked_shape(path, &full, &ds, file.file_size(), limits)?;
-            if shape.len() != 2 {
-                return Err(bad(
-                    path,
-                    format!("dataset /{full} has shape {shape:?}; an element map must be 2-D (height × width)"),
-                ));
-            }
-            let line = ds
-                .attrs()
-                .map_err(h5err)?
-                .get("line")
-                .and_then(|a| a.as_str().map(str::to_string))
-                .or(line);
+            let ((h, w), line) = map_dataset(path, &format!("/{full}"), &ds, &file, limits, line)?;
             let data = ds.read_f32().map_err(h5err)?;
-            let (h, w) = (shape[0] as usize, shape[1] as usize);
             if data.len() != h * w {
                 return Err(short(path));
             }
@@ -389,6 +376,34 @@ pub(crate) struct RowListing {
     pub has_bse: bool,
 }
 
+/// An element map's dataset: its size (height, width), checked to be 2-D and within the
+/// limits, and its X-ray line (the `line` attribute, else the one from its name).
+fn map_dataset(
+    path: &Path,
+    name: &str,
+    ds: &hdf5_pure::Dataset,
+    file: &File,
+    limits: &Limits,
+    line_from_name: Option<String>,
+) -> Result<((usize, usize), Option<String>)> {
+    let shape = checked_shape(path, name, ds, file.file_size(), limits)?;
+    if shape.len() != 2 {
+        return Err(bad(
+            path,
+            format!(
+                "dataset {name} has shape {shape:?}; an element map must be 2-D (height × width)"
+            ),
+        ));
+    }
+    let line = ds
+        .attrs()
+        .map_err(|e| unreadable(path, e))?
+        .get("line")
+        .and_then(|a| a.as_str().map(str::to_string))
+        .or(line_from_name);
+    Ok(((shape[0] as usize, shape[1] as usize), line))
+}
+
 /// The error for a file the HDF5 reader refuses.
 fn unreadable(path: &Path, e: hdf5_pure::Error) -> Error {
     Error::input(
@@ -435,14 +450,7 @@ pub(crate) fn list_rows(path: &Path, limits: &Limits) -> Result<RowListing> {
             continue;
         };
         let ds = group.dataset(&name).map_err(h5err)?;
-        let shape = checked_shape(path, &name, &ds, file.file_size(), limits)?;
-        if shape.len() != 2 {
-            return Err(bad(
-                path,
-                format!("dataset {name} has shape {shape:?}; an element map must be 2-D (height × width)"),
-            ));
-        }
-        let (h, w) = (shape[0] as usize, shape[1] as usize);
+        let ((h, w), line) = map_dataset(path, &name, &ds, &file, limits, line)?;
         match size {
             Some((w0, h0)) if (w0, h0) != (w, h) => {
                 return Err(Error::input(
@@ -453,12 +461,6 @@ pub(crate) fn list_rows(path: &Path, limits: &Limits) -> Result<RowListing> {
             }
             _ => size = Some((w, h)),
         }
-        let line = ds
-            .attrs()
-            .map_err(h5err)?
-            .get("line")
-            .and_then(|a| a.as_str().map(str::to_string))
-            .or(line);
         maps.push((name, element, line));
     }
     metadata.check(path)?;
