@@ -371,3 +371,53 @@ fn streamed_hdf5_montage_matches_the_in_memory_path() {
         assert_eq!(p["composition_wt"], q["composition_wt"]);
     }
 }
+
+/// Bad options of the many-field commands exit 2 (or 4 for outputs) before any work.
+#[test]
+fn many_field_options_are_checked() {
+    let tmp = tempfile::tempdir().unwrap();
+    let d = tmp.path();
+    let (a, _) = rock(d, 51);
+    let model = d.join("model.json");
+    assert_eq!(
+        modalmap(&["fit", &s(&a), "-o", &s(&model), "--quiet"]).code,
+        0
+    );
+    for (args, code, says) in [
+        (vec!["--shard", "5/4"], 2, "--shard"),
+        (vec!["--shard", "two/4"], 2, "--shard"),
+        (vec!["--jobs", "0"], 2, "--jobs"),
+        (vec!["--config", "x.toml"], 2, "--config"),
+    ] {
+        let mut all = vec![
+            "apply".to_string(),
+            s(&model),
+            s(&a),
+            "-o".into(),
+            s(&d.join("o")),
+        ];
+        all.extend(args.iter().map(|x| x.to_string()));
+        let refs: Vec<&str> = all.iter().map(String::as_str).collect();
+        let r = modalmap(&refs);
+        assert_eq!(r.code, code, "{args:?}: {}", r.stderr);
+        assert!(
+            r.stderr.contains(says) && r.stderr.contains("fix: "),
+            "{}",
+            r.stderr
+        );
+    }
+    assert!(!d.join("o").exists(), "nothing written");
+    // OUT is a file.
+    std::fs::write(d.join("file"), "x").unwrap();
+    let r = modalmap(&["apply", &s(&model), &s(&a), "-o", &s(&d.join("file"))]);
+    assert_eq!(r.code, 4, "{}", r.stderr);
+    // merge of a folder without reports; fit of fields with other elements.
+    std::fs::create_dir(d.join("empty")).unwrap();
+    let r = modalmap(&["merge", &s(&d.join("empty")), "-o", &s(&d.join("sum"))]);
+    assert_eq!(r.code, 2, "{}", r.stderr);
+    assert!(r.stderr.contains("no report.json"));
+    let sample = Path::new(env!("CARGO_MANIFEST_DIR")).join("sample-maps");
+    let r = modalmap(&["fit", &s(&a), &s(&sample), "-o", &s(&d.join("m2.json"))]);
+    assert_eq!(r.code, 3, "{}", r.stderr);
+    assert!(r.stderr.contains("elements") && !d.join("m2.json").exists());
+}
