@@ -22,7 +22,7 @@ use crate::chem::quant::{
 use crate::chem::{element, parse_formula, Composition, ElementInfo};
 use crate::error::{Error, Result};
 use crate::library::{best_match, composition_from_wt, Library, Match};
-use crate::phases::{interior_counts, PhaseTable};
+use crate::phases::{ClearSums, PhaseTable};
 use crate::stack::MapStack;
 
 /// The k-factor file format name and version.
@@ -430,11 +430,20 @@ pub fn characterise(
     opts: &ValidCompositionOptions,
 ) -> Result<(CompositionReport, Advice)> {
     let k = table.phases.len();
+    // The sums for every clearance come from one pass; computed when first asked for.
+    let sums = std::cell::OnceCell::new();
     characterise_with(
         table,
         &mapped(counts),
         counts.metadata(),
-        &|clearance| interior_counts(labels, width, height, counts, k, clearance),
+        &|clearance| {
+            sums.get_or_init(|| {
+                let planes: Vec<&[f32]> =
+                    counts.maps().iter().map(|m| m.counts.as_slice()).collect();
+                ClearSums::over_rows(labels, width, height, &planes, k, 0..height)
+            })
+            .at(clearance)
+        },
         opts,
     )
 }

@@ -412,17 +412,21 @@ impl ClearSums {
         // Boundary pixels: an 8-neighbour carries another label. A pixel is r clear of
         // other labels exactly when it is at least r from every boundary pixel.
         let mut boundary = vec![0u8; width * height];
-        for y in 0..height {
-            for x in 0..width {
-                let l = labels[y * width + x];
-                let differs = (y.saturating_sub(1)..(y + 2).min(height)).any(|yy| {
-                    (x.saturating_sub(1)..(x + 2).min(width)).any(|xx| labels[yy * width + xx] != l)
-                });
-                if differs {
-                    boundary[y * width + x] = 255;
+        boundary
+            .par_chunks_mut(width)
+            .enumerate()
+            .for_each(|(y, row)| {
+                for (x, b) in row.iter_mut().enumerate() {
+                    let l = labels[y * width + x];
+                    let differs = (y.saturating_sub(1)..(y + 2).min(height)).any(|yy| {
+                        (x.saturating_sub(1)..(x + 2).min(width))
+                            .any(|xx| labels[yy * width + xx] != l)
+                    });
+                    if differs {
+                        *b = 255;
+                    }
                 }
-            }
-        }
+            });
         let img: ImageBuffer<Luma<u8>, Vec<u8>> =
             ImageBuffer::from_raw(width as u32, height as u32, boundary).expect("size matches");
         let any_boundary = img.as_raw().iter().any(|&v| v > 0);

@@ -349,6 +349,22 @@ pub fn write_png_rgb(path: &Path, width: usize, height: usize, rgb: &[u8]) -> Re
     )
 }
 
+/// An 8-bit grayscale PNG in memory (for images embedded in a page).
+pub fn encode_png_u8(width: usize, height: usize, data: &[u8]) -> Vec<u8> {
+    let mut out = Vec::new();
+    {
+        let mut enc = png::Encoder::new(&mut out, width as u32, height as u32);
+        enc.set_color(png::ColorType::Grayscale);
+        enc.set_depth(png::BitDepth::Eight);
+        enc.set_compression(png::Compression::Fast);
+        // Writing into memory cannot fail for a buffer of the right size.
+        if let Ok(mut w) = enc.write_header() {
+            let _ = w.write_image_data(data);
+        }
+    }
+    out
+}
+
 fn write_png(
     path: &Path,
     width: usize,

@@ -252,6 +252,39 @@ pub fn element_map(
     c
 }
 
+/// A grey canvas (every pixel R = G = B) as 8-bit grey levels.
+pub fn luma(c: &Canvas) -> Vec<u8> {
+    c.rgb.chunks_exact(3).map(|p| p[0]).collect()
+}
+
+/// `counts` shrunk by block averaging so the long side is at most `max` pixels, as grey
+/// levels from black at 0 to white at `top`: a thumbnail for the page.
+pub fn grey_thumbnail(
+    counts: &[f32],
+    w: usize,
+    h: usize,
+    top: f32,
+    max: usize,
+) -> (usize, usize, Vec<u8>) {
+    let f = w.max(h).div_ceil(max).max(1);
+    let (tw, th) = (w.div_ceil(f), h.div_ceil(f));
+    let mut out = vec![0u8; tw * th];
+    for ty in 0..th {
+        for tx in 0..tw {
+            let (mut s, mut n) = (0.0f64, 0usize);
+            for y in ty * f..((ty + 1) * f).min(h) {
+                for x in tx * f..((tx + 1) * f).min(w) {
+                    s += f64::from(counts[y * w + x]);
+                    n += 1;
+                }
+            }
+            let v = (s / n.max(1) as f64) / f64::from(top.max(1.0));
+            out[ty * tw + tx] = (255.0 * v.clamp(0.0, 1.0)).round() as u8;
+        }
+    }
+    (tw, th, out)
+}
+
 /// Grey levels scaled to 8 bits between the 0.5th and 99.5th percentiles of the finite
 /// values; NaN (no data) is drawn black.
 pub fn to_grey(v: &[f32]) -> Vec<u8> {

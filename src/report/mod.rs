@@ -663,32 +663,42 @@ pub fn write_outputs(
     let mut element_maps = Vec::new();
     let mut scatters = Vec::new();
     if let Some(counts) = result.counts {
-        for m in counts.maps() {
-            let line = m.line.clone().unwrap_or_default();
-            let title = format!("{} {} counts per pixel", m.element.symbol, line);
-            let canvas = draw::element_map(&m.counts, w, h, title.trim(), r.pixel_size_um);
-            let name = format!("element-{}.png", m.element.symbol);
-            crate::io::raster::write_png_rgb(
-                &dir.path(&name),
-                canvas.width,
-                canvas.height,
-                &canvas.rgb,
-            )?;
-            let mut s: Vec<f32> = m.counts.clone();
-            s.sort_unstable_by(f32::total_cmp);
-            let (lo, hi) = (s[0], s[s.len() - 1]);
-            element_maps.push(html::Figure {
-                png: read(&name)?,
-                alt: format!(
-                    "{} map: grey level proportional to counts per pixel",
-                    m.element.symbol
-                ),
-                caption: format!(
-                    "{} {line}: counts per pixel {lo:.0} to {hi:.0}",
-                    m.element.symbol
-                ),
-            });
-        }
+        use rayon::prelude::*;
+        // Each map as a grey PNG (with title, ramp and scale bar), and a small copy for
+        // the page; in parallel over the elements.
+        let made = counts
+            .maps()
+            .par_iter()
+            .map(|m| {
+                let line = m.line.clone().unwrap_or_default();
+                let title = format!("{} {} counts per pixel", m.element.symbol, line);
+                let canvas = draw::element_map(&m.counts, w, h, title.trim(), r.pixel_size_um);
+                let name = format!("element-{}.png", m.element.symbol);
+                crate::io::raster::write_png_u8(
+                    &dir.path(&name),
+                    canvas.width,
+                    canvas.height,
+                    &draw::luma(&canvas),
+                )?;
+                let mut s: Vec<f32> = m.counts.clone();
+                s.sort_unstable_by(f32::total_cmp);
+                let (lo, hi) = (s[0], s[s.len() - 1]);
+                let top = s[(s.len() - 1) - s.len() / 200];
+                let (tw, th, thumb) = draw::grey_thumbnail(&m.counts, w, h, top, 320);
+                Ok(html::Figure {
+                    png: crate::io::raster::encode_png_u8(tw, th, &thumb),
+                    alt: format!(
+                        "{} map: grey level proportional to counts per pixel",
+                        m.element.symbol
+                    ),
+                    caption: format!(
+                        "{} {line}: counts per pixel {lo:.0} to {hi:.0} (white at {top:.0}; full size in {name})",
+                        m.element.symbol
+                    ),
+                })
+            })
+            .collect::<Result<Vec<_>>>()?;
+        element_maps.extend(made);
         for (ex, ey) in html::informative_pairs(r) {
             let (a, b) = (counts.map(&ex), counts.map(&ey));
             if let (Some(a), Some(b)) = (a, b) {
