@@ -150,6 +150,13 @@ impl PngRows {
 
 impl RowSource for PngRows {
     fn rows(&mut self, y0: usize, n: usize) -> Result<Vec<f32>> {
+        if y0 < self.first {
+            return Err(Error::internal(format!(
+                "{}: rows {y0}.. asked for after row {} (the reader only goes forward)",
+                self.path.display(),
+                self.first
+            )));
+        }
         while self.first < y0 && !self.kept.is_empty() {
             self.kept.pop_front();
             self.first += 1;
