@@ -205,6 +205,11 @@ pub fn map_stack_with_progress(
             }
         }
         let _t = crate::profile::stage("refine again");
+        // Only the labels of the first pass are a start for the second: free the rest
+        // before the second pass allocates its own.
+        seg.confidence = Vec::new();
+        seg.smoothed_labels = Vec::new();
+        seg.outliers = Vec::new();
         seg = refine_from(&f, &clusters, &opts.refine, Some(&seg));
     }
     progress("phase statistics");

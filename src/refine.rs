@@ -324,81 +324,85 @@ pub fn refine_from(
     // so the 3 × 3 start below never needs the scores of the whole field at once (they
     // would take n × (k + 1) floats).
     const BAND: usize = 32;
-    let bands: Vec<Vec<(u16, f32, u16)>> = (0..h.div_ceil(BAND))
-        .into_par_iter()
-        .map_init(Vec::new, |scratch, band| {
-            let (y0, y1) = (band * BAND, ((band + 1) * BAND).min(h));
-            let (ya, yb) = (y0.saturating_sub(1), (y1 + 1).min(h));
-            let mut local = vec![0.0f32; if keep_scores { (yb - ya) * w * kk } else { kk }];
-            let mut first = Vec::with_capacity((yb - ya) * w);
-            for y in ya..yb {
-                for x in 0..w {
-                    let off = if keep_scores {
-                        ((y - ya) * w + x) * kk
-                    } else {
-                        0
-                    };
-                    first.push(compute(y * w + x, &mut local[off..off + kk], scratch));
-                }
-            }
-            let fixed_at = |y: usize, x: usize| {
-                let (l, _) = first[(y - ya) * w + x];
-                !f.mask[y * w + x] || l == outlier_label
-            };
-            let mut acc = vec![0.0f32; kk];
-            (y0..y1)
-                .flat_map(|y| (0..w).map(move |x| (y, x)))
-                .map(|(y, x)| {
-                    let (ml, post) = first[(y - ya) * w + x];
-                    if !keep_scores || fixed_at(y, x) {
-                        return (ml, post, ml);
+    // Written band by band straight into the three per-pixel outputs.
+    let mut ml = vec![0u16; n];
+    let mut confidence = vec![0f32; n];
+    let mut first_labels = vec![0u16; n];
+    ml.par_chunks_mut(BAND * w)
+        .zip(confidence.par_chunks_mut(BAND * w))
+        .zip(first_labels.par_chunks_mut(BAND * w))
+        .enumerate()
+        .for_each_init(
+            Vec::new,
+            |scratch, (band, ((ml_out, conf_out), start_out))| {
+                let (y0, y1) = (band * BAND, ((band + 1) * BAND).min(h));
+                let (ya, yb) = (y0.saturating_sub(1), (y1 + 1).min(h));
+                let mut local = vec![0.0f32; if keep_scores { (yb - ya) * w * kk } else { kk }];
+                let mut first = Vec::with_capacity((yb - ya) * w);
+                for y in ya..yb {
+                    for x in 0..w {
+                        let off = if keep_scores {
+                            ((y - ya) * w + x) * kk
+                        } else {
+                            0
+                        };
+                        first.push(compute(y * w + x, &mut local[off..off + kk], scratch));
                     }
-                    // The label that best explains the pixel and its 3 × 3 neighbourhood.
-                    acc.iter_mut().for_each(|a| *a = 0.0);
-                    for yy in y.saturating_sub(1)..=(y + 1).min(h - 1) {
-                        for xx in x.saturating_sub(1)..=(x + 1).min(w - 1) {
-                            if !fixed_at(yy, xx) {
-                                let off = ((yy - ya) * w + xx) * kk;
-                                acc.iter_mut()
-                                    .zip(&local[off..off + kk])
-                                    .for_each(|(a, s)| *a += s);
+                }
+                let fixed_at = |y: usize, x: usize| {
+                    let (l, _) = first[(y - ya) * w + x];
+                    !f.mask[y * w + x] || l == outlier_label
+                };
+                let mut acc = vec![0.0f32; kk];
+                let pixels = (y0..y1).flat_map(|y| (0..w).map(move |x| (y, x)));
+                for (j, (y, x)) in pixels.enumerate() {
+                    let (l, post) = first[(y - ya) * w + x];
+                    ml_out[j] = l;
+                    conf_out[j] = post;
+                    start_out[j] = l;
+                    if keep_scores && !fixed_at(y, x) {
+                        // The label that best explains the pixel and its 3 × 3 neighbourhood.
+                        acc.iter_mut().for_each(|a| *a = 0.0);
+                        for yy in y.saturating_sub(1)..=(y + 1).min(h - 1) {
+                            for xx in x.saturating_sub(1)..=(x + 1).min(w - 1) {
+                                if !fixed_at(yy, xx) {
+                                    let off = ((yy - ya) * w + xx) * kk;
+                                    acc.iter_mut()
+                                        .zip(&local[off..off + kk])
+                                        .for_each(|(a, s)| *a += s);
+                                }
                             }
                         }
+                        start_out[j] =
+                            (0..kk).fold(0, |b, c| if acc[c] > acc[b] { c } else { b }) as u16;
                     }
-                    (
-                        ml,
-                        post,
-                        (0..kk).fold(0, |b, c| if acc[c] > acc[b] { c } else { b }) as u16,
-                    )
-                })
-                .collect()
-        })
-        .collect();
+                }
+            },
+        );
     drop(t);
     let t = crate::profile::stage("  refine: init");
-    let ml: Vec<u16> = bands.iter().flatten().map(|x| x.0).collect();
-    let mut confidence: Vec<f32> = bands.iter().flatten().map(|x| x.1).collect();
     let fixed: Vec<bool> = (0..n)
         .map(|i| !f.mask[i] || ml[i] == outlier_label)
         .collect();
     // With the spatial prior on, start from the label that best explains the pixel *and*
     // its 3 × 3 neighbourhood: noise-free enough that ICM does not freeze in islands of
     // wrong labels; the pixel's own best label stays a candidate in every sweep.
-    let mut labels: Vec<u16> = if let Some(st) = start {
+    let mut labels: Vec<u16> = match start {
         // Earlier labels (1..=k) where the pixel is still a phase pixel.
-        (0..n)
-            .map(|i| {
-                if fixed[i] || st.labels[i] == 0 {
-                    ml[i]
-                } else {
-                    st.labels[i] - 1
-                }
-            })
-            .collect()
-    } else {
-        bands.iter().flatten().map(|x| x.2).collect()
+        Some(st) => {
+            drop(first_labels);
+            (0..n)
+                .map(|i| {
+                    if fixed[i] || st.labels[i] == 0 {
+                        ml[i]
+                    } else {
+                        st.labels[i] - 1
+                    }
+                })
+                .collect()
+        }
+        None => first_labels,
     };
-    drop(bands);
 
     drop(t);
     let t = crate::profile::stage("  refine: icm");
