@@ -217,11 +217,7 @@ pub fn element_map(
     title: &str,
     pixel_size_um: Option<f64>,
 ) -> Canvas {
-    let mut sorted: Vec<f32> = counts.iter().copied().filter(|v| v.is_finite()).collect();
-    sorted.sort_unstable_by(f32::total_cmp);
-    let top = sorted
-        .get((sorted.len().max(1) - 1) - sorted.len() / 200)
-        .copied()
+    let top = nth_finite(counts, |n| (n - 1) - n / 200)
         .unwrap_or(1.0)
         .max(1.0);
     let zoom = (600 / w.max(h)).clamp(1, 8);
@@ -252,23 +248,31 @@ pub fn element_map(
     c
 }
 
+/// The value a sort of the finite values of `v` would put at index `at(n)` (n ≥ 1 of
+/// them), found in linear time; `None` when no value is finite.
+pub fn nth_finite(v: &[f32], at: impl Fn(usize) -> usize) -> Option<f32> {
+    let mut finite: Vec<f32> = v.iter().copied().filter(|x| x.is_finite()).collect();
+    if finite.is_empty() {
+        return None;
+    }
+    let i = at(finite.len()).min(finite.len() - 1);
+    Some(*finite.select_nth_unstable_by(i, f32::total_cmp).1)
+}
+
 /// A grey canvas (every pixel R = G = B) as 8-bit grey levels.
 pub fn luma(c: &Canvas) -> Vec<u8> {
     c.rgb.chunks_exact(3).map(|p| p[0]).collect()
 }
 
-/// `counts` shrunk by block averaging so the long side is at most `max` pixels, as grey
-/// levels from black at 0 to white at `top`: a thumbnail for the page.
-pub fn grey_thumbnail(
-    counts: &[f32],
-    w: usize,
-    h: usize,
-    top: f32,
-    max: usize,
-) -> (usize, usize, Vec<u8>) {
-    let f = w.max(h).div_ceil(max).max(1);
+/// `counts` shrunk by averaging f × f blocks, f the smallest factor that brings the long
+/// side to at most `max` pixels: (width, height, f, means).
+pub fn shrink(counts: &[f32], w: usize, h: usize, max: usize) -> (usize, usize, usize, Vec<f32>) {
+    let f = w.max(h).div_ceil(max.max(1)).max(1);
+    if f == 1 {
+        return (w, h, 1, counts.to_vec());
+    }
     let (tw, th) = (w.div_ceil(f), h.div_ceil(f));
-    let mut out = vec![0u8; tw * th];
+    let mut out = vec![0f32; tw * th];
     for ty in 0..th {
         for tx in 0..tw {
             let (mut s, mut n) = (0.0f64, 0usize);
@@ -278,23 +282,38 @@ pub fn grey_thumbnail(
                     n += 1;
                 }
             }
-            let v = (s / n.max(1) as f64) / f64::from(top.max(1.0));
-            out[ty * tw + tx] = (255.0 * v.clamp(0.0, 1.0)).round() as u8;
+            out[ty * tw + tx] = (s / n.max(1) as f64) as f32;
         }
     }
-    (tw, th, out)
+    (tw, th, f, out)
+}
+
+/// A thumbnail of `counts` (long side at most `max`) as grey levels, black at 0 and white
+/// at `top`.
+pub fn grey_thumbnail(
+    counts: &[f32],
+    w: usize,
+    h: usize,
+    top: f32,
+    max: usize,
+) -> (usize, usize, Vec<u8>) {
+    let (tw, th, _, m) = shrink(counts, w, h, max);
+    let g = m
+        .iter()
+        .map(|&v| (255.0 * (v / top.max(1.0)).clamp(0.0, 1.0)).round() as u8)
+        .collect();
+    (tw, th, g)
 }
 
 /// Grey levels scaled to 8 bits between the 0.5th and 99.5th percentiles of the finite
 /// values; NaN (no data) is drawn black.
 pub fn to_grey(v: &[f32]) -> Vec<u8> {
-    let mut finite: Vec<f32> = v.iter().copied().filter(|x| x.is_finite()).collect();
-    if finite.is_empty() {
+    let (Some(lo), Some(hi)) = (
+        nth_finite(v, |n| n / 200),
+        nth_finite(v, |n| (n - 1) - n / 200),
+    ) else {
         return vec![0; v.len()];
-    }
-    finite.sort_unstable_by(f32::total_cmp);
-    let lo = finite[finite.len() / 200];
-    let hi = finite[(finite.len() - 1) - finite.len() / 200];
+    };
     let span = (hi - lo).max(1e-6);
     v.iter()
         .map(|&x| {

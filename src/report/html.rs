@@ -440,9 +440,7 @@ pub fn density_scatter(
 ) -> String {
     const B: usize = 48;
     let q = |v: &[f32]| {
-        let mut s: Vec<f32> = v.iter().copied().filter(|c| c.is_finite()).collect();
-        s.sort_by(f32::total_cmp);
-        f64::from(s.get(s.len() * 995 / 1000).copied().unwrap_or(1.0)).max(1.0)
+        f64::from(super::draw::nth_finite(v, |n| n * 995 / 1000).unwrap_or(1.0)).max(1.0)
     };
     let (xm, ym) = (q(x), q(y));
     let mut bins = vec![0u32; B * B * (k + 1)];

@@ -589,6 +589,7 @@ pub fn write_outputs(
 ) -> Result<()> {
     let seg = &result.segmentation;
     let (w, h) = (seg.width, seg.height);
+    let t = crate::profile::stage("  write: labels, images, json, csv");
     if r.phases.len() <= 255 {
         let v: Vec<u8> = seg.labels.iter().map(|&l| l as u8).collect();
         crate::io::raster::write_png_u8(&dir.path("labels.png"), w, h, &v)?;
@@ -650,6 +651,8 @@ pub fn write_outputs(
     dir.write("report.json", json.as_bytes())?;
     dir.write("phases.csv", phases_csv(r).as_bytes())?;
 
+    drop(t);
+    let t = crate::profile::stage("  write: element maps, pair plots");
     // Per-element maps, then the page with everything.
     let read = |name: &str| {
         std::fs::read(dir.path(name)).map_err(|e| {
@@ -672,7 +675,15 @@ pub fn write_outputs(
             .map(|m| {
                 let line = m.line.clone().unwrap_or_default();
                 let title = format!("{} {} counts per pixel", m.element.symbol, line);
-                let canvas = draw::element_map(&m.counts, w, h, title.trim(), r.pixel_size_um);
+                // A figure, not the data: at most 1024 pixels on the long side.
+                let (fw, fh, f, small) = draw::shrink(&m.counts, w, h, 1024);
+                let canvas = draw::element_map(
+                    &small,
+                    fw,
+                    fh,
+                    title.trim(),
+                    r.pixel_size_um.map(|p| p * f as f64),
+                );
                 let name = format!("element-{}.png", m.element.symbol);
                 crate::io::raster::write_png_u8(
                     &dir.path(&name),
@@ -680,10 +691,9 @@ pub fn write_outputs(
                     canvas.height,
                     &draw::luma(&canvas),
                 )?;
-                let mut s: Vec<f32> = m.counts.clone();
-                s.sort_unstable_by(f32::total_cmp);
-                let (lo, hi) = (s[0], s[s.len() - 1]);
-                let top = s[(s.len() - 1) - s.len() / 200];
+                let lo = m.counts.iter().copied().fold(f32::INFINITY, f32::min);
+                let hi = m.counts.iter().copied().fold(f32::NEG_INFINITY, f32::max);
+                let top = draw::nth_finite(&m.counts, |n| (n - 1) - n / 200).unwrap_or(1.0);
                 let (tw, th, thumb) = draw::grey_thumbnail(&m.counts, w, h, top, 320);
                 Ok(html::Figure {
                     png: crate::io::raster::encode_png_u8(tw, th, &thumb),
@@ -734,6 +744,8 @@ pub fn write_outputs(
             caption: "Phase boundaries on the BSE image.".into(),
         });
     }
+    drop(t);
+    let _t = crate::profile::stage("  write: report.html");
     let page = html::page(
         r,
         &html::Extras {
