@@ -490,11 +490,7 @@ pub fn summary_csv(s: &Summary) -> String {
     }
     out.push('\n');
     for p in &s.phases {
-        let name = if p.name.contains([',', '"']) {
-            format!("\"{}\"", p.name.replace('"', "\"\""))
-        } else {
-            p.name.clone()
-        };
+        let name = crate::report::csv_field(&p.name);
         out.push_str(&format!(
             "{},{},{},{:.6},{:.6},{:.6},{:.6},{},{},{}",
             p.id,
@@ -522,13 +518,6 @@ pub fn summary_csv(s: &Summary) -> String {
     out
 }
 
-fn html_escape(s: &str) -> String {
-    s.replace('&', "&amp;")
-        .replace('<', "&lt;")
-        .replace('>', "&gt;")
-        .replace('"', "&quot;")
-}
-
 /// `summary.html`: a short self-contained page with the pooled table.
 pub fn summary_html(s: &Summary) -> String {
     let mut rows = String::new();
@@ -542,32 +531,32 @@ pub fn summary_html(s: &Summary) -> String {
         rows.push_str(&format!(
             "<tr><td>{}</td><td>{}</td><td>{:.2}</td><td>{:.2}</td><td>{:.2} – {:.2}</td><td>{}</td><td>{}</td><td>{}</td></tr>\n",
             p.id,
-            html_escape(&p.name),
+            crate::report::html::esc(&p.name),
             100.0 * p.area_fraction_mean,
             100.0 * p.area_fraction_sd,
             100.0 * p.area_fraction_ci95[0],
             100.0 * p.area_fraction_ci95[1],
             p.relative_accuracy_pct.map_or("–".into(), |v| format!("{v:.1}")),
             p.particles,
-            html_escape(&comp.join(", "))
+            crate::report::html::esc(&comp.join(", "))
         ));
     }
     let cautions: String = s
         .cautions
         .iter()
-        .map(|c| format!("<li>{}</li>", html_escape(c)))
+        .map(|c| format!("<li>{}</li>", crate::report::html::esc(c)))
         .collect();
     let fields: String = s
         .fields
         .iter()
-        .map(|f| format!("<li>{}</li>", html_escape(&f.field)))
+        .map(|f| format!("<li>{}</li>", crate::report::html::esc(&f.field)))
         .collect();
     format!(
         "<!DOCTYPE html>\n<html lang=\"en\"><head><meta charset=\"utf-8\"><title>modalmap summary</title>\n<style>body{{font-family:sans-serif;max-width:60em;margin:2em auto;}}table{{border-collapse:collapse;}}td,th{{border:1px solid #999;padding:.3em .6em;text-align:right;}}td:nth-child(2){{text-align:left;}}</style></head><body>\n<h1>Pooled phase statistics over {} fields</h1>\n<p>Model: {} (SHA-256 {}).</p>\n<table>\n<tr><th>id</th><th>phase</th><th>mean area %</th><th>SD %</th><th>95 % CI %</th><th>%RA</th><th>features</th><th>composition wt%</th></tr>\n{rows}</table>\n<p>{}</p>\n<h2>Cautions</h2><ul>{cautions}</ul>\n<h2>Fields</h2><ul>{fields}</ul>\n</body></html>\n",
         s.fields.len(),
-        html_escape(&s.model.path),
+        crate::report::html::esc(&s.model.path),
         &s.model.sha256,
-        html_escape(&s.method),
+        crate::report::html::esc(&s.method),
     )
 }
 

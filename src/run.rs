@@ -155,13 +155,7 @@ pub fn process_field(
         mut warnings,
         ..
     } = field;
-    // k-factor and library files are inputs too: their hashes go into the provenance.
-    let given = job.composition.options();
-    for p in given.kfactors.iter().chain(&given.libraries) {
-        if !files.contains(p) {
-            files.push(p.clone());
-        }
-    }
+    add_composition_inputs(&mut files, job);
     // The BSE image is an input too.
     if let Some(BseSource::File(p)) = bse_source {
         if !files.contains(&p) {
@@ -189,10 +183,7 @@ pub fn process_field(
     };
     let model_ref = match job.labelling {
         Labelling::Model { model, reference } => {
-            // One model, one set of names: the model's, whatever each field matches.
-            for (p, m) in result.table.phases.iter_mut().zip(&model.phases) {
-                p.name = m.name.clone();
-            }
+            use_model_names(&mut result.table, model);
             Some(reference)
         }
         Labelling::Fit => None,
@@ -255,6 +246,23 @@ pub fn process_field(
     Ok(report)
 }
 
+/// k-factor and library files are inputs too: their hashes go into the provenance.
+fn add_composition_inputs(files: &mut Vec<PathBuf>, job: &FieldJob) {
+    let given = job.composition.options();
+    for p in given.kfactors.iter().chain(&given.libraries) {
+        if !files.contains(p) {
+            files.push(p.clone());
+        }
+    }
+}
+
+/// One model, one set of names: the model's, whatever each field's phases match.
+fn use_model_names(table: &mut crate::phases::PhaseTable, model: &PhaseModel) {
+    for (p, m) in table.phases.iter_mut().zip(&model.phases) {
+        p.name = m.name.clone();
+    }
+}
+
 /// [`process_field`] for a field labelled strip by strip with a saved model.
 fn process_streamed(
     input: &Path,
@@ -305,16 +313,9 @@ fn process_streamed(
         },
         job.composition,
     )?;
-    for (p, m) in table.phases.iter_mut().zip(&model.phases) {
-        p.name = m.name.clone();
-    }
+    use_model_names(&mut table, model);
     let mut files = field.files.clone();
-    let given = job.composition.options();
-    for p in given.kfactors.iter().chain(&given.libraries) {
-        if !files.contains(p) {
-            files.push(p.clone());
-        }
-    }
+    add_composition_inputs(&mut files, job);
     let labelled = crate::report::Labelled {
         table: &table,
         segmentation: &segmentation,

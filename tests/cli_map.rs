@@ -212,32 +212,22 @@ fn config_file_and_flags() {
         .iter()
         .any(|i| i["path"].as_str().unwrap().ends_with("lab.toml")));
 
-    std::fs::write(&cfg, "phase = 5\n").unwrap();
-    let r = modalmap(&[
-        "map",
-        &sample(),
-        "-o",
-        s(&tmp.path().join("o2")),
-        "--config",
-        s(&cfg),
-    ]);
-    assert_eq!(r.code, 2, "{}", r.stderr);
-    assert!(
-        r.stderr.contains("run.toml") && r.stderr.contains("phase"),
-        "{}",
-        r.stderr
-    );
-    std::fs::write(&cfg, "method = \"spectral\"\n").unwrap();
-    let r = modalmap(&[
-        "map",
-        &sample(),
-        "-o",
-        s(&tmp.path().join("o3")),
-        "--config",
-        s(&cfg),
-    ]);
-    assert_eq!(r.code, 2, "{}", r.stderr);
-    assert!(r.stderr.contains("spectral"), "{}", r.stderr);
+    // Bad configuration files: an unknown key, a bad value; the file is named.
+    for (text, says) in [
+        ("phase = 5\n", "phase"),
+        ("method = \"spectral\"\n", "spectral"),
+    ] {
+        std::fs::write(&cfg, text).unwrap();
+        let out = tmp.path().join("bad-config");
+        let r = modalmap(&["map", &sample(), "-o", s(&out), "--config", s(&cfg)]);
+        assert_eq!(r.code, 2, "{}", r.stderr);
+        assert!(
+            r.stderr.contains("run.toml") && r.stderr.contains(says),
+            "{}",
+            r.stderr
+        );
+        assert!(!out.exists());
+    }
 }
 
 #[test]

@@ -188,24 +188,21 @@ fn oxygen_by_stoichiometry_recovers_the_granite() {
 fn an_unknown_phase_is_not_matched() {
     let (w, h) = (160usize, 160usize);
     let mut rng = ChaCha8Rng::seed_from_u64(11);
-    let blobs = scatter_particles(
-        &mut rng,
-        12,
-        2,
-        (6.0, 10.0),
-        1.3,
-        (w as f64, h as f64),
-        |_, _| true,
-    );
-    let more = scatter_particles(
-        &mut rng,
-        12,
-        3,
-        (6.0, 10.0),
-        1.3,
-        (w as f64, h as f64),
-        |_, _| true,
-    );
+    // Blobs of the invented phase (label 2) and of Cu6Sn5 (label 3) in tin.
+    let blobs: Vec<_> = [2, 3]
+        .into_iter()
+        .flat_map(|label| {
+            scatter_particles(
+                &mut rng,
+                12,
+                label,
+                (6.0, 10.0),
+                1.3,
+                (w as f64, h as f64),
+                |_, _| true,
+            )
+        })
+        .collect();
     let micro = Microstructure::new(
         vec![
             SynthPhase::formula("Sn"),
@@ -213,13 +210,10 @@ fn an_unknown_phase_is_not_matched() {
             SynthPhase::formula("Cu6Sn5"),
         ],
         move |x, y| {
-            if let Some(b) = blobs.iter().find(|b| b.contains(x, y)) {
-                b.label
-            } else if let Some(b) = more.iter().find(|b| b.contains(x, y)) {
-                b.label
-            } else {
-                1
-            }
+            blobs
+                .iter()
+                .find(|b| b.contains(x, y))
+                .map_or(1, |b| b.label)
         },
     );
     // Net-count maps: with no phase rich in Cu, the continuum under Cu could not be told

@@ -402,7 +402,7 @@ pub fn build(
 }
 
 /// A CSV field, quoted when it holds a comma or a quote (RFC 4180).
-fn csv_field(v: &str) -> String {
+pub fn csv_field(v: &str) -> String {
     if v.contains([',', '"']) {
         format!("\"{}\"", v.replace('"', "\"\""))
     } else {
