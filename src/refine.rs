@@ -27,6 +27,7 @@ use serde::{Deserialize, Serialize};
 use statrs::distribution::{ChiSquared, ContinuousCDF};
 
 use crate::cluster::kmeans::dist2;
+use crate::cluster::lanes::{self, Lane, LANES};
 use crate::cluster::{poisson, Clusters, Scorer};
 use crate::error::{Error, Result};
 use crate::prepare::{Features, Stabilise};
@@ -167,6 +168,27 @@ impl FullScorer<'_> {
         }
     }
 
+    /// [`Self::score`] of a block of rows (`rows`, and `xt` the same rows transposed, see
+    /// [`lanes`]) for the phases and the empty pseudo-phase: `out[c][l]`.
+    #[inline]
+    fn score_block(&self, rows: &[f32], xt: &[Lane], out: &mut [[f64; LANES]]) {
+        self.inner.score_block(xt, &mut out[..self.k]);
+        let empty = &mut out[self.k];
+        match self.space {
+            Space::Counts => {
+                for (o, row) in empty.iter_mut().zip(rows.chunks_exact(xt.len())) {
+                    *o = self.score(self.k, row);
+                }
+            }
+            Space::Transformed(_, var) => {
+                let e = lanes::dist2(xt, &self.empty_point);
+                for (o, &e) in empty.iter_mut().zip(&e) {
+                    *o = self.empty_log_norm - 0.5 * f64::from(e) / var;
+                }
+            }
+        }
+    }
+
     /// Discrepancy of `row` from a point given in counts (χ²-like, d degrees of freedom).
     fn discrepancy_to_counts(&self, row: &[f32], counts: &[f64], scratch: &mut Vec<f32>) -> f64 {
         match self.space {
@@ -296,14 +318,14 @@ pub fn refine_from(
         start.filter(|s| s.labels.len() == n && s.labels.iter().all(|&l| (l as usize) <= k));
     // Scores are kept (band by band) only to build the first labels.
     let keep_scores = p.smoothing > 0.0 && start.is_none();
-    let compute = |i: usize, lp: &mut [f32], scratch: &mut Vec<f32>| -> (u16, f32) {
+    // The label of pixel `i` (features `row`) from its scores `lp` (phases and the empty
+    // pseudo-phase), and its posterior.
+    let compute = |i: usize, row: &[f32], lp: &[f32], scratch: &mut Vec<f32>| -> (u16, f32) {
         if !f.mask[i] {
             return (empty_label, 0.0);
         }
-        let row = f.row(i);
         let mut best = 0;
-        for c in 0..kk {
-            lp[c] = fs.score(c, row) as f32;
+        for c in 1..kk {
             if lp[c] > lp[best] {
                 best = c;
             }
@@ -339,15 +361,26 @@ pub fn refine_from(
                 let (ya, yb) = (y0.saturating_sub(1), (y1 + 1).min(h));
                 let mut local = vec![0.0f32; if keep_scores { (yb - ya) * w * kk } else { kk }];
                 let mut first = Vec::with_capacity((yb - ya) * w);
+                let mut out = vec![[0f64; LANES]; kk];
                 for y in ya..yb {
-                    for x in 0..w {
-                        let off = if keep_scores {
-                            ((y - ya) * w + x) * kk
-                        } else {
-                            0
-                        };
-                        first.push(compute(y * w + x, &mut local[off..off + kk], scratch));
-                    }
+                    let mut x = 0;
+                    let rows = &f.data[y * w * d..(y + 1) * w * d];
+                    lanes::for_each_block(rows, d, |block, xt| {
+                        fs.score_block(block, xt, &mut out);
+                        for (l, row) in block.chunks_exact(d).enumerate() {
+                            let off = if keep_scores {
+                                ((y - ya) * w + x) * kk
+                            } else {
+                                0
+                            };
+                            let lp = &mut local[off..off + kk];
+                            for (p, o) in lp.iter_mut().zip(&out) {
+                                *p = o[l] as f32;
+                            }
+                            first.push(compute(y * w + x, row, lp, scratch));
+                            x += 1;
+                        }
+                    });
                 }
                 let fixed_at = |y: usize, x: usize| {
                     let (l, _) = first[(y - ya) * w + x];

@@ -13,6 +13,7 @@ use rayon::prelude::*;
 use serde::{Deserialize, Serialize};
 
 use super::kmeans::CHUNK_ROWS;
+use super::lanes::{self, Lane, LANES};
 
 /// Options of an EM fit.
 #[derive(Debug, Clone, Copy, PartialEq)]
@@ -143,25 +144,55 @@ impl GaussianMixture {
         q
     }
 
+    /// [`Self::mahalanobis2`] of each lane's row of a transposed block (see
+    /// [`lanes`]); bit-identical to the one-row version.
+    #[inline]
+    pub fn mahalanobis2_block(&self, c: usize, xt: &[Lane]) -> Lane {
+        let d = self.d;
+        lanes::mahalanobis2(
+            xt,
+            &self.cache.means[c * d..(c + 1) * d],
+            &self.cache.inv_chol[c * d * d..(c + 1) * d * d],
+            d,
+        )
+    }
+
     /// ln (wₖ N(row | μₖ, Σₖ)).
     #[inline]
     pub fn weighted_log_density(&self, c: usize, row: &[f32]) -> f64 {
         self.cache.log_norm[c] - 0.5 * f64::from(self.mahalanobis2(c, row))
     }
 
-    /// Most probable component, its posterior probability, and the row's log-likelihood.
-    pub fn classify(&self, row: &[f32], lp: &mut [f64]) -> (usize, f64, f64) {
-        let mut best = 0;
-        for c in 0..self.k {
-            lp[c] = self.weighted_log_density(c, row);
-            if lp[c] > lp[best] {
-                best = c;
+    /// [`Self::weighted_log_density`] of each lane's row for every component:
+    /// `out[c][l]`.
+    #[inline]
+    pub fn weighted_log_density_block(&self, xt: &[Lane], out: &mut [[f64; LANES]]) {
+        for (c, o) in out[..self.k].iter_mut().enumerate() {
+            let q = self.mahalanobis2_block(c, xt);
+            for l in 0..LANES {
+                o[l] = self.cache.log_norm[c] - 0.5 * f64::from(q[l]);
             }
         }
-        let max = lp[best];
-        let s: f64 = lp[..self.k].iter().map(|&v| (v - max).exp()).sum();
-        let lse = max + s.ln();
-        (best, (lp[best] - lse).exp(), lse)
+    }
+
+    /// Most probable component, its posterior probability, and the row's log-likelihood.
+    pub fn classify(&self, row: &[f32], lp: &mut [f64]) -> (usize, f64, f64) {
+        for (c, p) in lp[..self.k].iter_mut().enumerate() {
+            *p = self.weighted_log_density(c, row);
+        }
+        lanes::best_and_log_sum(&lp[..self.k])
+    }
+
+    /// Calls `f(row, lp)` for every row of `data`, `lp[c]` its weighted log density under
+    /// component `c`: [`Self::classify`]'s scores, computed a block of rows at a time.
+    pub fn for_each_scored_row(&self, data: &[f32], f: impl FnMut(&[f32], &mut [f64])) {
+        lanes::for_each_scored_row(
+            data,
+            self.d,
+            self.k,
+            |xt, out| self.weighted_log_density_block(xt, out),
+            f,
+        );
     }
 
     /// Number of free parameters: k·d(d+1)/2 + k·d + (k − 1), as in scikit-learn's
@@ -180,11 +211,11 @@ impl GaussianMixture {
         let d = self.d;
         data.par_chunks(CHUNK_ROWS * d)
             .flat_map_iter(|chunk| {
-                let mut lp = vec![0.0; self.k];
-                chunk
-                    .chunks_exact(d)
-                    .map(|r| self.classify(r, &mut lp).0 as u16)
-                    .collect::<Vec<_>>()
+                let mut out = Vec::with_capacity(chunk.len() / d);
+                self.for_each_scored_row(chunk, |_, lp| {
+                    out.push(lanes::best_and_log_sum(lp).0 as u16)
+                });
+                out
             })
             .collect()
     }
@@ -196,11 +227,9 @@ impl GaussianMixture {
         let parts: Vec<f64> = data
             .par_chunks(CHUNK_ROWS * d)
             .map(|chunk| {
-                let mut lp = vec![0.0; self.k];
-                chunk
-                    .chunks_exact(d)
-                    .map(|r| self.classify(r, &mut lp).2)
-                    .sum()
+                let mut ll = 0.0;
+                self.for_each_scored_row(chunk, |_, lp| ll += lanes::best_and_log_sum(lp).2);
+                ll
             })
             .collect();
         parts.iter().sum::<f64>() / n as f64
@@ -301,6 +330,43 @@ fn m_step(
     (w, means, covs)
 }
 
+/// One EM iteration: responsibilities of every row under `g` (E-step), then the weights,
+/// means and covariances they imply (M-step, `reg_covar` added to each diagonal). The
+/// returned mixture's `mean_log_likelihood` is that of `g` on `data`, the quantity EM
+/// increases.
+pub fn em_step(
+    g: &GaussianMixture,
+    data: &[f32],
+    reg_covar: f64,
+) -> Result<GaussianMixture, GmmError> {
+    let (k, d) = (g.k, g.d);
+    let n = (data.len() / d) as f64;
+    let st: Stats = data
+        .par_chunks(CHUNK_ROWS * d)
+        .map(|chunk| {
+            let mut s = Stats::new(k, d);
+            g.for_each_scored_row(chunk, |row, lp| {
+                let (_, _, lse) = lanes::best_and_log_sum(lp);
+                s.ll += lse;
+                for (c, &l) in lp.iter().enumerate() {
+                    let r = (l - lse).exp();
+                    if r > 1e-10 {
+                        s.accumulate(row, c, r, d);
+                    }
+                }
+            });
+            s
+        })
+        .collect::<Vec<_>>()
+        .into_iter()
+        .reduce(Stats::add)
+        .expect("data not empty");
+    let (w, m, c) = m_step(&st, k, d, n, reg_covar, Some(g));
+    let mut next = GaussianMixture::new(k, d, w, m, c)?;
+    next.mean_log_likelihood = st.ll / n;
+    Ok(next)
+}
+
 /// Fits a mixture by EM, starting from hard `labels` (values `< k`) of the rows of `data`.
 pub fn fit(
     data: &[f32],
@@ -329,33 +395,9 @@ pub fn fit(
     let mut g = GaussianMixture::new(k, d, w, m, c)?;
     let mut prev_ll = f64::NEG_INFINITY;
     for it in 0..p.max_iter {
-        let st: Stats = data
-            .par_chunks(CHUNK_ROWS * d)
-            .map(|chunk| {
-                let mut s = Stats::new(k, d);
-                let mut lp = vec![0.0; k];
-                for row in chunk.chunks_exact(d) {
-                    let (_, _, lse) = g.classify(row, &mut lp);
-                    s.ll += lse;
-                    for (c, &l) in lp.iter().enumerate() {
-                        let r = (l - lse).exp();
-                        if r > 1e-10 {
-                            s.accumulate(row, c, r, d);
-                        }
-                    }
-                }
-                s
-            })
-            .collect::<Vec<_>>()
-            .into_iter()
-            .reduce(Stats::add)
-            .expect("data not empty");
-        let ll = st.ll / n;
-        let (w, m, c) = m_step(&st, k, d, n, p.reg_covar, Some(&g));
-        let mut next = GaussianMixture::new(k, d, w, m, c)?;
+        let mut next = em_step(&g, data, p.reg_covar)?;
         next.iterations = it + 1;
-        // `ll` belongs to the parameters that produced these responsibilities.
-        next.mean_log_likelihood = ll;
+        let ll = next.mean_log_likelihood;
         let done = (ll - prev_ll).abs() < p.tol;
         prev_ll = ll;
         g = next;

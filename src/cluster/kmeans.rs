@@ -10,6 +10,8 @@ use rand_chacha::ChaCha8Rng;
 use rayon::prelude::*;
 use serde::{Deserialize, Serialize};
 
+use super::lanes;
+
 /// Rows per parallel work unit. Fixed, so reductions do not depend on the thread count.
 pub const CHUNK_ROWS: usize = 4096;
 
@@ -63,30 +65,39 @@ pub fn nearest(row: &[f32], centres: &[f32], d: usize) -> (usize, f32) {
     best
 }
 
-struct Partial {
-    sums: Vec<f64>,
-    counts: Vec<f64>,
-    inertia: f64,
+/// What one assignment pass over the rows finds.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Assignment {
+    /// Per cluster, the sum of its rows (`k × d`).
+    pub sums: Vec<f64>,
+    /// Rows per cluster.
+    pub counts: Vec<f64>,
+    /// Sum of squared distances of the rows to their nearest centre.
+    pub inertia: f64,
 }
 
-/// One assignment pass: per-cluster sums, counts and the inertia.
-fn assign_pass(data: &[f32], d: usize, centres: &[f32], k: usize) -> Partial {
-    let parts: Vec<Partial> = data
+/// One assignment pass (the cost of a Lloyd iteration): every row to its nearest centre
+/// (`centres` is `k × d`), with per-cluster sums, counts and the inertia.
+pub fn assign_pass(data: &[f32], d: usize, centres: &[f32], k: usize) -> Assignment {
+    let parts: Vec<Assignment> = data
         .par_chunks(CHUNK_ROWS * d)
         .map(|chunk| {
-            let mut p = Partial {
+            let mut p = Assignment {
                 sums: vec![0.0; k * d],
                 counts: vec![0.0; k],
                 inertia: 0.0,
             };
-            for row in chunk.chunks_exact(d) {
-                let (j, e) = nearest(row, centres, d);
-                p.counts[j] += 1.0;
-                p.inertia += f64::from(e);
-                for (s, &x) in p.sums[j * d..(j + 1) * d].iter_mut().zip(row) {
-                    *s += f64::from(x);
+            lanes::for_each_block(chunk, d, |rows, xt| {
+                let (near, dist) = lanes::nearest(xt, centres, d);
+                for (l, row) in rows.chunks_exact(d).enumerate() {
+                    let j = near[l];
+                    p.counts[j] += 1.0;
+                    p.inertia += f64::from(dist[l]);
+                    for (s, &x) in p.sums[j * d..(j + 1) * d].iter_mut().zip(row) {
+                        *s += f64::from(x);
+                    }
                 }
-            }
+            });
             p
         })
         .collect();
@@ -245,10 +256,12 @@ impl KMeans {
         let d = self.d;
         data.par_chunks(CHUNK_ROWS * d)
             .flat_map_iter(|chunk| {
-                chunk
-                    .chunks_exact(d)
-                    .map(|r| nearest(r, &c, d).0 as u16)
-                    .collect::<Vec<_>>()
+                let mut out = Vec::with_capacity(chunk.len() / d);
+                lanes::for_each_block(chunk, d, |rows, xt| {
+                    let near = lanes::nearest(xt, &c, d).0;
+                    out.extend(near[..rows.len() / d].iter().map(|&j| j as u16));
+                });
+                out
             })
             .collect()
     }

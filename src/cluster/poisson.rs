@@ -14,6 +14,7 @@ use rayon::prelude::*;
 use serde::{Deserialize, Serialize};
 
 use super::kmeans::CHUNK_ROWS;
+use super::lanes::{self, Lane, LANES};
 
 /// Smallest rate allowed, counts per pixel: keeps ln λ finite for an element a phase
 /// never shows (common practice, no source).
@@ -108,19 +109,37 @@ impl PoissonMixture {
         deviance(row, &self.rates[c * self.d..(c + 1) * self.d])
     }
 
-    /// Most probable component, its posterior, and ln Σₖ (up to the shared Σ ln x! term).
-    pub fn classify(&self, row: &[f32], lp: &mut [f64]) -> (usize, f64, f64) {
-        let mut best = 0;
-        for c in 0..self.k {
-            lp[c] = self.weighted_log_density(c, row);
-            if lp[c] > lp[best] {
-                best = c;
+    /// [`Self::weighted_log_density`] of each lane's row of a transposed block (see
+    /// [`lanes`]) for every component: `out[c][l]`; bit-identical to the one-row version.
+    #[inline]
+    pub fn weighted_log_density_block(&self, xt: &[Lane], out: &mut [[f64; LANES]]) {
+        let d = self.d;
+        for (c, o) in out[..self.k].iter_mut().enumerate() {
+            let s = lanes::dot(xt, &self.cache.ln_rates[c * d..(c + 1) * d]);
+            for l in 0..LANES {
+                o[l] = self.cache.offset[c] + f64::from(s[l]);
             }
         }
-        let max = lp[best];
-        let s: f64 = lp[..self.k].iter().map(|&v| (v - max).exp()).sum();
-        let lse = max + s.ln();
-        (best, (lp[best] - lse).exp(), lse)
+    }
+
+    /// Most probable component, its posterior, and ln Σₖ (up to the shared Σ ln x! term).
+    pub fn classify(&self, row: &[f32], lp: &mut [f64]) -> (usize, f64, f64) {
+        for (c, p) in lp[..self.k].iter_mut().enumerate() {
+            *p = self.weighted_log_density(c, row);
+        }
+        lanes::best_and_log_sum(&lp[..self.k])
+    }
+
+    /// Calls `f(row, lp)` for every row of `data`, `lp[c]` its weighted log density under
+    /// component `c`: [`Self::classify`]'s scores, computed a block of rows at a time.
+    pub fn for_each_scored_row(&self, data: &[f32], f: impl FnMut(&[f32], &mut [f64])) {
+        lanes::for_each_scored_row(
+            data,
+            self.d,
+            self.k,
+            |xt, out| self.weighted_log_density_block(xt, out),
+            f,
+        );
     }
 
     /// Free parameters: k·d rates + (k − 1) weights.
@@ -188,21 +207,67 @@ fn total_log_likelihood(m: &PoissonMixture, data: &[f32]) -> f64 {
     let d = m.d;
     data.par_chunks(CHUNK_ROWS * d)
         .map(|chunk| {
-            let mut lp = vec![0.0; m.k];
-            chunk
-                .chunks_exact(d)
-                .map(|r| m.classify(r, &mut lp).2)
-                .sum::<f64>()
+            let mut ll = 0.0;
+            m.for_each_scored_row(chunk, |_, lp| ll += lanes::best_and_log_sum(lp).2);
+            ll
         })
         .collect::<Vec<_>>()
         .iter()
         .sum()
 }
 
+/// One EM iteration: responsibilities of every row under `m` (E-step), then the rates and
+/// weights they imply (M-step). Also returns ln Σₖ wₖ Pois(row | λₖ) + ln x! summed over
+/// the rows under `m` (the log-likelihood without the model-free Σ ln x! term).
+pub fn em_step(m: &PoissonMixture, data: &[f32]) -> (PoissonMixture, f64) {
+    let (k, d) = (m.k, m.d);
+    let n = (data.len() / d) as f64;
+    let (nk, s, ll) = data
+        .par_chunks(CHUNK_ROWS * d)
+        .map(|chunk| {
+            let mut nk = vec![0.0; k];
+            let mut s = vec![0.0; k * d];
+            let mut ll = 0.0;
+            m.for_each_scored_row(chunk, |row, lp| {
+                let (_, _, lse) = lanes::best_and_log_sum(lp);
+                ll += lse;
+                for c in 0..k {
+                    let r = (lp[c] - lse).exp();
+                    if r > 1e-10 {
+                        nk[c] += r;
+                        for e in 0..d {
+                            s[c * d + e] += r * f64::from(row[e]);
+                        }
+                    }
+                }
+            });
+            (nk, s, ll)
+        })
+        .collect::<Vec<_>>()
+        .into_iter()
+        .reduce(|mut a, b| {
+            a.0.iter_mut().zip(&b.0).for_each(|(x, y)| *x += y);
+            a.1.iter_mut().zip(&b.1).for_each(|(x, y)| *x += y);
+            a.2 += b.2;
+            a
+        })
+        .expect("data not empty");
+    let weights = nk.iter().map(|&c| (c / n).max(1e-12)).collect();
+    let rates = (0..k * d)
+        .map(|i| {
+            if nk[i / d] > 1e-9 {
+                (s[i] / nk[i / d]).max(MIN_RATE)
+            } else {
+                m.rates[i]
+            }
+        })
+        .collect();
+    (PoissonMixture::new(k, d, weights, rates), ll)
+}
+
 /// Refines `start` by EM on `data`. The returned `mean_log_likelihood` includes the
 /// −Σ ln x! term, so BIC values computed from it are true ones.
 pub fn fit(data: &[f32], d: usize, start: PoissonMixture, p: &PoissonParams) -> PoissonMixture {
-    let k = start.k;
     let n = (data.len() / d) as f64;
     let sum_ln_fact: f64 = data
         .par_chunks(CHUNK_ROWS * d)
@@ -213,49 +278,8 @@ pub fn fit(data: &[f32], d: usize, start: PoissonMixture, p: &PoissonParams) -> 
     let mut m = start;
     let mut prev = f64::NEG_INFINITY;
     for it in 0..p.max_iter {
-        let (nk, s, ll) = data
-            .par_chunks(CHUNK_ROWS * d)
-            .map(|chunk| {
-                let mut nk = vec![0.0; k];
-                let mut s = vec![0.0; k * d];
-                let mut ll = 0.0;
-                let mut lp = vec![0.0; k];
-                for row in chunk.chunks_exact(d) {
-                    let (_, _, lse) = m.classify(row, &mut lp);
-                    ll += lse;
-                    for c in 0..k {
-                        let r = (lp[c] - lse).exp();
-                        if r > 1e-10 {
-                            nk[c] += r;
-                            for e in 0..d {
-                                s[c * d + e] += r * f64::from(row[e]);
-                            }
-                        }
-                    }
-                }
-                (nk, s, ll)
-            })
-            .collect::<Vec<_>>()
-            .into_iter()
-            .reduce(|mut a, b| {
-                a.0.iter_mut().zip(&b.0).for_each(|(x, y)| *x += y);
-                a.1.iter_mut().zip(&b.1).for_each(|(x, y)| *x += y);
-                a.2 += b.2;
-                a
-            })
-            .expect("data not empty");
+        let (mut next, ll) = em_step(&m, data);
         let ll = (ll - sum_ln_fact) / n;
-        let weights = nk.iter().map(|&c| (c / n).max(1e-12)).collect();
-        let rates = (0..k * d)
-            .map(|i| {
-                if nk[i / d] > 1e-9 {
-                    (s[i] / nk[i / d]).max(MIN_RATE)
-                } else {
-                    m.rates[i]
-                }
-            })
-            .collect();
-        let mut next = PoissonMixture::new(k, d, weights, rates);
         next.iterations = it + 1;
         let done = (ll - prev).abs() < p.tol;
         prev = ll;
