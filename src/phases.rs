@@ -432,28 +432,53 @@ impl ClearSums {
         let any_boundary = img.as_raw().iter().any(|&v| v > 0);
         let dist = distance_transform(&img, Norm::LInf).into_raw();
         let d = planes.len();
-        let mut s = ClearSums::new(k, d);
-        for y in rows {
-            for x in 0..width {
-                let i = y * width + x;
-                let l = labels[i];
-                if l == 0 {
-                    continue;
-                }
-                let c = l as usize - 1;
-                let clear = if any_boundary {
-                    usize::from(dist[i]).min(MAX_CLEARANCE)
-                } else {
-                    MAX_CLEARANCE
-                };
-                // Pixels clear by `clear` count for every r up to it.
-                for r in 0..=clear {
-                    s.pixels[r][c] += 1;
+        // Sums by exact clearance, in fixed blocks of rows combined in order (the same
+        // result whatever the thread count) …
+        let blocks: Vec<std::ops::Range<usize>> = rows
+            .clone()
+            .step_by(64)
+            .map(|y| y..(y + 64).min(rows.end))
+            .collect();
+        let exact = blocks
+            .par_iter()
+            .map(|block| {
+                let mut s = ClearSums::new(k, d);
+                for i in block.start * width..block.end * width {
+                    let l = labels[i];
+                    if l == 0 {
+                        continue;
+                    }
+                    let c = l as usize - 1;
+                    let clear = if any_boundary {
+                        usize::from(dist[i]).min(MAX_CLEARANCE)
+                    } else {
+                        MAX_CLEARANCE
+                    };
+                    s.pixels[clear][c] += 1;
                     for (e, p) in planes.iter().enumerate() {
-                        s.sums[r][c * d + e] += f64::from(p[i]);
+                        s.sums[clear][c * d + e] += f64::from(p[i]);
                     }
                 }
-            }
+                s
+            })
+            .reduce_with(|mut a, b| {
+                a.add(&b);
+                a
+            })
+            .unwrap_or_else(|| ClearSums::new(k, d));
+        // … then a pixel clear by r counts for every radius up to r.
+        let mut s = exact;
+        for r in (0..MAX_CLEARANCE).rev() {
+            let (lower, upper) = s.pixels.split_at_mut(r + 1);
+            lower[r]
+                .iter_mut()
+                .zip(&upper[0])
+                .for_each(|(a, b)| *a += b);
+            let (lower, upper) = s.sums.split_at_mut(r + 1);
+            lower[r]
+                .iter_mut()
+                .zip(&upper[0])
+                .for_each(|(a, b)| *a += b);
         }
         s
     }

@@ -393,29 +393,44 @@ pub fn prepare_window(
     };
     let first_pixel = window.map_or(0, |wc| wc.first_pixel);
 
-    // Plane by plane into the pixel-major matrix: only one transformed plane is held at a
-    // time beside the counts and the matrix.
     let mut data = vec![0.0f32; n * dims];
+    // The feature of pixel `i` with counts `x` of element `z`.
+    let transform_one = |z: u32, i: usize, x: f32| {
+        if p.dequantise {
+            let salt = u64::from(z) << 40;
+            p.stabilise
+                .apply(x + jitter(salt | (first_pixel + i) as u64))
+        } else {
+            p.stabilise.apply(x)
+        }
+    };
+    if p.denoise == Denoise::None {
+        // Row by row, every element at once: one pass over the matrix.
+        let maps = counts.maps();
+        data.par_chunks_mut(dims * 4096)
+            .enumerate()
+            .for_each(|(b, block)| {
+                for (r, row) in block.chunks_exact_mut(dims).enumerate() {
+                    let i = b * 4096 + r;
+                    for (v, m) in row.iter_mut().zip(maps) {
+                        *v = transform_one(m.element.z, i, m.counts[i]);
+                    }
+                }
+            });
+    }
+    // Denoised: plane by plane into the pixel-major matrix, so only one filtered plane is
+    // held at a time beside the counts and the matrix.
     for (e, m) in counts.maps().iter().enumerate() {
-        let salt = u64::from(m.element.z) << 40;
-        let transform_one = |i: usize, x: f32| {
-            if p.dequantise {
-                p.stabilise
-                    .apply(x + jitter(salt | (first_pixel + i) as u64))
-            } else {
-                p.stabilise.apply(x)
-            }
-        };
-        let plane: Option<Vec<f32>> = match p.denoise {
-            Denoise::None => None,
+        let transform_one = |i: usize, x: f32| transform_one(m.element.z, i, x);
+        let plane: Vec<f32> = match p.denoise {
+            // Filled above, in one pass.
+            Denoise::None => break,
             Denoise::Median { radius } => {
                 let c = median_filter(&m.counts, w, h, radius);
-                Some(
-                    c.par_iter()
-                        .enumerate()
-                        .map(|(i, &x)| transform_one(i, x))
-                        .collect(),
-                )
+                c.par_iter()
+                    .enumerate()
+                    .map(|(i, &x)| transform_one(i, x))
+                    .collect()
             }
             Denoise::Gaussian { sigma } => {
                 let v: Vec<f32> = m
@@ -424,15 +439,12 @@ pub fn prepare_window(
                     .enumerate()
                     .map(|(i, &x)| transform_one(i, x))
                     .collect();
-                Some(gaussian(v, w, h, sigma))
+                gaussian(v, w, h, sigma)
             }
         };
-        data.par_chunks_mut(dims).enumerate().for_each(|(i, row)| {
-            row[e] = match &plane {
-                Some(v) => v[i],
-                None => transform_one(i, m.counts[i]),
-            };
-        });
+        data.par_chunks_mut(dims)
+            .zip(plane.par_iter())
+            .for_each(|(row, &v)| row[e] = v);
     }
     Ok(Features {
         width: w,

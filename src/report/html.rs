@@ -429,20 +429,17 @@ pub fn bse_plot(r: &Report) -> Option<String> {
 }
 
 /// A 2-D histogram of two elements' counts, each bin in the colour of the phase most of
-/// its pixels belong to, darker with more pixels (log scale).
+/// its pixels belong to, darker with more pixels (log scale); the axes run from 0 to
+/// `top` (each element's 99.5th percentile, at least 1).
 pub fn density_scatter(
-    ex: &str,
-    ey: &str,
-    x: &[f32],
-    y: &[f32],
+    (ex, ey): (&str, &str),
+    (x, y): (&[f32], &[f32]),
+    top: (f32, f32),
     labels: &[u16],
     k: usize,
 ) -> String {
     const B: usize = 48;
-    let q = |v: &[f32]| {
-        f64::from(super::draw::nth_finite(v, |n| n * 995 / 1000).unwrap_or(1.0)).max(1.0)
-    };
-    let (xm, ym) = (q(x), q(y));
+    let (xm, ym) = (f64::from(top.0.max(1.0)), f64::from(top.1.max(1.0)));
     let mut bins = vec![0u32; B * B * (k + 1)];
     for ((&a, &b), &l) in x.iter().zip(y).zip(labels) {
         let i = ((f64::from(a) / xm * B as f64) as usize).min(B - 1);

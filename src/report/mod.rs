@@ -669,6 +669,9 @@ pub fn write_outputs(
         use rayon::prelude::*;
         // Each map as a grey PNG (with title, ramp and scale bar), and a small copy for
         // the page; in parallel over the elements.
+        // Each element's 99.5th percentile (white in its map, the end of its axis in the
+        // pair plots).
+        let tops = std::sync::Mutex::new(std::collections::HashMap::new());
         let made = counts
             .maps()
             .par_iter()
@@ -695,6 +698,9 @@ pub fn write_outputs(
                 let hi = m.counts.iter().copied().fold(f32::NEG_INFINITY, f32::max);
                 let top = draw::nth_finite(&m.counts, |n| (n - 1) - n / 200).unwrap_or(1.0);
                 let (tw, th, thumb) = draw::grey_thumbnail(&m.counts, w, h, top, 320);
+                tops.lock()
+                    .expect("no panics while held")
+                    .insert(m.element.symbol.to_string(), top);
                 Ok(html::Figure {
                     png: crate::io::raster::encode_png_u8(tw, th, &thumb),
                     alt: format!(
@@ -709,19 +715,27 @@ pub fn write_outputs(
             })
             .collect::<Result<Vec<_>>>()?;
         element_maps.extend(made);
-        for (ex, ey) in html::informative_pairs(r) {
-            let (a, b) = (counts.map(&ex), counts.map(&ey));
-            if let (Some(a), Some(b)) = (a, b) {
-                scatters.push(html::density_scatter(
-                    &ex,
-                    &ey,
-                    &a.counts,
-                    &b.counts,
+        let tops = tops.into_inner().expect("no panics while held");
+        let pairs: Vec<_> = html::informative_pairs(r)
+            .into_iter()
+            .filter_map(|(ex, ey)| {
+                let (a, b) = (counts.map(&ex)?, counts.map(&ey)?);
+                let top = (*tops.get(ex.as_str())?, *tops.get(ey.as_str())?);
+                Some((ex, ey, a, b, top))
+            })
+            .collect();
+        scatters = pairs
+            .par_iter()
+            .map(|(ex, ey, a, b, top)| {
+                html::density_scatter(
+                    (ex, ey),
+                    (&a.counts, &b.counts),
+                    *top,
                     &seg.labels,
                     r.phases.len(),
-                ));
-            }
-        }
+                )
+            })
+            .collect();
     }
     let mut figures = vec![html::Figure {
         png: read("phase-map.png")?,
