@@ -23,9 +23,11 @@ pub const MAX_DIMS: usize = 64;
 pub fn transpose(rows: &[f32], d: usize, xt: &mut [Lane]) {
     let m = rows.len() / d;
     debug_assert!((1..=LANES).contains(&m) && d <= xt.len());
-    for (j, x) in xt[..d].iter_mut().enumerate() {
-        for (l, v) in x.iter_mut().enumerate() {
-            *v = rows[l.min(m - 1) * d + j];
+    let xt = &mut xt[..d];
+    for l in 0..LANES {
+        let row = &rows[l.min(m - 1) * d..][..d];
+        for (x, &v) in xt.iter_mut().zip(row) {
+            x[l] = v;
         }
     }
 }
