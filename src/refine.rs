@@ -773,7 +773,10 @@ fn unmix_boundaries(
                         let vote = |c: u16| -> f64 {
                             votes[..nv].iter().filter(|v| v.0 == c).map(|v| v.1).sum()
                         };
-                        let x_e: Vec<f64> = (0..d).map(|e| f64::from(planes[e][i])).collect();
+                        let mut x_e = [0f64; lanes::MAX_DIMS];
+                        for (x, p) in x_e.iter_mut().zip(planes) {
+                            *x = f64::from(p[i]);
+                        }
                         let mut best: Option<(f64, u16)> = None;
                         let mut seen = [u16::MAX; 8];
                         for (n, &(b, _)) in votes[..nv].iter().enumerate() {

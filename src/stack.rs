@@ -67,6 +67,10 @@ pub struct MapStack {
     metadata: FieldMetadata,
 }
 
+/// Most element maps a field may hold: the clustering kernels keep a pixel's features in
+/// fixed-size arrays of this length (`cluster::lanes::MAX_DIMS`).
+pub const MAX_MAPS: usize = crate::cluster::lanes::MAX_DIMS;
+
 impl MapStack {
     /// Checks the invariants and orders the maps by atomic number.
     ///
@@ -84,6 +88,17 @@ impl MapStack {
                 "contains no element maps",
                 "name each map after its element (e.g. Fe.png, Fe_Ka.tif, Si-K.png); \
                  see `modalmap inspect --help` for the naming rule",
+            ));
+        }
+        if maps.len() > MAX_MAPS {
+            return Err(Error::input(
+                origin,
+                format!(
+                    "holds {} element maps; modalmap takes at most {MAX_MAPS}",
+                    maps.len()
+                ),
+                "leave out the maps of elements absent from the sample (a map of noise \
+                 adds nothing to the phases)",
             ));
         }
         if width == 0 || height == 0 {

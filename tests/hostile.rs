@@ -340,6 +340,24 @@ fn corpus(root: &Path) -> Vec<Case> {
         },
     );
     case(
+        "more element maps than the kernels take",
+        Expect::Fails(3),
+        &["65 element maps"],
+        &[],
+        &|d| {
+            let f = d.join("field");
+            std::fs::create_dir_all(&f).unwrap();
+            let symbols = "Be B C N O F Na Mg Al Si P S Cl K Ca Sc Ti V Cr Mn Fe Co Ni Cu Zn \
+                           Ga Ge As Se Br Rb Sr Y Zr Nb Mo Ru Rh Pd Ag Cd In Sn Sb Te I Cs Ba \
+                           La Ce Pr Nd Sm Eu Gd Tb Dy Ho Er Tm Yb Lu Hf Ta W";
+            for (i, el) in symbols.split_whitespace().enumerate() {
+                let v: Vec<u16> = (0..64).map(|p| ((p * 7 + i) % 11) as u16).collect();
+                write_png_u16(&f.join(format!("{el}.png")), 8, 8, &v).unwrap();
+            }
+            f
+        },
+    );
+    case(
         "duplicate element",
         Expect::Fails(3),
         &["Fe.png", "Fe_Ka.tif"],
