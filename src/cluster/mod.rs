@@ -358,3 +358,67 @@ impl Scorer<'_> {
         }
     }
 }
+
+#[cfg(test)]
+mod tests {
+    use super::lanes::{for_each_block, LANES};
+    use super::*;
+    use rand::{Rng, SeedableRng};
+    use rand_chacha::ChaCha8Rng;
+
+    /// The block scorer used by the labelling pass equals the one-row scorer bit for bit,
+    /// for every model kind, with and without the mixing weights, on blocks of every size.
+    #[test]
+    fn block_scores_equal_row_scores() {
+        let (k, d) = (3, 4);
+        let mut rng = ChaCha8Rng::seed_from_u64(5);
+        let rows: Vec<f32> = (0..(2 * LANES + 3) * d)
+            .map(|_| rng.random_range(0.0..30.0f32).round())
+            .collect();
+        let means: Vec<f64> = (0..k * d).map(|_| rng.random_range(1.0..25.0)).collect();
+        let mut cov = vec![0.0; k * d * d];
+        for c in 0..k {
+            for i in 0..d {
+                for j in 0..d {
+                    cov[c * d * d + i * d + j] = if i == j { 3.0 + c as f64 } else { 0.5 };
+                }
+            }
+        }
+        let weights = vec![0.5, 0.3, 0.2];
+        let models = [
+            Clusters::Kmeans {
+                model: KMeans {
+                    k,
+                    d,
+                    centroids: means.clone(),
+                    inertia: 0.0,
+                    iterations: 0,
+                },
+                variance: 2.5,
+            },
+            Clusters::Gmm {
+                model: GaussianMixture::new(k, d, weights.clone(), means.clone(), cov).unwrap(),
+            },
+            Clusters::Poisson {
+                model: PoissonMixture::new(k, d, weights, means),
+            },
+        ];
+        for model in &models {
+            for weighted in [false, true] {
+                let scorer = model.scorer(weighted);
+                let mut out = vec![[0f64; LANES]; k];
+                let mut seen = 0;
+                for_each_block(&rows, d, |block, xt| {
+                    scorer.score_block(xt, &mut out);
+                    for (l, row) in block.chunks_exact(d).enumerate() {
+                        for (c, o) in out.iter().enumerate() {
+                            assert_eq!(o[l].to_bits(), scorer.score(c, row).to_bits());
+                        }
+                        seen += 1;
+                    }
+                });
+                assert_eq!(seen, rows.len() / d);
+            }
+        }
+    }
+}
