@@ -580,10 +580,11 @@ pub fn refine_from(
         .zip(ml.par_iter())
         .zip(confidence.par_iter_mut())
         .enumerate()
-        .for_each(|(i, ((&l, &m), conf))| {
+        .for_each_init(Vec::new, |s, (i, ((&l, &m), conf))| {
             if l != m && (l as usize) <= k && f.mask[i] {
                 let row = f.row(i);
-                let s: Vec<f64> = (0..=k).map(|c| fs.score(c, row)).collect();
+                s.clear();
+                s.extend((0..=k).map(|c| fs.score(c, row)));
                 let max = s.iter().cloned().fold(f64::NEG_INFINITY, f64::max);
                 let z: f64 = s.iter().map(|v| (v - max).exp()).sum();
                 *conf = ((s[l as usize] - max).exp() / z) as f32;

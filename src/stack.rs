@@ -121,7 +121,20 @@ impl MapStack {
                 ));
             }
         }
-        for m in &maps {
+        // Whether every value is finite and ≥ 0: a branch-free pass that vectorises, in
+        // parallel over the maps; the place of a bad value is looked for only on failure.
+        let clean: Vec<bool> = {
+            use rayon::prelude::*;
+            maps.par_iter()
+                .map(|m| {
+                    m.counts.chunks(4096).all(|c| {
+                        c.iter()
+                            .fold(true, |ok, v| ok & v.is_finite() & (*v >= 0.0))
+                    })
+                })
+                .collect()
+        };
+        for (m, &clean) in maps.iter().zip(&clean) {
             if m.counts.len() != width * height {
                 return Err(Error::input(
                     Path::new(&m.source),
@@ -132,6 +145,9 @@ impl MapStack {
                     ),
                     "all maps of a field must share one size; re-export them together",
                 ));
+            }
+            if clean {
+                continue;
             }
             if let Some(i) = m.counts.iter().position(|v| !v.is_finite() || *v < 0.0) {
                 let v = m.counts[i];
