@@ -175,16 +175,9 @@ impl GaussianMixture {
         }
     }
 
-    /// Most probable component, its posterior probability, and the row's log-likelihood.
-    pub fn classify(&self, row: &[f32], lp: &mut [f64]) -> (usize, f64, f64) {
-        for (c, p) in lp[..self.k].iter_mut().enumerate() {
-            *p = self.weighted_log_density(c, row);
-        }
-        lanes::best_and_log_sum(&lp[..self.k])
-    }
-
     /// Calls `f(row, lp)` for every row of `data`, `lp[c]` its weighted log density under
-    /// component `c`: [`Self::classify`]'s scores, computed a block of rows at a time.
+    /// component `c` (with [`lanes::best_and_log_sum`], the most probable component, its
+    /// posterior and the row's log-likelihood), computed a block of rows at a time.
     pub fn for_each_scored_row(&self, data: &[f32], f: impl FnMut(&[f32], &mut [f64])) {
         lanes::for_each_scored_row(
             data,

@@ -1,9 +1,11 @@
 //! Cluster: group pixels into phases.
 //!
-//! Takes [`Features`](crate::prepare::Features) and checked [`ClusterParams`]; returns a
-//! [`Clusters`] model (k-means centroids or a Gaussian mixture) that scores any pixel
-//! against every phase. Models are fitted on a seeded sample of the pixels when the field
-//! is large, then applied to every pixel in one pass (`refine`).
+//! Takes [`Features`](crate::prepare::Features) and checked
+//! [`ClusterParams`](select::ClusterParams); returns a [`Clusters`] model (k-means
+//! centroids, a Gaussian or a Poisson mixture) that scores any pixel against every phase.
+//! Models are fitted on a seeded sample of the pixels when the field is large, then
+//! applied to every pixel in one pass (`refine`). The per-pixel distances run a block of
+//! pixels at a time ([`lanes`]), tested bit for bit against the one-row versions.
 //!
 //! The kernels are our own (a measurement showed linfa 8–17× slower than scikit-learn on
 //! this problem; see notebooks-free-docs/architecture.md); tests compare them with

@@ -1,6 +1,7 @@
 //! Report: what `map` writes and prints.
 //!
-//! Takes a [`MapResult`] and the [`LoadedField`] it came from; builds the serialisable
+//! Takes a [`MapResult`](crate::pipeline::MapResult) and the
+//! [`LoadedField`](crate::io::LoadedField) it came from; builds the serialisable
 //! [`Report`] (`report.json`, schema `modalmap.report/1`) and writes every output into a
 //! temporary folder beside OUT that is renamed into place at the end, so OUT is never left
 //! half-written.
