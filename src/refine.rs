@@ -133,6 +133,8 @@ struct FullScorer<'a> {
     space: Space,
     /// The empty pseudo-phase: counts per pixel of each element in a pore.
     empty_counts: Vec<f64>,
+    /// Their logarithms (for the Poisson score).
+    empty_ln_counts: Vec<f64>,
     empty_point: Vec<f32>,
     empty_log_norm: f64,
 }
@@ -158,8 +160,8 @@ impl FullScorer<'_> {
                 self.empty_log_norm
                     + row
                         .iter()
-                        .zip(&self.empty_counts)
-                        .map(|(&x, &l)| f64::from(x) * l.ln() - l)
+                        .zip(self.empty_counts.iter().zip(&self.empty_ln_counts))
+                        .map(|(&x, (&l, &ln_l))| f64::from(x) * ln_l - l)
                         .sum::<f64>()
             }
             Space::Transformed(_, var) => {
@@ -283,6 +285,7 @@ pub fn refine_from(
         k,
         space,
         empty_point: empty_counts.iter().map(|&c| st.apply(c as f32)).collect(),
+        empty_ln_counts: empty_counts.iter().map(|&c: &f64| c.ln()).collect(),
         empty_counts,
         empty_log_norm,
     };

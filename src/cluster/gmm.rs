@@ -342,8 +342,7 @@ pub fn em_step(
                 let (_, _, lse) = lanes::best_and_log_sum(lp);
                 s.ll += lse;
                 for (c, &l) in lp.iter().enumerate() {
-                    let r = (l - lse).exp();
-                    if r > 1e-10 {
+                    if let Some(r) = lanes::responsibility(l, lse) {
                         s.accumulate(row, c, r, d);
                     }
                 }

@@ -52,9 +52,13 @@ struct Cache {
 /// ln x! for the log-likelihood reported to BIC; Stirling with two correction terms above
 /// 20, exact below (common practice, no source).
 pub fn ln_factorial(x: f64) -> f64 {
+    // The exact sums below 20, computed once (every fit sums ln x! over its rows).
+    static SMALL: std::sync::OnceLock<[f64; 20]> = std::sync::OnceLock::new();
     let x = x.max(0.0).round();
     if x < 20.0 {
-        (2..=x as u64).map(|i| (i as f64).ln()).sum()
+        let small = SMALL
+            .get_or_init(|| std::array::from_fn(|x| (2..=x as u64).map(|i| (i as f64).ln()).sum()));
+        small[x as usize]
     } else {
         x * x.ln() - x + 0.5 * (2.0 * std::f64::consts::PI * x).ln() + 1.0 / (12.0 * x)
             - 1.0 / (360.0 * x.powi(3))
@@ -225,8 +229,7 @@ pub fn em_step(m: &PoissonMixture, data: &[f32]) -> (PoissonMixture, f64) {
                 let (_, _, lse) = lanes::best_and_log_sum(lp);
                 ll += lse;
                 for c in 0..k {
-                    let r = (lp[c] - lse).exp();
-                    if r > 1e-10 {
+                    if let Some(r) = lanes::responsibility(lp[c], lse) {
                         nk[c] += r;
                         for e in 0..d {
                             s[c * d + e] += r * f64::from(row[e]);
