@@ -45,45 +45,55 @@ fn pixel_counts() -> Vec<usize> {
     }
 }
 
-/// Rows from 8 well-separated Gaussian blobs (means 0..40, sd 1..3), seeded per block of
-/// rows so generation runs in parallel and does not depend on the thread count.
-fn gaussian_rows(n: usize, d: usize) -> Vec<f32> {
-    let mut rng = ChaCha8Rng::seed_from_u64(11);
-    let centres: Vec<f32> = (0..8 * d).map(|_| rng.random_range(0.0..40.0)).collect();
+/// `n` rows of `d` values from 8 classes: `class_params` draws each class's `d`
+/// parameters (seed `seed`), `value(rng, class, param)` one value. Block `b` of rows is
+/// seeded `block_seed + b`, so generation runs in parallel and does not depend on the
+/// thread count.
+fn class_rows(
+    n: usize,
+    d: usize,
+    (seed, block_seed): (u64, u64),
+    class_params: impl Fn(&mut ChaCha8Rng) -> f64,
+    value: impl Fn(&mut ChaCha8Rng, usize, f64) -> f32 + Sync,
+) -> Vec<f32> {
+    let mut rng = ChaCha8Rng::seed_from_u64(seed);
+    let params: Vec<f64> = (0..8 * d).map(|_| class_params(&mut rng)).collect();
     let mut data = vec![0f32; n * d];
     data.par_chunks_mut(ROWS_PER_SEED * d)
         .enumerate()
         .for_each(|(b, block)| {
-            let mut rng = ChaCha8Rng::seed_from_u64(1000 + b as u64);
-            let unit = Normal::new(0.0f32, 1.0).unwrap();
+            let mut rng = ChaCha8Rng::seed_from_u64(block_seed + b as u64);
             for row in block.chunks_exact_mut(d) {
                 let c = rng.random_range(0..8);
-                let sd = 1.0 + (c % 3) as f32;
                 for (j, x) in row.iter_mut().enumerate() {
-                    *x = centres[c * d + j] + sd * unit.sample(&mut rng);
+                    *x = value(&mut rng, c, params[c * d + j]);
                 }
             }
         });
     data
 }
 
+/// Rows from 8 well-separated Gaussian blobs (means 0..40, sd 1..3).
+fn gaussian_rows(n: usize, d: usize) -> Vec<f32> {
+    let unit = Normal::new(0.0f32, 1.0).unwrap();
+    class_rows(
+        n,
+        d,
+        (11, 1000),
+        |rng| rng.random_range(0.0..40.0),
+        |rng, c, mean| mean as f32 + (1.0 + (c % 3) as f32) * unit.sample(rng),
+    )
+}
+
 /// Counts from 8 Poisson phases with rates 0.5..40 per pixel and element.
 fn count_rows(n: usize, d: usize) -> Vec<f32> {
-    let mut rng = ChaCha8Rng::seed_from_u64(12);
-    let rates: Vec<f64> = (0..8 * d).map(|_| rng.random_range(0.5..40.0)).collect();
-    let mut data = vec![0f32; n * d];
-    data.par_chunks_mut(ROWS_PER_SEED * d)
-        .enumerate()
-        .for_each(|(b, block)| {
-            let mut rng = ChaCha8Rng::seed_from_u64(2000 + b as u64);
-            for row in block.chunks_exact_mut(d) {
-                let c = rng.random_range(0..8);
-                for (j, x) in row.iter_mut().enumerate() {
-                    *x = Poisson::new(rates[c * d + j]).unwrap().sample(&mut rng) as f32;
-                }
-            }
-        });
-    data
+    class_rows(
+        n,
+        d,
+        (12, 2000),
+        |rng| rng.random_range(0.5..40.0),
+        |rng, _, rate| Poisson::new(rate).unwrap().sample(rng) as f32,
+    )
 }
 
 /// `k` seeded rows of `data` as starting centres.
@@ -166,55 +176,66 @@ fn label(n: usize, d: usize, k: usize) -> String {
     format!("{}Mpx/d{d}/k{k}", n >> 20)
 }
 
-fn kmeans_iteration(c: &mut Criterion) {
+/// One benchmark group over the grid: for every pixel count and dimension, `data(n, d)`
+/// rows, and for every k a model `start(rows, d, k)` that `pass(model, rows, k)` runs one
+/// pass with.
+fn iteration_grid<M>(
+    c: &mut Criterion,
+    group: &str,
+    data: fn(usize, usize) -> Vec<f32>,
+    start: impl Fn(&[f32], usize, usize) -> M,
+    pass: impl Fn(&M, &[f32], usize),
+) {
     for n in pixel_counts() {
         for d in DIMS {
-            let data = gaussian_rows(n, d);
-            let mut g = c.benchmark_group("kmeans_iteration");
+            let rows = data(n, d);
+            let mut g = c.benchmark_group(group);
             configure(&mut g, n * d * 4);
             for k in KS {
-                let centres = seeded_rows(&data, d, k);
+                let model = start(&rows, d, k);
                 g.bench_with_input(BenchmarkId::from_parameter(label(n, d, k)), &k, |b, &k| {
-                    b.iter(|| black_box(kmeans::assign_pass(&data, d, &centres, k)))
+                    b.iter(|| pass(&model, &rows, k))
                 });
             }
             g.finish();
         }
     }
+}
+
+fn kmeans_iteration(c: &mut Criterion) {
+    iteration_grid(
+        c,
+        "kmeans_iteration",
+        gaussian_rows,
+        seeded_rows,
+        |centres, rows, k| {
+            black_box(kmeans::assign_pass(rows, centres.len() / k, centres, k));
+        },
+    );
 }
 
 fn gmm_iteration(c: &mut Criterion) {
-    for n in pixel_counts() {
-        for d in DIMS {
-            let data = gaussian_rows(n, d);
-            let mut g = c.benchmark_group("gmm_em_iteration");
-            configure(&mut g, n * d * 4);
-            for k in KS {
-                let start = start_gmm(&data, d, k);
-                g.bench_with_input(BenchmarkId::from_parameter(label(n, d, k)), &k, |b, _| {
-                    b.iter(|| black_box(gmm::em_step(&start, &data, 1e-6).unwrap()))
-                });
-            }
-            g.finish();
-        }
-    }
+    iteration_grid(
+        c,
+        "gmm_em_iteration",
+        gaussian_rows,
+        start_gmm,
+        |g, rows, _| {
+            black_box(gmm::em_step(g, rows, 1e-6).unwrap());
+        },
+    );
 }
 
 fn poisson_iteration(c: &mut Criterion) {
-    for n in pixel_counts() {
-        for d in DIMS {
-            let data = count_rows(n, d);
-            let mut g = c.benchmark_group("poisson_em_iteration");
-            configure(&mut g, n * d * 4);
-            for k in KS {
-                let start = start_poisson(&data, d, k);
-                g.bench_with_input(BenchmarkId::from_parameter(label(n, d, k)), &k, |b, _| {
-                    b.iter(|| black_box(poisson::em_step(&start, &data)))
-                });
-            }
-            g.finish();
-        }
-    }
+    iteration_grid(
+        c,
+        "poisson_em_iteration",
+        count_rows,
+        start_poisson,
+        |m, rows, _| {
+            black_box(poisson::em_step(m, rows));
+        },
+    );
 }
 
 /// The labelling pass of `apply` without its spatial steps: the most probable phase of

@@ -669,10 +669,8 @@ pub fn write_outputs(
     if let Some(counts) = result.counts {
         use rayon::prelude::*;
         // Each map as a grey PNG (with title, ramp and scale bar), and a small copy for
-        // the page; in parallel over the elements.
-        // Each element's 99.5th percentile (white in its map, the end of its axis in the
-        // pair plots).
-        let tops = std::sync::Mutex::new(std::collections::HashMap::new());
+        // the page, in parallel over the elements; with each element's 99.5th percentile
+        // (white in its map, the end of its axis in the pair plots).
         let made = counts
             .maps()
             .par_iter()
@@ -699,10 +697,7 @@ pub fn write_outputs(
                 let hi = m.counts.iter().copied().fold(f32::NEG_INFINITY, f32::max);
                 let top = draw::nth_finite(&m.counts, |n| (n - 1) - n / 200).unwrap_or(1.0);
                 let (tw, th, thumb) = draw::grey_thumbnail(&m.counts, w, h, top, 320);
-                tops.lock()
-                    .expect("no panics while held")
-                    .insert(m.element.symbol.to_string(), top);
-                Ok(html::Figure {
+                let figure = html::Figure {
                     png: crate::io::raster::encode_png_u8(tw, th, &thumb),
                     alt: format!(
                         "{} map: grey level proportional to counts per pixel",
@@ -712,11 +707,12 @@ pub fn write_outputs(
                         "{} {line}: counts per pixel {lo:.0} to {hi:.0} (white at {top:.0}; full size in {name})",
                         m.element.symbol
                     ),
-                })
+                };
+                Ok((figure, (m.element.symbol.to_string(), top)))
             })
             .collect::<Result<Vec<_>>>()?;
-        element_maps.extend(made);
-        let tops = tops.into_inner().expect("no panics while held");
+        let (figures, tops): (Vec<_>, std::collections::HashMap<_, _>) = made.into_iter().unzip();
+        element_maps.extend(figures);
         let pairs: Vec<_> = html::informative_pairs(r)
             .into_iter()
             .filter_map(|(ex, ey)| {
