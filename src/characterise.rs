@@ -299,13 +299,12 @@ impl ValidCompositionOptions {
 }
 
 fn read_kfactors(path: &Path) -> Result<KFactorFile> {
-    let text = std::fs::read_to_string(path).map_err(|e| {
-        Error::options_in(
-            path,
-            format!("cannot be read: {e}"),
-            "check the --kfactors path",
-        )
-    })?;
+    let text = crate::guard::read_text(
+        path,
+        "k-factor file (--kfactors)",
+        crate::guard::MAX_TEXT_BYTES,
+    )
+    .map_err(|e| Error::options_in(path, e.problem, e.fix))?;
     let t: KFactorToml = toml::from_str(&text).map_err(|e| {
         Error::options_in(
             path,

@@ -38,6 +38,24 @@ pub struct LimitArgs {
     pub max_pixels: u64,
 }
 
+impl LimitArgs {
+    /// The checked limits.
+    pub fn checked(&self) -> Result<Limits> {
+        if self.max_pixels == 0 {
+            return Err(Error::options(
+                "--max-pixels 0 would refuse every map",
+                format!(
+                    "give the largest number of pixels to accept in one map (default {})",
+                    Limits::DEFAULT_MAX_PIXELS
+                ),
+            ));
+        }
+        Ok(Limits {
+            max_pixels: self.max_pixels,
+        })
+    }
+}
+
 impl Default for LimitArgs {
     fn default() -> Self {
         LimitArgs {
@@ -170,6 +188,9 @@ pub enum Command {
         /// Seed of the benchmark rock's microstructure and counts.
         #[arg(long, default_value_t = 2048)]
         seed: u64,
+        /// Replace the folder's contents if it holds files (never a field's maps).
+        #[arg(long)]
+        force: bool,
     },
 }
 
@@ -311,13 +332,12 @@ pub struct Resolved {
 }
 
 fn read_config(path: &std::path::Path) -> Result<ConfigFile> {
-    let text = std::fs::read_to_string(path).map_err(|e| {
-        Error::options_in(
-            path,
-            format!("cannot be read: {e}"),
-            "check the --config path",
-        )
-    })?;
+    let text = crate::guard::read_text(
+        path,
+        "configuration file (--config)",
+        crate::guard::MAX_TEXT_BYTES,
+    )
+    .map_err(|e| Error::options_in(path, e.problem, e.fix))?;
     toml::from_str(&text).map_err(|e| {
         Error::options_in(
             path,
@@ -426,14 +446,16 @@ impl MapArgs {
             live_time_s: None,
             bse_pixel_size_um: None,
         };
-        for (name, v) in [("--pixel-size", md.pixel_size_um), ("--kv", md.beam_kv)] {
+        let bse_pixel_size = self.bse_pixel_size.or(c.bse_pixel_size);
+        for (name, key, v) in [
+            ("--pixel-size", "pixel_size_um", md.pixel_size_um),
+            ("--kv", "beam_kv", md.beam_kv),
+            ("--bse-pixel-size", "bse_pixel_size_um", bse_pixel_size),
+        ] {
             if let Some(v) = v {
-                if !(v.is_finite() && v > 0.0) {
-                    return Err(Error::options(
-                        format!("{name} {v} is not a positive number"),
-                        format!("give {name} as a positive number"),
-                    ));
-                }
+                crate::stack::check_metadata_value(key, v).map_err(|p| {
+                    Error::options(format!("{name} {p}"), format!("give {name} in that range"))
+                })?;
             }
         }
         let or_list = |flag: &[String], file: Option<Vec<String>>| {
@@ -469,7 +491,7 @@ impl MapArgs {
             map: opts,
             metadata: md,
             threads: self.threads.or(c.threads),
-            bse_pixel_size: self.bse_pixel_size.or(c.bse_pixel_size),
+            bse_pixel_size,
             composition,
         })
     }
@@ -498,9 +520,14 @@ pub fn map_field(
         bse_file: args.bse.clone(),
         no_bse: args.no_bse,
         bse_pixel_size,
-        max_pixels: args.limits.max_pixels,
+        max_pixels: args.limits.checked()?.max_pixels,
         force: args.force,
         stream: crate::run::Stream::Never,
+        also_reads: args
+            .config
+            .iter()
+            .map(|p| ("configuration file", p.clone()))
+            .collect(),
     };
     let spinner = spinner(args.quiet);
     let result = process_field(input, out, &job, &mut |stage| {
@@ -550,12 +577,7 @@ pub fn run(cli: Cli) -> Result<u8> {
             json,
             limits,
         } => {
-            let field = load_field(
-                &input,
-                &Limits {
-                    max_pixels: limits.max_pixels,
-                },
-            )?;
+            let field = load_field(&input, &limits.checked()?)?;
             let report = crate::inspect::inspect(&field);
             if json {
                 let text = serde_json::to_string_pretty(&report)
@@ -619,22 +641,18 @@ pub fn run(cli: Cli) -> Result<u8> {
             quiet,
         } => merge(&folders, &output, force, quiet),
         Command::Demo { output, force } => {
-            // The sample field is generated into a private temporary folder (the same maps
-            // as sample-maps/), mapped into OUT, then removed.
+            // The sample field is generated into a working folder beside OUT (the same
+            // maps as sample-maps/), mapped into OUT, then removed.
             let field = crate::synth::sample_field()?;
-            let input = std::env::temp_dir()
-                .join(format!("modalmap-demo-{}", std::process::id()))
-                .join("sample-maps");
-            crate::synth::write_folder(&field, &input)?;
+            let scratch = crate::report::Scratch::beside(&output)?;
+            let input = scratch.path().join("sample-maps");
             let args = MapArgs {
                 force,
                 ..MapArgs::default()
             };
-            let result = map_field(&input, &output, &args);
-            if let Some(parent) = input.parent() {
-                let _ = std::fs::remove_dir_all(parent);
-            }
-            let report = result?;
+            crate::synth::write_folder(&field, &input)?;
+            let report = map_field(&input, &output, &args)?;
+            drop(scratch);
             print!("{}", crate::report::summary(&report));
             let labels = crate::io::read_raster(&output.join("labels.png"), &Limits::default())?;
             let pred: Vec<u16> = labels.data.iter().map(|&v| v as u16).collect();
@@ -655,39 +673,62 @@ pub fn run(cli: Cli) -> Result<u8> {
             scenario,
             size,
             seed,
-        } => {
-            let field = match scenario {
-                Scenario::SolderJoint => crate::synth::sample_field()?,
-                Scenario::BenchmarkRock => {
-                    if !(16..=20_000).contains(&size) {
-                        return Err(Error::options(
-                            format!("--size {size} is out of range"),
-                            "use 16 to 20000 pixels",
-                        ));
-                    }
-                    let (micro, opts) = crate::synth::benchmark_rock(size, seed);
-                    crate::synth::generate(&micro, &opts)?
-                }
-            };
-            crate::synth::write_folder(&field, &output)?;
-            if let Some(t) = truth {
-                crate::io::raster::write_png_u16(
-                    &t,
-                    field.stack.width(),
-                    field.stack.height(),
-                    &field.truth,
-                )?;
-            }
-            println!(
-                "wrote a {}×{} synthetic field ({}) to {}",
-                field.stack.width(),
-                field.stack.height(),
-                field.phase_names.join(", "),
-                output.display()
-            );
-            Ok(0)
+            force,
+        } => synth(&output, truth.as_deref(), scenario, size, seed, force),
+    }
+}
+
+/// `synth`: an invented field, written atomically into a new or empty folder (or, with
+/// `force`, replacing a folder that holds no field).
+fn synth(
+    output: &std::path::Path,
+    truth: Option<&std::path::Path>,
+    scenario: Scenario,
+    size: usize,
+    seed: u64,
+    force: bool,
+) -> Result<u8> {
+    if let Some(t) = truth {
+        if t.exists() && !force {
+            return Err(Error::output(
+                t,
+                "already exists",
+                "choose another file for the true labels, or add --force to replace it",
+            ));
         }
     }
+    let dir = crate::report::prepare_output(output, force)?;
+    let field = match scenario {
+        Scenario::SolderJoint => crate::synth::sample_field()?,
+        Scenario::BenchmarkRock => {
+            if !(16..=20_000).contains(&size) {
+                return Err(Error::options(
+                    format!("--size {size} is out of range"),
+                    "use 16 to 20000 pixels",
+                ));
+            }
+            let (micro, opts) = crate::synth::benchmark_rock(size, seed);
+            crate::synth::generate(&micro, &opts)?
+        }
+    };
+    crate::synth::write_folder(&field, dir.folder())?;
+    dir.commit()?;
+    if let Some(t) = truth {
+        let png = crate::io::raster::encode_png_u16(
+            field.stack.width(),
+            field.stack.height(),
+            &field.truth,
+        );
+        crate::report::write_file_atomically(t, &png)?;
+    }
+    println!(
+        "wrote a {}×{} synthetic field ({}) to {}",
+        field.stack.width(),
+        field.stack.height(),
+        field.phase_names.join(", "),
+        output.display()
+    );
+    Ok(0)
 }
 
 /// `fit`: one model from several fields.
@@ -720,9 +761,30 @@ fn fit(inputs: &[PathBuf], output: &std::path::Path, args: &MapArgs) -> Result<u
             "choose another file name, or add --force to replace it",
         ));
     }
-    let limits = Limits {
-        max_pixels: args.limits.max_pixels,
-    };
+    let mut reads: Vec<crate::guard::Input> = inputs
+        .iter()
+        .map(|p| crate::guard::Input {
+            what: "field",
+            path: p,
+        })
+        .collect();
+    let given = composition.options();
+    for (what, p) in args
+        .config
+        .iter()
+        .map(|p| ("configuration file", p))
+        .chain(given.kfactors.iter().map(|p| ("k-factor file", p)))
+        .chain(
+            given
+                .libraries
+                .iter()
+                .map(|p| ("reference-phase library", p)),
+        )
+    {
+        reads.push(crate::guard::Input { what, path: p });
+    }
+    crate::guard::check_file_output(output, &reads)?;
+    let limits = args.limits.checked()?;
     let mut fields = Vec::new();
     for input in inputs {
         let mut f = load_field(input, &limits)?;
@@ -797,7 +859,7 @@ fn fit(inputs: &[PathBuf], output: &std::path::Path, args: &MapArgs) -> Result<u
     };
     let json = serde_json::to_string_pretty(&model)
         .map_err(|e| Error::internal(format!("model encoding failed: {e}")))?;
-    write_file_atomically(output, json.as_bytes())?;
+    crate::report::write_file_atomically(output, json.as_bytes())?;
     if !args.quiet {
         println!(
             "fitted {} phases on {} fields ({} × {} pixel windows):",
@@ -817,27 +879,6 @@ fn fit(inputs: &[PathBuf], output: &std::path::Path, args: &MapArgs) -> Result<u
         println!("  model written to {}", output.display());
     }
     Ok(0)
-}
-
-/// Writes a file through a temporary file beside it and a rename.
-fn write_file_atomically(path: &std::path::Path, bytes: &[u8]) -> Result<()> {
-    let name = path
-        .file_name()
-        .map(|n| n.to_string_lossy().into_owned())
-        .unwrap_or_else(|| "model.json".into());
-    let tmp = path.with_file_name(format!(".{name}.modalmap-tmp-{}", std::process::id()));
-    let err = |e: std::io::Error| {
-        Error::output(
-            path,
-            format!("could not be written: {e}"),
-            "check that the folder exists and is writable",
-        )
-    };
-    std::fs::write(&tmp, bytes).map_err(err)?;
-    std::fs::rename(&tmp, path).map_err(|e| {
-        let _ = std::fs::remove_file(&tmp);
-        err(e)
-    })
 }
 
 /// Options of `map` that a saved model fixes, when given to `apply`.
@@ -924,6 +965,10 @@ fn apply(
     let names = crate::run::output_names(inputs);
     let all: Vec<(PathBuf, String)> = inputs.iter().cloned().zip(names).collect();
     let mine = crate::fields::shard(&all, i, n);
+    // Fields done by an earlier (interrupted) run with this model are kept.
+    let (mine, kept): (Vec<_>, Vec<_>) = mine.into_iter().partition(|(input, name)| {
+        args.force || !crate::run::done_earlier(&out.join(name), input, &reference)
+    });
     let job = FieldJob {
         labelling: Labelling::Model {
             model: &model,
@@ -935,10 +980,15 @@ fn apply(
         bse_file: None,
         no_bse: args.no_bse,
         bse_pixel_size,
-        max_pixels: args.limits.max_pixels,
+        max_pixels: args.limits.checked()?.max_pixels,
         force: args.force,
         stream,
+        also_reads: vec![("model file", model_path.to_path_buf())],
     };
+    // Before any work: no field's output may replace an input of the batch.
+    let fields: Vec<&std::path::Path> = all.iter().map(|(p, _)| p.as_path()).collect();
+    let targets: Vec<PathBuf> = mine.iter().map(|(_, name)| out.join(name)).collect();
+    job.check_outputs(&fields, &targets)?;
     let bar = progress_bar(args.quiet, mine.len());
     let outcomes = crate::run::run_batch(
         &mine,
@@ -969,10 +1019,18 @@ fn apply(
         "model": reference,
         "shard": [i, n],
         "fields": outcomes,
+        "kept": kept
+            .iter()
+            .map(|(input, name)| serde_json::json!({
+                "field": name,
+                "input": input.display().to_string(),
+                "output": out.join(name).display().to_string(),
+            }))
+            .collect::<Vec<_>>(),
     });
     let text = serde_json::to_string_pretty(&summary)
         .map_err(|e| Error::internal(format!("summary encoding failed: {e}")))?;
-    write_file_atomically(&out.join(&summary_name), text.as_bytes())?;
+    crate::report::write_file_atomically(&out.join(&summary_name), text.as_bytes())?;
     let failed: Vec<&crate::run::FieldOutcome> =
         outcomes.iter().filter(|o| o.status != "ok").collect();
     if !args.quiet {
@@ -983,6 +1041,12 @@ fn apply(
             model_path.display(),
             out.display()
         );
+        if !kept.is_empty() {
+            println!(
+                "kept {} fields an earlier run labelled with this model (add --force to label them again)",
+                kept.len()
+            );
+        }
     }
     for f in &failed {
         eprintln!(
@@ -1019,8 +1083,17 @@ fn progress_bar(quiet: bool, n: usize) -> Option<indicatif::ProgressBar> {
     Some(b)
 }
 
-/// Every report.json below `root` (temporary and hidden folders skipped), sorted.
-fn find_reports(root: &std::path::Path, found: &mut Vec<PathBuf>) -> Result<()> {
+/// Every report.json below `root` (temporary and hidden folders skipped), sorted. A folder
+/// reached twice (through a symbolic link) is read once.
+fn find_reports(
+    root: &std::path::Path,
+    visited: &mut std::collections::BTreeSet<PathBuf>,
+    found: &mut Vec<PathBuf>,
+) -> Result<()> {
+    let real = std::fs::canonicalize(root).unwrap_or_else(|_| root.to_path_buf());
+    if !visited.insert(real) {
+        return Ok(());
+    }
     let entries = std::fs::read_dir(root).map_err(|e| {
         Error::input(
             root,
@@ -1038,7 +1111,7 @@ fn find_reports(root: &std::path::Path, found: &mut Vec<PathBuf>) -> Result<()> 
             continue;
         }
         if p.is_dir() {
-            find_reports(&p, found)?;
+            find_reports(&p, visited, found)?;
         } else if p.file_name().is_some_and(|n| n == "report.json") {
             found.push(p);
         }
@@ -1049,22 +1122,31 @@ fn find_reports(root: &std::path::Path, found: &mut Vec<PathBuf>) -> Result<()> 
 /// `merge`: pool reports made with one model.
 fn merge(folders: &[PathBuf], out: &std::path::Path, force: bool, quiet: bool) -> Result<u8> {
     let mut paths = Vec::new();
+    let mut visited = std::collections::BTreeSet::new();
     for f in folders {
         if f.is_file() && f.file_name().is_some_and(|n| n == "report.json") {
             paths.push(f.clone());
         } else {
-            find_reports(f, &mut paths)?;
+            find_reports(f, &mut visited, &mut paths)?;
         }
     }
     let mut seen = std::collections::BTreeSet::new();
     paths.retain(|p| seen.insert(std::fs::canonicalize(p).unwrap_or_else(|_| p.clone())));
+    let reads: Vec<crate::guard::Input> = folders
+        .iter()
+        .chain(&paths)
+        .map(|p| crate::guard::Input {
+            what: "report",
+            path: p,
+        })
+        .collect();
+    crate::guard::check_no_overlap(&[out.to_path_buf()], &reads)?;
     let dir = crate::report::prepare_output(out, force)?;
     let reports = paths
         .iter()
         .map(|p| {
-            let text = std::fs::read_to_string(p)
-                .map_err(|e| Error::input(p, format!("cannot be read: {e}"), "check the file"))?;
-            let r: crate::report::Report = serde_json::from_str(&text).map_err(|e| {
+            let bytes = crate::guard::read_regular(p, "report", crate::guard::MAX_JSON_BYTES)?;
+            let r: crate::report::Report = serde_json::from_slice(&bytes).map_err(|e| {
                 Error::input(
                     p,
                     format!("is not a modalmap report of this version: {e}"),

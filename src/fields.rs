@@ -104,9 +104,7 @@ pub struct ModelRef {
 impl PhaseModel {
     /// Reads and checks a model file; returns it with a reference for reports.
     pub fn load(path: &Path) -> Result<(PhaseModel, ModelRef)> {
-        let bytes = std::fs::read(path).map_err(|e| {
-            Error::input(path, format!("cannot be read: {e}"), "check the model path")
-        })?;
+        let bytes = crate::guard::read_regular(path, "model file", crate::guard::MAX_JSON_BYTES)?;
         let value: serde_json::Value = serde_json::from_slice(&bytes).map_err(|e| {
             Error::input(
                 path,
@@ -131,20 +129,9 @@ impl PhaseModel {
                 "fit the model again (`modalmap fit`)",
             )
         })?;
-        let consistent = model.clusters.d() == model.elements.len()
-            && model.phases.len() == model.clusters.k()
-            && model
-                .phases
-                .iter()
-                .enumerate()
-                .all(|(i, p)| usize::from(p.id) == i + 1 && p.model_index < model.clusters.k());
-        if !consistent || model.clusters.refresh().is_err() {
-            return Err(Error::input(
-                path,
-                "is inconsistent: its elements, clusters and phases do not agree",
-                "fit the model again (`modalmap fit`)",
-            ));
-        }
+        model
+            .check()
+            .map_err(|p| tampered(path, p, "fit the model again (`modalmap fit`)"))?;
         let sha = crate::report::sha256_hex(&bytes);
         Ok((
             model,
@@ -154,6 +141,68 @@ impl PhaseModel {
                 schema: MODEL_SCHEMA.into(),
             },
         ))
+    }
+
+    /// Checks that the elements, clusters and phases agree (see the module docs); returns
+    /// what is wrong.
+    pub fn check(&mut self) -> std::result::Result<(), String> {
+        self.clusters.check()?;
+        let (k, d) = (self.clusters.k(), self.clusters.d());
+        if self.elements.len() != d {
+            return Err(format!(
+                "{} elements but clusters of {d} dimensions",
+                self.elements.len()
+            ));
+        }
+        let mut seen = std::collections::BTreeSet::new();
+        for e in &self.elements {
+            if crate::chem::element(e).is_none() || !seen.insert(e) {
+                return Err(format!("the element {e:?} is unknown or repeated"));
+            }
+        }
+        if self.phases.len() != k {
+            return Err(format!("{} phases but {k} clusters", self.phases.len()));
+        }
+        let mut used = vec![false; k];
+        for (i, p) in self.phases.iter().enumerate() {
+            if usize::from(p.id) != i + 1 {
+                return Err(format!("phase ids are not 1 to {k} in order"));
+            }
+            if p.model_index >= k || std::mem::replace(&mut used[p.model_index], true) {
+                return Err(format!(
+                    "phase {} points at cluster {}, which is missing or taken by another phase",
+                    p.id, p.model_index
+                ));
+            }
+            if p.name.chars().count() > MAX_NAME_CHARS || p.name.chars().any(char::is_control) {
+                return Err(format!(
+                    "phase {}'s name is longer than {MAX_NAME_CHARS} characters or holds control characters",
+                    p.id
+                ));
+            }
+            if !(0.0..=1.0).contains(&p.training_area_fraction) {
+                return Err(format!(
+                    "phase {}'s training area fraction is {}, outside 0 to 1",
+                    p.id, p.training_area_fraction
+                ));
+            }
+        }
+        if self
+            .phases
+            .iter()
+            .map(|p| p.training_area_fraction)
+            .sum::<f64>()
+            > 1.0 + 1e-6
+        {
+            return Err("the training area fractions add up to more than 1".into());
+        }
+        if self
+            .live_time_s
+            .is_some_and(|t| !(t.is_finite() && t > 0.0))
+        {
+            return Err("the live time is not a positive number".into());
+        }
+        self.clusters.refresh().map_err(|e| e.to_string())
     }
 
     /// The model's phase order: model indices in id order.
@@ -362,7 +411,83 @@ pub struct Summary {
     pub cautions: Vec<String>,
 }
 
-/// Pools reports made with one model. `reports` are (path of report.json, report).
+/// Longest phase or field name accepted in a model or report (common practice, no source:
+/// far more than any name a person gives, small enough for every figure).
+pub const MAX_NAME_CHARS: usize = 200;
+
+/// Most phases in a model (the labels are 16-bit; common practice, no source).
+pub const MAX_PHASES: usize = 256;
+
+fn tampered(path: &Path, problem: String, what: &str) -> Error {
+    Error::input(
+        path,
+        format!("is inconsistent: {problem}"),
+        format!("{what}; a file edited by hand or damaged in copying cannot be trusted"),
+    )
+}
+
+/// Refuses a report whose numbers cannot be right: area fractions outside [0, 1] or
+/// summing to more than 1, repeated phase ids, names too long to show.
+pub fn check_report(path: &Path, r: &Report) -> Result<()> {
+    let redo = "label the field again with `modalmap apply`";
+    let frac = |v: f64| v.is_finite() && (0.0..=1.0).contains(&v);
+    if r.phases.len() > MAX_PHASES || r.field.chars().count() > MAX_NAME_CHARS {
+        return Err(tampered(
+            path,
+            format!("{} phases or a field name too long", r.phases.len()),
+            redo,
+        ));
+    }
+    if !frac(r.unassigned_fraction) {
+        return Err(tampered(
+            path,
+            format!("its unassigned fraction is {}", r.unassigned_fraction),
+            redo,
+        ));
+    }
+    let mut ids = std::collections::BTreeSet::new();
+    for p in &r.phases {
+        if !frac(p.area_fraction) {
+            return Err(tampered(
+                path,
+                format!(
+                    "phase {} ({}) has the area fraction {}, outside 0 to 1",
+                    p.id, p.name, p.area_fraction
+                ),
+                redo,
+            ));
+        }
+        if !ids.insert(p.id) || p.name.chars().count() > MAX_NAME_CHARS {
+            return Err(tampered(
+                path,
+                format!("phase id {} repeated or its name too long", p.id),
+                redo,
+            ));
+        }
+        if p.composition_wt.values().any(|v| !v.is_finite()) {
+            return Err(tampered(
+                path,
+                format!("phase {} has a composition that is not a number", p.id),
+                redo,
+            ));
+        }
+    }
+    let total: f64 = r.phases.iter().map(|p| p.area_fraction).sum::<f64>() + r.unassigned_fraction;
+    if total > 1.0 + 1e-6 {
+        return Err(tampered(
+            path,
+            format!(
+                "its area fractions and the unassigned fraction add up to {:.4}, more than 1",
+                total
+            ),
+            redo,
+        ));
+    }
+    Ok(())
+}
+
+/// Pools reports made with one model. `reports` are (path of report.json, report); each
+/// must list the same phases (a phase absent from a field is listed with area 0).
 pub fn merge(reports: &[(PathBuf, Report)]) -> Result<Summary> {
     let Some((first_path, first)) = reports.first() else {
         return Err(Error::options(
@@ -397,6 +522,22 @@ pub fn merge(reports: &[(PathBuf, Report)]) -> Result<Summary> {
                     "merge only the outputs of `modalmap apply`",
                 ))
             }
+        }
+    }
+    for (p, r) in reports {
+        check_report(p, r)?;
+        let ids = |r: &Report| r.phases.iter().map(|q| q.id).collect::<Vec<_>>();
+        if ids(r) != ids(first) {
+            return Err(tampered(
+                p,
+                format!(
+                    "it lists the phases {:?}, but {} lists {:?} (every report of one model lists every phase, with area 0 where absent)",
+                    ids(r),
+                    first_path.display(),
+                    ids(first)
+                ),
+                "label the field again with `modalmap apply` and this model",
+            ));
         }
     }
     let n = reports.len();

@@ -93,13 +93,12 @@ impl Library {
 
     /// Reads a library file.
     pub fn load(path: &Path) -> Result<Library> {
-        let text = std::fs::read_to_string(path).map_err(|e| {
-            Error::options_in(
-                path,
-                format!("cannot be read: {e}"),
-                "check the --library path",
-            )
-        })?;
+        let text = crate::guard::read_text(
+            path,
+            "reference-phase library (--library)",
+            crate::guard::MAX_TEXT_BYTES,
+        )
+        .map_err(|e| Error::options_in(path, e.problem, e.fix))?;
         Library::parse(&text, path, &path.display().to_string())
     }
 

@@ -6,6 +6,8 @@ use clap::Parser;
 
 fn main() -> ExitCode {
     let cli = modalmap::cli::Cli::parse();
+    // SIGINT, SIGTERM, SIGHUP: remove this run's temporary files, leave OUT as it was.
+    modalmap::cleanup::on_signals();
     // A panic is a bug; it must still end with a clear message and the documented code.
     std::panic::set_hook(Box::new(|info| {
         eprintln!("error: internal error ({info})");

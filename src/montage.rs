@@ -68,8 +68,7 @@ struct PngRows {
 
 impl PngRows {
     fn open(path: &Path, limits: &Limits) -> Result<(PngRows, usize, usize)> {
-        let file = File::open(path)
-            .map_err(|e| Error::input(path, format!("cannot be opened: {e}"), "check the file"))?;
+        let file = crate::guard::open_regular(path, "element map")?;
         let bad = |p: String| {
             Error::input(
                 path,
@@ -315,7 +314,11 @@ impl StreamedField {
             lines: maps.iter().map(|m| (m.0, m.1.clone())).collect(),
             metadata: listing.metadata,
             files: maps.iter().map(|m| m.2.clone()).collect(),
-            warnings: listing.warnings,
+            warnings: listing
+                .warnings
+                .into_iter()
+                .chain(crate::run::dropped_inputs(&listing.skipped))
+                .collect(),
             has_bse: !listing.bse_files.is_empty(),
             sources,
         })

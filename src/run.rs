@@ -53,6 +53,47 @@ pub struct FieldJob<'a> {
     pub force: bool,
     /// Whether to label the field strip by strip (with a saved model only).
     pub stream: Stream,
+    /// Other files the command reads (configuration, model), which no output may replace.
+    pub also_reads: Vec<(&'static str, PathBuf)>,
+}
+
+impl FieldJob<'_> {
+    /// Refuses an output folder that holds, or is, one of the job's inputs for `input`.
+    pub fn check_output(&self, input: &Path, out: &Path) -> Result<()> {
+        self.check_outputs(&[input], &[out.to_path_buf()])
+    }
+
+    /// Refuses output folders that hold, or are, a field of `fields` or another input of
+    /// the job.
+    pub fn check_outputs(&self, fields: &[&Path], outs: &[PathBuf]) -> Result<()> {
+        use crate::guard::Input;
+        let given = self.composition.options();
+        let mut inputs: Vec<Input> = fields
+            .iter()
+            .map(|path| Input {
+                what: "field",
+                path,
+            })
+            .collect();
+        inputs.extend(self.bse_file.iter().map(|p| Input {
+            what: "BSE image",
+            path: p,
+        }));
+        inputs.extend(given.kfactors.iter().map(|p| Input {
+            what: "k-factor file",
+            path: p,
+        }));
+        inputs.extend(given.libraries.iter().map(|p| Input {
+            what: "reference-phase library",
+            path: p,
+        }));
+        inputs.extend(
+            self.also_reads
+                .iter()
+                .map(|(what, p)| Input { what, path: p }),
+        );
+        crate::guard::check_no_overlap(outs, &inputs)
+    }
 }
 
 /// When a field is labelled strip by strip ([`crate::montage`]).
@@ -77,6 +118,7 @@ pub fn process_field(
     job: &FieldJob,
     progress: &mut dyn FnMut(&str),
 ) -> Result<Report> {
+    job.check_output(input, out)?;
     if let Labelling::Model { model, reference } = job.labelling {
         let strip = match job.stream {
             Stream::Never => None,
@@ -112,22 +154,20 @@ pub fn process_field(
     }
     let map_size = (field.stack.width(), field.stack.height());
     let map_pixel_um = field.stack.metadata().pixel_size_um;
+    // Both values were range-checked where they came from (the flag, or field.toml).
     let bse_pixel_size = job
         .bse_pixel_size
         .or(field.stack.metadata().bse_pixel_size_um);
-    if let Some(v) = bse_pixel_size {
-        if !(v.is_finite() && v > 0.0) {
-            return Err(Error::options(
-                format!("--bse-pixel-size {v} is not a positive number"),
-                "give the BSE pixel size in µm",
-            ));
-        }
-        if map_pixel_um.is_none() {
-            return Err(Error::options(
-                "--bse-pixel-size needs the maps' pixel size too",
-                "set pixel_size_um in field.toml or give --pixel-size",
-            ));
-        }
+    if bse_pixel_size.is_some() && map_pixel_um.is_none() {
+        let from = if job.bse_pixel_size.is_some() {
+            "--bse-pixel-size".to_string()
+        } else {
+            format!("bse_pixel_size_um in {}", input.display())
+        };
+        return Err(Error::options(
+            format!("{from} needs the maps' pixel size too"),
+            "set pixel_size_um in field.toml or give --pixel-size",
+        ));
     }
     let bse_source = if job.no_bse {
         None
@@ -137,24 +177,29 @@ pub fn process_field(
             .map(BseSource::File)
             .or(field.bse.clone())
     };
+    // The BSE image shares the field's memory budget with the maps (at least one map's
+    // worth is left to it).
+    let stack_values = (map_size.0 * map_size.1 * field.stack.maps().len()) as u64;
+    let bse_limits = Limits {
+        max_pixels: limits
+            .max_field_values()
+            .saturating_sub(stack_values)
+            .max(limits.max_pixels),
+    };
     let bse_image = bse_source
         .as_ref()
-        .map(|s| {
-            crate::io::load_bse(
-                s,
-                &Limits {
-                    max_pixels: job.max_pixels.saturating_mul(16),
-                },
-            )
-        })
+        .map(|s| crate::io::load_bse(s, &bse_limits))
         .transpose()?;
     let crate::io::LoadedField {
         stack,
         name,
         mut files,
         mut warnings,
+        skipped,
         ..
     } = field;
+    warnings.extend(dropped_inputs(&skipped));
+    warnings.extend(dir.recovered.iter().cloned());
     add_composition_inputs(&mut files, job);
     // The BSE image is an input too.
     if let Some(BseSource::File(p)) = bse_source {
@@ -246,6 +291,16 @@ pub fn process_field(
     Ok(report)
 }
 
+/// A warning for every file or dataset of the field that was not used (but the BSE
+/// images, which the BSE check uses), so that nothing is dropped without a word.
+pub(crate) fn dropped_inputs(skipped: &[crate::io::Skipped]) -> Vec<String> {
+    skipped
+        .iter()
+        .filter(|s| !crate::io::folder::is_bse_name(&s.name))
+        .map(|s| format!("{} was not used: {}", s.name, s.reason))
+        .collect()
+}
+
 /// k-factor and library files are inputs too: their hashes go into the provenance.
 fn add_composition_inputs(files: &mut Vec<PathBuf>, job: &FieldJob) {
     let given = job.composition.options();
@@ -281,6 +336,7 @@ fn process_streamed(
     field.metadata.override_with(&job.metadata);
     model.check_symbols(&field.symbols(), input)?;
     let mut warnings = std::mem::take(&mut field.warnings);
+    warnings.extend(dir.recovered.iter().cloned());
     if !job.no_bse && field.has_bse {
         warnings.push(
             "the BSE check is not run on a field labelled strip by strip (a montage); check the contrast on a field small enough to map whole".into(),
@@ -362,6 +418,34 @@ pub struct FieldOutcome {
     /// Number of phases with pixels, when it succeeded.
     #[serde(skip_serializing_if = "Option::is_none", default)]
     pub phases_present: Option<usize>,
+}
+
+/// True if `target` holds the complete output of an earlier run on `input` with this
+/// model: a report of this field, made with the same model file (same SHA-256), from
+/// files under `input`. (`apply` keeps such outputs instead of failing on them, so an
+/// interrupted batch resumes where it stopped.)
+pub fn done_earlier(target: &Path, input: &Path, model: &ModelRef) -> bool {
+    let Ok(bytes) = crate::guard::read_regular(
+        &target.join("report.json"),
+        "report",
+        crate::guard::MAX_JSON_BYTES,
+    ) else {
+        return false;
+    };
+    let Ok(report) = serde_json::from_slice::<Report>(&bytes) else {
+        return false;
+    };
+    let from_input = report
+        .provenance
+        .inputs
+        .first()
+        .is_some_and(|f| Path::new(&f.path).starts_with(input));
+    report
+        .model
+        .as_ref()
+        .is_some_and(|m| m.sha256 == model.sha256)
+        && report.field == crate::io::field_name(input)
+        && from_input
 }
 
 /// Output folder names for a list of inputs: each input's field name, made unique by

@@ -23,9 +23,33 @@ pub struct FieldMetadata {
     pub bse_pixel_size_um: Option<f64>,
 }
 
+/// The physically possible range of each metadata value, with its unit: an SEM beam from
+/// 0.1 to 400 kV (low-voltage imaging to the highest-voltage electron microscopes), pixels
+/// from 0.1 nm to 1 cm, live times from 1 ms to 10⁷ s (common practice, no source).
+pub const METADATA_RANGES: [(&str, f64, f64, &str); 4] = [
+    ("pixel_size_um", 1e-4, 1e4, "µm"),
+    ("beam_kv", 0.1, 400.0, "kV"),
+    ("live_time_s", 1e-3, 1e7, "s"),
+    ("bse_pixel_size_um", 1e-4, 1e4, "µm"),
+];
+
+/// Checks one metadata value against [`METADATA_RANGES`]; the message names the range.
+pub fn check_metadata_value(key: &str, v: f64) -> std::result::Result<(), String> {
+    let Some(&(_, lo, hi, unit)) = METADATA_RANGES.iter().find(|r| r.0 == key) else {
+        return Ok(());
+    };
+    if v.is_finite() && (lo..=hi).contains(&v) {
+        Ok(())
+    } else {
+        Err(format!(
+            "{v} {unit} is outside the possible range {lo} to {hi} {unit}"
+        ))
+    }
+}
+
 impl FieldMetadata {
-    /// Checks that every value given is a positive, finite number; `path` is the file the
-    /// values came from (field.toml or the HDF5 input).
+    /// Checks that every value given lies in its physical range ([`METADATA_RANGES`]);
+    /// `path` is the file the values came from (field.toml or the HDF5 input).
     pub fn check(&self, path: &Path) -> Result<()> {
         for (key, v) in [
             ("pixel_size_um", self.pixel_size_um),
@@ -33,12 +57,14 @@ impl FieldMetadata {
             ("live_time_s", self.live_time_s),
             ("bse_pixel_size_um", self.bse_pixel_size_um),
         ] {
-            if let Some(v) = v.filter(|v| !(v.is_finite() && *v > 0.0)) {
-                return Err(Error::input(
-                    path,
-                    format!("{key} = {v} is not a positive number"),
-                    format!("set {key} to the real value, or leave it out if unknown"),
-                ));
+            if let Some(v) = v {
+                check_metadata_value(key, v).map_err(|p| {
+                    Error::input(
+                        path,
+                        format!("{key} = {p}"),
+                        format!("set {key} to the real value, or leave it out if unknown"),
+                    )
+                })?;
             }
         }
         Ok(())

@@ -81,6 +81,10 @@ fn h5py_broken_files_are_refused_with_reasons() {
             "stack_without_elements.h5",
             "no string-array attribute `elements`",
         ),
+        (
+            "attr_wrong_type.h5",
+            "attribute `pixel_size_um` is not a number",
+        ),
     ];
     for (name, key) in cases {
         let e = load_field(&fixture(name), &Limits::default()).unwrap_err();

@@ -69,6 +69,63 @@ impl Clusters {
         }
     }
 
+    /// Checks a model read from a file before any use: array lengths agree with `k` and
+    /// `d`, every number is finite, weights are non-negative, every component has
+    /// counts or a positive variance. Returns what is wrong.
+    pub fn check(&self) -> std::result::Result<(), String> {
+        let (k, d) = (self.k(), self.d());
+        if k == 0 || d == 0 || k > 256 || d > 64 {
+            return Err(format!(
+                "{k} phases of {d} elements (1 to 256 phases of 1 to 64 elements)"
+            ));
+        }
+        let len = |name: &str, v: &[f64], n: usize| {
+            if v.len() != n {
+                Err(format!("{name} has {} values, {n} expected", v.len()))
+            } else if v.iter().any(|x| !x.is_finite()) {
+                Err(format!("{name} holds a value that is not a finite number"))
+            } else {
+                Ok(())
+            }
+        };
+        let weights = |w: &[f64]| {
+            len("weights", w, k)?;
+            if w.iter().any(|&x| x < 0.0) || (w.iter().sum::<f64>() - 1.0).abs() > 1e-3 {
+                return Err("the weights are negative or do not sum to 1".to_string());
+            }
+            Ok(())
+        };
+        match self {
+            Clusters::Kmeans { model, variance } => {
+                len("centroids", &model.centroids, k * d)?;
+                if !(variance.is_finite() && *variance > 0.0) {
+                    return Err(format!("the noise variance is {variance}, not positive"));
+                }
+            }
+            Clusters::Gmm { model } => {
+                weights(&model.weights)?;
+                len("means", &model.means, k * d)?;
+                len("covariances", &model.covariances, k * d * d)?;
+            }
+            Clusters::Poisson { model } => {
+                weights(&model.weights)?;
+                len("rates", &model.rates, k * d)?;
+                for (c, r) in model.rates.chunks_exact(d).enumerate() {
+                    if r.iter().any(|&x| x < 0.0) {
+                        return Err(format!("phase {} has a negative rate", c + 1));
+                    }
+                    if r.iter().all(|&x| x <= poisson::MIN_RATE) {
+                        return Err(format!(
+                            "phase {} has no counts in any element (all rates 0)",
+                            c + 1
+                        ));
+                    }
+                }
+            }
+        }
+        Ok(())
+    }
+
     /// Feature dimensions.
     pub fn d(&self) -> usize {
         match self {

@@ -313,7 +313,29 @@ pub fn fit(f: &Features, params: &ValidClusterParams) -> Result<Fit> {
         PhaseCount::Fixed(k) => k,
         PhaseCount::Auto { .. } => 1,
     };
-    if n == 0 || !distinct_rows(&rows, d, need) {
+    if n == 0 {
+        let none = f
+            .counts
+            .maps()
+            .iter()
+            .all(|m| m.counts.iter().all(|&c| c == 0.0));
+        return Err(if none {
+            Error::options(
+                "the field has no non-empty pixels: every map is zero everywhere",
+                "check the export: the maps must hold the counts of each pixel",
+            )
+        } else {
+            Error::options(
+                format!(
+                    "the field has no non-empty pixels: none has as many total counts as the \
+                     empty-pixel threshold ({:.4e}), so every pixel was taken for a pore",
+                    f.min_counts_used
+                ),
+                "lower --min-counts (or leave it out: the default is 15 % of the median total)",
+            )
+        });
+    }
+    if !distinct_rows(&rows, d, need) {
         return Err(Error::options(
             format!(
                 "the field has {n} non-empty pixels with fewer than {need} distinct values, \

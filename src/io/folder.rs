@@ -18,6 +18,22 @@ pub(crate) fn is_bse_name(name: &str) -> bool {
     name[..end].eq_ignore_ascii_case("bse")
 }
 
+/// The first file of a field the folder holds, if any: an element map or a `field.toml`
+/// (so that no command writes into or replaces a user's field).
+pub fn field_file_in(dir: &Path) -> Option<String> {
+    let mut names: Vec<String> = std::fs::read_dir(dir)
+        .ok()?
+        .flatten()
+        .map(|e| e.file_name().to_string_lossy().into_owned())
+        .collect();
+    names.sort();
+    names.into_iter().find(|name| {
+        name == SIDECAR_NAME
+            || (RasterFormat::from_path(Path::new(name)).is_some()
+                && parse_map_name(name).is_some())
+    })
+}
+
 /// What a maps folder holds, before any image is decoded.
 pub(crate) struct Listing {
     /// Element maps: file, element, line from the name or the sidecar.
@@ -40,6 +56,14 @@ pub(super) fn load(dir: &Path, limits: &Limits) -> Result<LoadedField> {
         metadata,
         warnings,
     } = list(dir)?;
+    let sizes = map_files
+        .iter()
+        .map(|(path, _, _)| super::raster::probe_size(path, limits))
+        .collect::<Result<Vec<_>>>()?;
+    let total = sizes
+        .iter()
+        .fold(0u64, |a, &(w, h)| a.saturating_add(w.saturating_mul(h)));
+    super::raster::check_field_budget(dir, sizes.len() as u64, total, limits)?;
     let rasters: Vec<_> = map_files
         .par_iter()
         .map(|(path, _, _)| read_raster(path, limits))
@@ -143,12 +167,7 @@ pub(crate) fn list(dir: &Path) -> Result<Listing> {
         }
         match parse_map_name(name) {
             Some((e, line)) => map_files.push((path.clone(), e, line)),
-            None => skip(
-                &mut skipped,
-                name,
-                "name does not start with an element symbol (symbols are case-sensitive: \
-                 `Se` is selenium, `SE` is not an element)",
-            ),
+            None => skip(&mut skipped, name, &super::not_a_map_reason(name)),
         }
     }
     if map_files.is_empty() {

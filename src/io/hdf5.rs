@@ -34,9 +34,9 @@ pub(crate) fn looks_like_hdf5(path: &Path) -> bool {
     }
     let mut head = [0u8; 8];
     use std::io::Read;
-    std::fs::File::open(path)
-        .and_then(|mut f| f.read_exact(&mut head))
-        .is_ok()
+    crate::guard::open_regular(path, "field")
+        .ok()
+        .is_some_and(|mut f| f.read_exact(&mut head).is_ok())
         && head == *b"\x89HDF\r\n\x1a\n"
 }
 
@@ -48,6 +48,7 @@ fn bad(path: &Path, problem: String) -> Error {
 }
 
 pub(super) fn load(path: &Path, limits: &Limits) -> Result<LoadedField> {
+    crate::guard::open_regular(path, "HDF5 field")?;
     let open = || File::open(path);
     guarded(path, || load_inner(path, open, limits))
 }
@@ -76,19 +77,33 @@ fn attr_f64(v: &AttrValue) -> Option<f64> {
     v.as_f64().or_else(|| v.as_i64().map(|x| x as f64))
 }
 
-fn metadata_from(attrs: &HashMap<String, AttrValue>, into: &mut FieldMetadata) {
-    if let Some(v) = attrs.get("pixel_size_um").and_then(attr_f64) {
-        into.pixel_size_um = Some(v);
+/// Reads the metadata attributes; an attribute of a known name that is not a number is
+/// refused (naming it), never ignored.
+fn metadata_from(
+    path: &Path,
+    attrs: &HashMap<String, AttrValue>,
+    into: &mut FieldMetadata,
+) -> Result<()> {
+    for (key, slot) in [
+        ("pixel_size_um", &mut into.pixel_size_um),
+        ("beam_kv", &mut into.beam_kv),
+        ("live_time_s", &mut into.live_time_s),
+        ("bse_pixel_size_um", &mut into.bse_pixel_size_um),
+    ] {
+        if let Some(a) = attrs.get(key) {
+            let v = attr_f64(a).ok_or_else(|| {
+                Error::input(
+                    path,
+                    format!("attribute `{key}` is not a number ({a:?})"),
+                    format!(
+                        "write `{key}` as a numeric scalar attribute, or leave it out if unknown"
+                    ),
+                )
+            })?;
+            *slot = Some(v);
+        }
     }
-    if let Some(v) = attrs.get("beam_kv").and_then(attr_f64) {
-        into.beam_kv = Some(v);
-    }
-    if let Some(v) = attrs.get("live_time_s").and_then(attr_f64) {
-        into.live_time_s = Some(v);
-    }
-    if let Some(v) = attrs.get("bse_pixel_size_um").and_then(attr_f64) {
-        into.bse_pixel_size_um = Some(v);
-    }
+    Ok(())
 }
 
 fn check_pixels(path: &Path, name: &str, shape: &[u64], limits: &Limits) -> Result<()> {
@@ -99,11 +114,15 @@ fn check_pixels(path: &Path, name: &str, shape: &[u64], limits: &Limits) -> Resu
             format!("dataset {name} is empty (shape {shape:?})"),
         ));
     }
-    if pixels
-        > limits
-            .max_pixels
-            .saturating_mul(if shape.len() == 3 { 128 } else { 1 })
-    {
+    if shape.len() == 3 {
+        super::raster::check_field_budget(path, shape[0], pixels, limits)?;
+    }
+    let per_map = if shape.len() == 3 {
+        shape[1].saturating_mul(shape[2])
+    } else {
+        pixels
+    };
+    if per_map > limits.max_pixels {
         return Err(Error::input(
             path,
             format!(
@@ -185,7 +204,7 @@ fn load_inner(
     let file = open().map_err(h5err)?;
     let root = file.root();
     let mut metadata = FieldMetadata::default();
-    metadata_from(&root.attrs().map_err(h5err)?, &mut metadata);
+    metadata_from(path, &root.attrs().map_err(h5err)?, &mut metadata)?;
     let root_datasets = root.datasets().map_err(h5err)?;
     let root_groups = root.groups().map_err(h5err)?;
     let mut skipped = Vec::new();
@@ -234,7 +253,7 @@ fn load_inner(
             ));
         }
         let attrs = ds.attrs().map_err(h5err)?;
-        metadata_from(&attrs, &mut metadata);
+        metadata_from(path, &attrs, &mut metadata)?;
         let names: Vec<String> = attrs
             .get("elements")
             .and_then(|a| a.as_strings())
@@ -284,13 +303,14 @@ fn load_inner(
         // Layout 1: a group of 2-D datasets.
         let (group, prefix) = if root_groups.iter().any(|g| g == "maps") {
             let g = file.group("maps").map_err(h5err)?;
-            metadata_from(&g.attrs().map_err(h5err)?, &mut metadata);
+            metadata_from(path, &g.attrs().map_err(h5err)?, &mut metadata)?;
             (g, "maps/")
         } else {
             (root, "")
         };
         let mut names = group.datasets().map_err(h5err)?;
         names.sort();
+        let (mut total, mut maps_seen) = (0u64, 0u64);
         for name in names {
             let full = format!("{prefix}{name}");
             if is_bse_name(&name) {
@@ -304,12 +324,15 @@ fn load_inner(
             let Some((element, line)) = parse_map_name(&name) else {
                 skipped.push(Skipped {
                     name: full,
-                    reason: "name is not an element symbol (symbols are case-sensitive)".into(),
+                    reason: super::not_a_map_reason(&name),
                 });
                 continue;
             };
             let ds = group.dataset(&name).map_err(h5err)?;
             let ((h, w), line) = map_dataset(path, &format!("/{full}"), &ds, &file, limits, line)?;
+            total = total.saturating_add((w * h) as u64);
+            maps_seen += 1;
+            super::raster::check_field_budget(path, maps_seen, total, limits)?;
             let data = ds.read_f32().map_err(h5err)?;
             if data.len() != h * w {
                 return Err(short(path));
@@ -416,10 +439,11 @@ fn unreadable(path: &Path, e: hdf5_pure::Error) -> Error {
 /// Lists an HDF5 field for reading by rows (see [`RowListing`]).
 pub(crate) fn list_rows(path: &Path, limits: &Limits) -> Result<RowListing> {
     let h5err = |e: hdf5_pure::Error| unreadable(path, e);
+    crate::guard::open_regular(path, "HDF5 field")?;
     let file = File::open_streaming(path).map_err(h5err)?;
     let root = file.root();
     let mut metadata = FieldMetadata::default();
-    metadata_from(&root.attrs().map_err(h5err)?, &mut metadata);
+    metadata_from(path, &root.attrs().map_err(h5err)?, &mut metadata)?;
     let root_datasets = root.datasets().map_err(h5err)?;
     if root_datasets.iter().any(|d| d == "maps") {
         return Err(Error::input(
@@ -431,7 +455,7 @@ pub(crate) fn list_rows(path: &Path, limits: &Limits) -> Result<RowListing> {
     let in_group = root.groups().map_err(h5err)?.iter().any(|g| g == "maps");
     let group = if in_group {
         let g = file.group("maps").map_err(h5err)?;
-        metadata_from(&g.attrs().map_err(h5err)?, &mut metadata);
+        metadata_from(path, &g.attrs().map_err(h5err)?, &mut metadata)?;
         g
     } else {
         root
@@ -515,6 +539,7 @@ pub(super) fn load_bse(
                 "export the file again",
             )
         };
+        crate::guard::open_regular(path, "HDF5 field")?;
         let file = File::open(path).map_err(h5err)?;
         let ds = file.dataset(dataset).map_err(h5err)?;
         let shape = checked_shape(path, dataset, &ds, file.file_size(), limits)?;

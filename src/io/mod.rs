@@ -4,7 +4,7 @@
 //! [`MapStack`], what was skipped and why, where a BSE image was found, and warnings.
 //! Only this module and the writers touch the disk.
 
-pub(crate) mod folder;
+pub mod folder;
 pub mod hdf5;
 pub mod raster;
 mod sidecar;
@@ -153,6 +153,92 @@ pub fn parse_map_name(name: &str) -> Option<(ElementInfo, Option<String>)> {
     Some((e, line))
 }
 
+/// A name with look-alike letters (Cyrillic, Greek, full-width) replaced by the Latin
+/// letters they resemble, and the first such letter, if the name holds any.
+pub fn latin_lookalike(name: &str) -> Option<(String, char)> {
+    const PAIRS: &[(char, char)] = &[
+        ('А', 'A'),
+        ('В', 'B'),
+        ('С', 'C'),
+        ('Е', 'E'),
+        ('Н', 'H'),
+        ('І', 'I'),
+        ('Ј', 'J'),
+        ('К', 'K'),
+        ('М', 'M'),
+        ('О', 'O'),
+        ('Р', 'P'),
+        ('Ѕ', 'S'),
+        ('Т', 'T'),
+        ('Х', 'X'),
+        ('а', 'a'),
+        ('с', 'c'),
+        ('е', 'e'),
+        ('і', 'i'),
+        ('ј', 'j'),
+        ('о', 'o'),
+        ('р', 'p'),
+        ('ѕ', 's'),
+        ('х', 'x'),
+        ('у', 'y'),
+        ('Α', 'A'),
+        ('Β', 'B'),
+        ('Ε', 'E'),
+        ('Ζ', 'Z'),
+        ('Η', 'H'),
+        ('Ι', 'I'),
+        ('Κ', 'K'),
+        ('Μ', 'M'),
+        ('Ν', 'N'),
+        ('Ο', 'O'),
+        ('Ρ', 'P'),
+        ('Τ', 'T'),
+        ('Υ', 'Y'),
+        ('Χ', 'X'),
+        ('ο', 'o'),
+        ('ν', 'v'),
+    ];
+    let mut first = None;
+    let latin: String = name
+        .chars()
+        .map(|c| {
+            let l = PAIRS
+                .iter()
+                .find(|(a, _)| *a == c)
+                .map(|(_, b)| *b)
+                .or_else(|| {
+                    // Full-width forms U+FF01..U+FF5E are ASCII shifted by 0xFEE0.
+                    (('\u{FF01}'..='\u{FF5E}').contains(&c))
+                        .then(|| char::from_u32(c as u32 - 0xFEE0))
+                        .flatten()
+                });
+            if let Some(l) = l {
+                first.get_or_insert(c);
+                l
+            } else {
+                c
+            }
+        })
+        .collect();
+    first.map(|c| (latin, c))
+}
+
+/// Why a file name is not a map name, with the element meant when the name uses a
+/// look-alike letter.
+pub fn not_a_map_reason(name: &str) -> String {
+    if let Some((latin, c)) = latin_lookalike(name) {
+        if let Some((e, _)) = parse_map_name(&latin) {
+            return format!(
+                "not an element symbol; did you mean {}? (the name holds '{c}', U+{:04X}, which looks like a Latin letter but is not one; rename the file)",
+                e.symbol, c as u32
+            );
+        }
+    }
+    "name does not start with an element symbol (symbols are case-sensitive: `Se` is \
+     selenium, `SE` is not an element)"
+        .to_string()
+}
+
 /// `K`, `Ka`, `Ka1`, `Kb`, `L`, `La`, `La1`, `Lb1`, `M`, `Ma`, ... (α/β spelled as a/b).
 fn looks_like_line(t: &str) -> bool {
     let mut c = t.chars();
@@ -179,5 +265,19 @@ mod tests {
         assert_eq!(sym("bse_1.tif"), None);
         assert_eq!(sym("Image1.png"), None);
         assert_eq!(sym("fe.png"), None);
+    }
+
+    #[test]
+    fn look_alike_letters_are_named_with_the_element_meant() {
+        // Cyrillic small ie (U+0435) in place of the Latin e.
+        let r = not_a_map_reason("F\u{0435}.png");
+        assert!(
+            r.contains("did you mean Fe?") && r.contains("U+0435"),
+            "{r}"
+        );
+        // Greek capital omicron (U+039F) for O; full-width S (U+FF33) for S.
+        assert!(not_a_map_reason("\u{039F}_Ka.png").contains("did you mean O?"));
+        assert!(not_a_map_reason("\u{FF33}i.tif").contains("did you mean Si?"));
+        assert!(!not_a_map_reason("Image1.png").contains("did you mean"));
     }
 }

@@ -23,6 +23,15 @@ impl Limits {
     pub const DEFAULT_MAX_PIXELS: u64 = 300_000_000;
 }
 
+impl Limits {
+    /// Largest number of values (pixels × maps) of one field together, and of its maps
+    /// and BSE image together: four maps at the per-map limit (4.8 GB as 32-bit values by
+    /// default). Checked from the headers, before any map is decoded.
+    pub fn max_field_values(&self) -> u64 {
+        self.max_pixels.saturating_mul(4)
+    }
+}
+
 impl Default for Limits {
     fn default() -> Self {
         Limits {
@@ -92,29 +101,69 @@ fn check_size(path: &Path, width: u64, height: u64, limits: &Limits) -> Result<(
     Ok(())
 }
 
-/// Reads a whole file, refusing files far larger than any image within the limits.
+/// Reads a whole file, refusing anything but a regular file and files far larger than any
+/// image within the limits.
 fn read_bytes(path: &Path, limits: &Limits) -> Result<Vec<u8>> {
-    let meta = std::fs::metadata(path)
-        .map_err(|e| Error::input(path, format!("cannot be read: {e}"), "check the path"))?;
     // Uncompressed 64-bit samples plus generous room for headers.
     let max_bytes = limits.max_pixels.saturating_mul(8).saturating_add(1 << 20);
-    if meta.len() > max_bytes {
-        return Err(Error::input(
-            path,
-            format!(
-                "is {} bytes, more than any image within the limits",
-                meta.len()
-            ),
-            "raise the limit with --max-pixels if the image really is that large",
-        ));
-    }
-    std::fs::read(path).map_err(|e| {
+    crate::guard::read_regular(path, "image", max_bytes).map_err(|e| {
+        if e.problem.starts_with("is larger than") {
+            Error::input(
+                path,
+                "is larger than any image within the limits",
+                "raise the limit with --max-pixels if the image really is that large",
+            )
+        } else {
+            e
+        }
+    })
+}
+
+/// Width and height declared by a PNG or TIFF file's header, read without decoding the
+/// image (for the field's memory budget), checked against the per-map limit.
+pub fn probe_size(path: &Path, limits: &Limits) -> Result<(u64, u64)> {
+    let format = RasterFormat::from_path(path).ok_or_else(|| {
         Error::input(
             path,
-            format!("cannot be read: {e}"),
-            "check the file's permissions",
+            "is not a PNG or TIFF file (by its extension)",
+            "give maps as .png, .tif or .tiff",
         )
-    })
+    })?;
+    let file = std::io::BufReader::new(crate::guard::open_regular(path, "image")?);
+    let (w, h) = match format {
+        RasterFormat::Png => {
+            let mut dec = png::Decoder::new(file);
+            let info = dec
+                .read_header_info()
+                .map_err(|e| corrupt(path, "PNG", e))?;
+            (info.width, info.height)
+        }
+        RasterFormat::Tiff => tiff::decoder::Decoder::new(file)
+            .and_then(|mut d| d.dimensions())
+            .map_err(|e| corrupt(path, "TIFF", e))?,
+    };
+    check_size(path, u64::from(w), u64::from(h), limits)?;
+    Ok((u64::from(w), u64::from(h)))
+}
+
+/// Refuses a field whose `maps` maps together hold more values (`total`, from their
+/// declared sizes) than `limits` allow.
+pub fn check_field_budget(field: &Path, maps: u64, total: u64, limits: &Limits) -> Result<()> {
+    if total > limits.max_field_values() {
+        return Err(Error::input(
+            field,
+            format!(
+                "holds {} values in its {} maps (about {} GB in memory), above the limit of {} values for one field",
+                total,
+                maps,
+                total.saturating_mul(4).div_ceil(1_000_000_000),
+                limits.max_field_values()
+            ),
+            "bin the maps on export, label the field strip by strip with `modalmap apply --stream`, \
+             or raise --max-pixels (the limit is four times it) if the machine has the memory",
+        ));
+    }
+    Ok(())
 }
 
 /// Decodes a PNG or TIFF file to one channel of `f32`.
@@ -349,17 +398,27 @@ pub fn write_png_rgb(path: &Path, width: usize, height: usize, rgb: &[u8]) -> Re
     )
 }
 
+/// A 16-bit grayscale PNG in memory.
+pub fn encode_png_u16(width: usize, height: usize, data: &[u16]) -> Vec<u8> {
+    let bytes: Vec<u8> = data.iter().flat_map(|v| v.to_be_bytes()).collect();
+    encode_gray(width, height, png::BitDepth::Sixteen, &bytes)
+}
+
 /// An 8-bit grayscale PNG in memory (for images embedded in a page).
 pub fn encode_png_u8(width: usize, height: usize, data: &[u8]) -> Vec<u8> {
+    encode_gray(width, height, png::BitDepth::Eight, data)
+}
+
+fn encode_gray(width: usize, height: usize, depth: png::BitDepth, bytes: &[u8]) -> Vec<u8> {
     let mut out = Vec::new();
     {
         let mut enc = png::Encoder::new(&mut out, width as u32, height as u32);
         enc.set_color(png::ColorType::Grayscale);
-        enc.set_depth(png::BitDepth::Eight);
+        enc.set_depth(depth);
         enc.set_compression(png::Compression::Fast);
         // Writing into memory cannot fail for a buffer of the right size.
         if let Ok(mut w) = enc.write_header() {
-            let _ = w.write_image_data(data);
+            let _ = w.write_image_data(bytes);
         }
     }
     out

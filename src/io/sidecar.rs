@@ -40,13 +40,8 @@ pub struct FieldSidecar {
 impl FieldSidecar {
     /// Reads and checks a sidecar file.
     pub fn read(path: &Path) -> Result<FieldSidecar> {
-        let text = std::fs::read_to_string(path).map_err(|e| {
-            Error::input(
-                path,
-                format!("cannot be read as text: {e}"),
-                "the field metadata file must be UTF-8 TOML",
-            )
-        })?;
+        let text =
+            crate::guard::read_text(path, "field metadata file", crate::guard::MAX_TEXT_BYTES)?;
         Self::parse(path, &text)
     }
 

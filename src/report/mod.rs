@@ -15,7 +15,7 @@ use std::collections::BTreeMap;
 use serde::{Deserialize, Serialize};
 use sha2::{Digest, Sha256};
 
-pub use output::{prepare_output, OutputDir};
+pub use output::{prepare_output, write_file_atomically, OutputDir, Scratch};
 
 use crate::cluster::select::{CurvePoint, PhaseCount};
 use crate::cluster::simplify::Simplification;
@@ -197,14 +197,29 @@ pub fn sha256_hex(bytes: &[u8]) -> String {
 
 /// SHA-256 of a file's bytes.
 pub fn hash_file(path: &std::path::Path) -> Result<String> {
-    let bytes = std::fs::read(path).map_err(|e| {
-        Error::input(
-            path,
-            format!("cannot be read for hashing: {e}"),
-            "check the file",
-        )
-    })?;
-    Ok(sha256_hex(&bytes))
+    use sha2::Digest;
+    let mut file = crate::guard::open_regular(path, "input file")?;
+    let mut hasher = sha2::Sha256::new();
+    let mut buf = vec![0u8; 1 << 20];
+    loop {
+        use std::io::Read;
+        let n = file.read(&mut buf).map_err(|e| {
+            Error::input(
+                path,
+                format!("cannot be read for hashing: {e}"),
+                "check the file",
+            )
+        })?;
+        if n == 0 {
+            break;
+        }
+        hasher.update(&buf[..n]);
+    }
+    Ok(hasher
+        .finalize()
+        .iter()
+        .map(|b| format!("{b:02x}"))
+        .collect())
 }
 
 /// What a labelled field hands to the report: its table and labels, how the phase count
