@@ -1,9 +1,8 @@
 //! The HTML report in a real browser: headless Chromium (Debian's chromium and
-//! chromium-driver; `.ci/run` installs them) driven through chromedriver's WebDriver
-//! protocol (W3C WebDriver, https://www.w3.org/TR/webdriver2/). The page must render:
-//! a sane height, every image decoded (naturalWidth > 0), one table row per phase, the
-//! plots present, and no errors on the console. Without Chromium the test fails and says
-//! why; MODALMAP_SKIP_BROWSER=1 skips it knowingly.
+//! chromium-driver, which the test installs when they are missing) driven through
+//! chromedriver's WebDriver protocol (W3C WebDriver, https://www.w3.org/TR/webdriver2/).
+//! The page must render: a sane height, every image decoded (naturalWidth > 0), one table
+//! row per phase, the plots present, and no errors on the console.
 
 mod common;
 
@@ -39,9 +38,7 @@ fn start_driver() -> Driver {
         .stdout(Stdio::null())
         .stderr(Stdio::null())
         .spawn()
-        .expect(
-            "chromedriver runs (install Debian's chromium and chromium-driver, as .ci/run does)",
-        );
+        .expect("chromedriver runs");
     // The driver is killed and waited for when it drops, whatever happens next.
     let d = Driver {
         child,
@@ -98,13 +95,9 @@ fn open(page: &Path, width: u32, height: u32, profile: &Path) -> (String, Driver
 
 #[test]
 fn report_renders_in_headless_chromium() {
-    if std::env::var_os("MODALMAP_SKIP_BROWSER").is_some() {
-        eprintln!("SKIPPED: the browser test (MODALMAP_SKIP_BROWSER is set)");
-        return;
-    }
-    assert!(
-        Path::new("/usr/bin/chromium").exists(),
-        "Chromium is not installed: install Debian's chromium and chromium-driver (.ci/run does), or set MODALMAP_SKIP_BROWSER=1 to skip knowingly"
+    common::provide::provide(
+        &["chromium", "chromedriver"],
+        &["chromium", "chromium-driver"],
     );
     let tmp = tempfile::tempdir().unwrap();
     let out = tmp.path().join("out");

@@ -3,6 +3,7 @@
 #![allow(dead_code)]
 
 pub mod fields;
+pub mod provide;
 
 /// Agreement of predicted labels with true labels (both 0 = void/unassigned).
 pub struct Score {

@@ -12,7 +12,7 @@ BIN=$(readlink -f "$1")
 HERE=$(cd "$(dirname "$0")" && pwd)
 fail() { echo "slurm test: $*" >&2; exit 1; }
 for c in munged slurmctld slurmd sbatch sinfo; do
-    command -v "$c" >/dev/null || fail "$c not found: install Debian's slurm-wlm and munge (.ci/run does)"
+    command -v "$c" >/dev/null || fail "$c not found: install Debian's slurm-wlm and munge (tests/slurm.rs does as root)"
 done
 [ "$(id -u)" = 0 ] || fail "needs root to start munged and slurmd"
 
