@@ -16,7 +16,7 @@ use serde::{Deserialize, Serialize};
 
 use crate::advisor::{self, Advice};
 use crate::chem::quant::{
-    self, calibrate, from_counts, quantify, Background, CalibrationError, KFactors, Oxygen,
+    calibrate, from_counts, quantify, BackgroundRule, CalibrationError, KFactors, Oxygen,
     PhaseCounts, Quantification, Rules, Standard,
 };
 use crate::chem::{element, parse_formula, Composition, ElementInfo};
@@ -486,19 +486,20 @@ pub fn characterise_with(
     let calibrated_basis = opts.kfile.is_some() || !opts.calibrations.is_empty();
 
     // Sums over interior pixels; widen the clearance to half the X-ray range when known.
-    let background_of =
-        |sums: &[PhaseCounts], eligible: &[bool], k: &[f64]| match opts.given.background {
-            BackgroundMode::PoorestPhase => Background::lowest_phase(sums, eligible, k),
-            BackgroundMode::None => Background::none(infos.len()),
-        };
     let run = |sums: &[PhaseCounts], eligible: &[bool], kf: &KFactors| -> Quantification {
+        let background = match opts.given.background {
+            BackgroundMode::PoorestPhase => BackgroundRule::Fit {
+                eligible: eligible.to_vec(),
+            },
+            BackgroundMode::None => BackgroundRule::None,
+        };
         quantify(
             &infos,
             sums,
             &Rules {
                 k: kf.clone(),
                 oxygen: oxygen.clone(),
-                background: background_of(sums, eligible, &kf.k),
+                background,
             },
         )
     };
@@ -659,7 +660,7 @@ pub fn characterise_with(
     // Recompute with the (possibly widened) sums and the factors.
     let q = run(&plain, &eligible, &kf);
     let matches = match_all(&q, calibrated_basis);
-    let background = background_of(&plain, &eligible, &kf.k);
+    let background = &q.background;
 
     // Names: calibration phases keep the name they were given; others take their match,
     // unless their composition is mixed with their neighbours'.
@@ -701,17 +702,29 @@ pub fn characterise_with(
         .iter()
         .enumerate()
         .map(|(i, e)| {
-            let s = match (opts.given.background, background.from[i]) {
+            let free: Vec<String> = background.free[i]
+                .iter()
+                .map(|&b| format!("{} ({})", table.phases[b].id, table.phases[b].name))
+                .collect();
+            let s = match (opts.given.background, background.per_z[i]) {
                 (BackgroundMode::None, _) => "none subtracted (--background none)".to_string(),
-                (_, Some(b)) => format!(
-                    "continuum from phase {} ({}), taken as free of {}, scaled by mean atomic number",
-                    table.phases[b].id, table.phases[b].name, e.symbol
+                (_, Some(c)) => format!(
+                    "continuum {c:.4} counts per pixel per unit mean Z (Kramers: proportional to Z), fitted on phase{} {} judged free of {}; elements below Currie's critical level are reported as not detected",
+                    if free.len() > 1 { "s" } else { "" },
+                    free.join(", "),
+                    e.symbol
                 ),
-                (_, None) => format!(
-                    "none subtracted: no phase has under {:.0} % of the richest phase's counts or under {:.0} wt% of it",
-                    100.0 * quant::FREE_SHARE,
-                    100.0 * quant::FREE_WT
-                ),
+                (_, None) => {
+                    notes.push(format!(
+                        "{}: no phase is free of it (every phase's counts exceed a continuum), so its continuum cannot be measured on this field: none is subtracted, its amounts are over-estimated by the continuum under its line and its detection is not tested{}",
+                        e.symbol,
+                        if e.symbol == "O" { "; for oxides and silicates, --oxygen stoichiometry avoids this" } else { "" }
+                    ));
+                    format!(
+                        "none subtracted: no phase is free of {} (see the notes)",
+                        e.symbol
+                    )
+                }
             };
             (e.symbol.to_string(), s)
         })

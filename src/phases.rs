@@ -18,7 +18,7 @@ use serde::{Deserialize, Serialize};
 use statrs::distribution::{ContinuousCDF, StudentsT};
 
 use crate::chem::quant::{
-    quantify, Background, KFactors, Oxygen, PhaseComposition, PhaseCounts, Rules,
+    quantify, BackgroundRule, KFactors, Oxygen, PhaseComposition, PhaseCounts, Rules,
 };
 use crate::chem::ElementInfo;
 use crate::refine::Segmentation;
@@ -278,7 +278,7 @@ pub fn table_from_sums(
         &Rules {
             k: KFactors::unit(d),
             oxygen: Oxygen::Measured,
-            background: Background::none(d),
+            background: BackgroundRule::None,
         },
     );
     let mut t_quantile = f64::NAN;
@@ -628,7 +628,7 @@ pub fn component_sizes(labels: &[u16], w: usize, h: usize) -> Vec<(u16, usize)> 
 mod tests {
     use super::*;
 
-    /// ASTM E562 worked example (REFERENCES.md §7, computed there): five fields at 10, 12,
+    /// ASTM E562 worked example (references.md §7, computed there): five fields at 10, 12,
     /// 8, 11, 9 % give mean 10.0, s 1.581, t 2.776, 95 % CI ± 1.963, %RA 19.6.
     #[test]
     fn student_t_interval_matches_the_worked_example() {
@@ -640,7 +640,7 @@ mod tests {
         assert!((100.0 * half / m - 19.6).abs() < 0.05);
     }
 
-    /// Two-sided 95 % t quantiles (REFERENCES.md §7, from scipy): n = 25 tiles → 2.064.
+    /// Two-sided 95 % t quantiles (references.md §7, from scipy): n = 25 tiles → 2.064.
     #[test]
     fn t_quantile_for_25_tiles() {
         let v: Vec<f64> = (0..25).map(|i| f64::from(i % 3)).collect();

@@ -95,53 +95,159 @@ pub enum Oxygen {
     },
 }
 
-/// The continuum background of each mapped element.
+/// Relative standard deviation allowed between a phase's counts and the continuum
+/// model (level ∝ mean Z) when judging the phase free of an element: the proportionality
+/// is Kramers' law for a pure element, and the mass-fraction mean Z of a compound follows
+/// it only approximately (common practice, no source).
+pub const CONTINUUM_MODEL_REL_SD: f64 = 0.05;
+
+/// Phases judged free of an element support the continuum fit only if their mean atomic
+/// numbers differ by this ratio at least, so that the proportionality to Z is really
+/// tested (common practice, no source).
+pub const CONTINUUM_Z_SPAN: f64 = 1.10;
+
+/// How the continuum under the elements' lines is handled.
+#[derive(Debug, Clone, PartialEq)]
+pub enum BackgroundRule {
+    /// None is subtracted: the maps hold net counts.
+    None,
+    /// Fitted per element over the phases free of it (only phases marked eligible, whose
+    /// sums come from interior pixels, can serve).
+    Fit {
+        /// Per phase: may serve to fit the continuum.
+        eligible: Vec<bool>,
+    },
+}
+
+/// The continuum under each mapped element's line, as found.
+///
+/// The continuum (bremsstrahlung) under a line grows in proportion to the atomic number
+/// of the material (Kramers 1923); for a compound the mass-fraction mean Z stands for it.
+/// Per element, the level per unit Z is fitted over the phases whose counts it explains
+/// alone (Poisson counts plus [`CONTINUUM_MODEL_REL_SD`] for the model), iterated with
+/// the compositions that set each phase's mean Z.
 #[derive(Debug, Clone, PartialEq)]
 pub struct Background {
-    /// Per mapped element: the phase taken to be free of it (index into the phases), if
-    /// any.
-    pub from: Vec<Option<usize>>,
+    /// Whether a continuum is subtracted at all (false: the maps hold net counts).
+    pub subtracted: bool,
+    /// Per mapped element: continuum counts per pixel per unit mean Z, when it could be
+    /// measured.
+    pub per_z: Vec<Option<f64>>,
+    /// Per mapped element: the phases judged free of it, whose counts fixed the level.
+    pub free: Vec<Vec<usize>>,
 }
 
 impl Background {
     /// No background subtracted.
     pub fn none(n: usize) -> Background {
         Background {
-            from: vec![None; n],
+            subtracted: false,
+            per_z: vec![None; n],
+            free: vec![Vec::new(); n],
         }
     }
 
-    /// Finds, per element, the phase with the fewest counts of it, and takes it to be
-    /// free of the element if its counts are under [`FREE_SHARE`] of the richest phase's,
-    /// or its gross counts weighted by the factors `k` make under [`FREE_WT`] of it
-    /// (elements with a `NaN` factor are left out of that share). Only phases marked
-    /// `eligible` (sums over interior pixels, not mixed with neighbours) can serve.
-    pub fn lowest_phase(phases: &[PhaseCounts], eligible: &[bool], k: &[f64]) -> Background {
-        let from = (0..k.len())
-            .map(|e| {
-                let usable = || {
-                    phases
-                        .iter()
-                        .enumerate()
-                        .filter(|(i, p)| p.pixels > 0 && eligible[*i])
-                };
-                let (lo, plo) = usable().min_by(|a, b| a.1.rate(e).total_cmp(&b.1.rate(e)))?;
-                let hi = usable().map(|(_, p)| p.rate(e)).fold(0.0, f64::max);
-                let weighted: f64 = (0..k.len())
-                    .filter(|&j| k[j].is_finite())
-                    .map(|j| k[j] * plo.rate(j))
-                    .sum();
-                let share = if k[e].is_finite() && weighted > 0.0 {
-                    k[e] * plo.rate(e) / weighted
-                } else {
-                    1.0
-                };
-                let poor = plo.rate(e) <= FREE_SHARE * hi || share <= FREE_WT;
-                (phases.len() > 1 && hi > 0.0 && poor).then_some(lo)
-            })
-            .collect();
-        Background { from }
+    /// Expected continuum counts per pixel of element `e` in a phase of mean Z `zbar`.
+    pub fn rate(&self, e: usize, zbar: f64) -> f64 {
+        self.per_z[e].map_or(0.0, |c| c * zbar)
     }
+
+    /// Fits the continuum of every element given each phase's mean Z (`k` weighs the
+    /// counts for the share test of a lone free phase; `NaN` factors are left out).
+    pub fn fit(phases: &[PhaseCounts], eligible: &[bool], zbar: &[f64], k: &[f64]) -> Background {
+        let n = k.len();
+        let mut per_z = vec![None; n];
+        let mut free = vec![Vec::new(); n];
+        for e in 0..n {
+            if let Some((c, f)) = fit_one(phases, eligible, zbar, k, e) {
+                per_z[e] = Some(c);
+                free[e] = f;
+            }
+        }
+        Background {
+            subtracted: true,
+            per_z,
+            free,
+        }
+    }
+}
+
+/// Whether `sum` counts over `pixels` pixels of mean Z `zbar` are explained by a
+/// continuum of `c` counts per pixel per unit Z alone.
+fn continuum_alone(sum: f64, pixels: usize, zbar: f64, c: f64) -> bool {
+    let mu = c * zbar * pixels as f64;
+    let sd = (mu + (CONTINUUM_MODEL_REL_SD * mu).powi(2)).sqrt();
+    sum - mu <= 3.0 * sd
+}
+
+/// The continuum level of element `e` and the phases free of it (see [`Background`]).
+fn fit_one(
+    phases: &[PhaseCounts],
+    eligible: &[bool],
+    zbar: &[f64],
+    k: &[f64],
+    e: usize,
+) -> Option<(f64, Vec<usize>)> {
+    let cand: Vec<usize> = (0..phases.len())
+        .filter(|&p| eligible[p] && phases[p].pixels > 0 && zbar[p] > 0.0)
+        .collect();
+    if cand.len() < 2 {
+        return None; // one phase alone has no reference
+    }
+    let level = |set: &[usize]| {
+        let counts: f64 = set.iter().map(|&p| phases[p].sums[e]).sum();
+        let exposure: f64 = set.iter().map(|&p| phases[p].pixels as f64 * zbar[p]).sum();
+        counts / exposure
+    };
+    let lowest = *cand.iter().min_by(|&&a, &&b| {
+        (phases[a].rate(e) / zbar[a]).total_cmp(&(phases[b].rate(e) / zbar[b]))
+    })?;
+    let mut free = vec![lowest];
+    let mut c = level(&free);
+    for _ in 0..20 {
+        let next: Vec<usize> = cand
+            .iter()
+            .copied()
+            .filter(|&p| continuum_alone(phases[p].sums[e], phases[p].pixels, zbar[p], c))
+            .collect();
+        if next.is_empty() || next == free {
+            break;
+        }
+        free = next;
+        c = level(&free);
+    }
+    let (zlo, zhi) = free.iter().fold((f64::MAX, 0.0f64), |(lo, hi), &p| {
+        (lo.min(zbar[p]), hi.max(zbar[p]))
+    });
+    if free.len() >= 2 && zhi >= CONTINUUM_Z_SPAN * zlo {
+        return Some((c, free));
+    }
+    // A lone free phase (or several of one mean Z): trusted only if it is clearly poor
+    // in the element, else its counts may be the element itself.
+    let p = lowest;
+    let hi = cand.iter().map(|&q| phases[q].rate(e)).fold(0.0, f64::max);
+    let weighted: f64 = (0..k.len())
+        .filter(|&j| k[j].is_finite())
+        .map(|j| k[j] * phases[p].rate(j))
+        .sum();
+    let share = if k[e].is_finite() && weighted > 0.0 {
+        k[e] * phases[p].rate(e) / weighted
+    } else {
+        1.0
+    };
+    let poor = phases[p].rate(e) <= FREE_SHARE * hi || share <= FREE_WT;
+    (hi > 0.0 && poor).then(|| (level(&[p]), vec![p]))
+}
+
+/// Currie's (1968) critical level and detection limit, in counts, for `b` expected
+/// background counts whose estimate has the variance `var_b` (5 % false positives and
+/// negatives): with σ₀² = B + var_b, L_C = 1.645 σ₀ and L_D = 2.71 + 3.29 σ₀. A net signal
+/// above L_C is detected; L_D is the smallest true signal detected reliably, the limit to
+/// report. Paired observations (var_b = B) give Currie's L_C = 2.33 √B and
+/// L_D = 2.71 + 4.65 √B.
+pub fn currie(b: f64, var_b: f64) -> (f64, f64) {
+    let s0 = (b.max(0.0) + var_b.max(0.0)).sqrt();
+    (1.645 * s0, 2.71 + 3.29 * s0)
 }
 
 /// Composition of one phase over the output elements.
@@ -159,6 +265,12 @@ pub struct PhaseComposition {
     pub net_rate: Vec<f64>,
     /// Variance of `net_rate` from counting statistics.
     pub net_var: Vec<f64>,
+    /// Per output element: detected (net counts above Currie's critical level), or not
+    /// tested (no continuum measured for it; oxygen by stoichiometry). An element not
+    /// detected has `wt` and `at` 0 and is left out of the normalisation.
+    pub detected: Vec<bool>,
+    /// Per output element not detected: the detection limit, wt% (Currie's L_D).
+    pub limit_wt: Vec<Option<f64>>,
 }
 
 /// Compositions of every phase.
@@ -168,6 +280,8 @@ pub struct Quantification {
     pub elements: Vec<ElementInfo>,
     /// Per phase, in the order given.
     pub phases: Vec<PhaseComposition>,
+    /// The continuum as found.
+    pub background: Background,
 }
 
 /// Everything the calculation needs besides the counts.
@@ -178,7 +292,7 @@ pub struct Rules {
     /// Oxygen rule.
     pub oxygen: Oxygen,
     /// Continuum background.
-    pub background: Background,
+    pub background: BackgroundRule,
 }
 
 /// Output elements for `mapped` under an oxygen rule.
@@ -240,40 +354,84 @@ fn atom_fractions(out: &[ElementInfo], wt: &[f64]) -> Vec<f64> {
         .collect()
 }
 
+/// Variance of each element's continuum level per unit Z, from the counts it was fitted
+/// to.
+fn level_var(phases: &[PhaseCounts], background: &Background, zbar: &[f64]) -> Vec<f64> {
+    (0..background.per_z.len())
+        .map(|e| {
+            let f = &background.free[e];
+            let counts: f64 = f.iter().map(|&p| phases[p].sums[e]).sum();
+            let exposure: f64 = f.iter().map(|&p| phases[p].pixels as f64 * zbar[p]).sum();
+            if exposure > 0.0 {
+                counts.max(1.0) / exposure.powi(2)
+            } else {
+                0.0
+            }
+        })
+        .collect()
+}
+
 /// Net intensity (counts per pixel) of every mapped element in every phase, with its
-/// variance, given a mean atomic number per phase for the continuum scaling.
+/// variance (the counts' and the continuum level's), given each phase's mean Z.
 fn net_rates(
     phases: &[PhaseCounts],
     background: &Background,
     zbar: &[f64],
 ) -> Vec<(Vec<f64>, Vec<f64>)> {
+    let lv = level_var(phases, background, zbar);
     phases
         .iter()
         .enumerate()
         .map(|(p, pc)| {
             let n = pc.sums.len();
-            let mut net = vec![0.0; n];
-            let mut var = vec![0.0; n];
-            for e in 0..n {
-                net[e] = pc.rate(e);
-                var[e] = pc.rate_var(e);
-                if let Some(b) = background.from[e] {
-                    if b == p {
-                        // The phase the background is taken from is free of the element.
-                        net[e] = 0.0;
-                        continue;
-                    }
-                    let scale = if zbar[b] > 0.0 {
-                        zbar[p] / zbar[b]
-                    } else {
-                        1.0
-                    };
-                    net[e] -= scale * phases[b].rate(e);
-                    var[e] += scale * scale * phases[b].rate_var(e);
-                }
-            }
+            let net: Vec<f64> = (0..n)
+                .map(|e| pc.rate(e) - background.rate(e, zbar[p]))
+                .collect();
+            let var: Vec<f64> = (0..n)
+                .map(|e| pc.rate_var(e) + zbar[p].powi(2) * lv[e])
+                .collect();
             (net, var)
         })
+        .collect()
+}
+
+/// Per phase and mapped element: detected (above Currie's critical level, with the
+/// continuum's own uncertainty: the fit's counts and [`CONTINUUM_MODEL_REL_SD`]), and the
+/// detection limit in counts per pixel. A phase judged free of an element does not hold
+/// it. Elements without a measured continuum count as detected (not tested) when a
+/// continuum is subtracted; on net-count maps any counts are a detection.
+fn detection(
+    phases: &[PhaseCounts],
+    background: &Background,
+    zbar: &[f64],
+) -> Vec<Vec<(bool, f64)>> {
+    let lv = level_var(phases, background, zbar);
+    phases
+        .iter()
+        .enumerate()
+        .map(|(p, pc)| {
+            (0..pc.sums.len())
+                .map(|e| {
+                    let n = pc.pixels.max(1) as f64;
+                    let tested = !background.subtracted || background.per_z[e].is_some();
+                    let b = background.rate(e, zbar[p]) * n;
+                    let var_b =
+                        (zbar[p] * n).powi(2) * lv[e] + (CONTINUUM_MODEL_REL_SD * b).powi(2);
+                    let (lc, ld) = currie(b, var_b);
+                    let free = background.free[e].contains(&p);
+                    let detected = !tested || (!free && pc.sums[e] - b > lc);
+                    (detected, ld / n)
+                })
+                .collect()
+        })
+        .collect()
+}
+
+/// Net rates with the elements not detected set to 0.
+fn detected_only(net: &[f64], det: &[(bool, f64)]) -> Vec<f64> {
+    net.iter()
+        .zip(det)
+        .map(|(&x, &(d, _))| if d { x } else { 0.0 })
         .collect()
 }
 
@@ -286,81 +444,118 @@ fn mean_z(out: &[ElementInfo], wt: &[f64]) -> f64 {
 pub fn quantify(mapped: &[ElementInfo], phases: &[PhaseCounts], rules: &Rules) -> Quantification {
     let out = output_elements(mapped, &rules.oxygen);
     let n = mapped.len();
-    // Mean Z per phase for the continuum scaling: start from the gross counts, iterate.
+    let k = &rules.k.k;
+    let fractions = |net: &[f64]| mass_fractions(mapped, &out, net, k, &rules.oxygen);
+    let fit = |zbar: &[f64]| match &rules.background {
+        BackgroundRule::None => Background::none(n),
+        BackgroundRule::Fit { eligible } => Background::fit(phases, eligible, zbar, k),
+    };
+    // Mean Z per phase for the continuum: start from the gross counts, then iterate the
+    // continuum, the detections and the compositions together.
     let mut zbar: Vec<f64> = phases
         .iter()
         .map(|p| {
-            let rates: Vec<f64> = (0..n).map(|e| p.rate(e)).collect();
             mean_z(
                 &out,
-                &mass_fractions(mapped, &out, &rates, &rules.k.k, &rules.oxygen),
+                &fractions(&(0..n).map(|e| p.rate(e)).collect::<Vec<_>>()),
             )
         })
         .collect();
-    let mut nets = net_rates(phases, &rules.background, &zbar);
-    for _ in 0..4 {
+    let mut background = fit(&zbar);
+    let mut nets = net_rates(phases, &background, &zbar);
+    let mut det = detection(phases, &background, &zbar);
+    for _ in 0..6 {
         zbar = nets
             .iter()
-            .map(|(net, _)| {
-                mean_z(
-                    &out,
-                    &mass_fractions(mapped, &out, net, &rules.k.k, &rules.oxygen),
-                )
-            })
+            .zip(&det)
+            .map(|((net, _), d)| mean_z(&out, &fractions(&detected_only(net, d))))
             .collect();
-        nets = net_rates(phases, &rules.background, &zbar);
+        background = fit(&zbar);
+        nets = net_rates(phases, &background, &zbar);
+        det = detection(phases, &background, &zbar);
     }
     let compositions = nets
         .into_iter()
-        .map(|(net, var)| {
-            let f = |net: &[f64], k: &[f64]| {
-                let wt = mass_fractions(mapped, &out, net, k, &rules.oxygen);
-                let at = atom_fractions(&out, &wt);
-                (wt, at)
-            };
-            let (wt, at) = f(&net, &rules.k.k);
-            // First-order propagation with central differences, input by input.
-            let mut wt_var = vec![0.0; out.len()];
-            let mut at_var = vec![0.0; out.len()];
-            let mut add = |sd: f64, shifted: &dyn Fn(f64) -> (Vec<f64>, Vec<f64>)| {
-                if sd <= 0.0 || !sd.is_finite() {
-                    return;
-                }
-                let (wp, ap) = shifted(sd * 1e-3);
-                let (wm, am) = shifted(-sd * 1e-3);
-                for o in 0..out.len() {
-                    wt_var[o] += ((wp[o] - wm[o]) / 2e-3).powi(2);
-                    at_var[o] += ((ap[o] - am[o]) / 2e-3).powi(2);
-                }
-            };
-            for e in 0..n {
-                add(var[e].sqrt(), &|h| {
-                    let mut x = net.clone();
-                    x[e] += h;
-                    f(&x, &rules.k.k)
-                });
-                let k_sd = rules.k.k[e] * rules.k.rel_sd[e];
-                add(k_sd, &|h| {
-                    let mut k = rules.k.k.clone();
-                    k[e] += h;
-                    f(&net, &k)
-                });
-            }
-            let pct = |v: &[f64]| v.iter().map(|x| 100.0 * x).collect::<Vec<_>>();
-            let pct_sd = |v: &[f64]| v.iter().map(|x| 100.0 * x.sqrt()).collect::<Vec<_>>();
-            PhaseComposition {
-                wt: pct(&wt),
-                wt_sd: pct_sd(&wt_var),
-                at: pct(&at),
-                at_sd: pct_sd(&at_var),
-                net_rate: net,
-                net_var: var,
-            }
-        })
+        .zip(&det)
+        .map(|((net, var), d)| compose(mapped, &out, &net, &var, d, rules))
         .collect();
     Quantification {
         elements: out,
         phases: compositions,
+        background,
+    }
+}
+
+/// One phase's composition from its net rates, their variances and its detections.
+fn compose(
+    mapped: &[ElementInfo],
+    out: &[ElementInfo],
+    net: &[f64],
+    var: &[f64],
+    det: &[(bool, f64)],
+    rules: &Rules,
+) -> PhaseComposition {
+    let n = mapped.len();
+    let used = detected_only(net, det);
+    let f = |net: &[f64], k: &[f64]| {
+        let wt = mass_fractions(mapped, out, net, k, &rules.oxygen);
+        let at = atom_fractions(out, &wt);
+        (wt, at)
+    };
+    let (wt, at) = f(&used, &rules.k.k);
+    // First-order propagation with central differences, input by input (detected
+    // elements only: the others are reported as limits).
+    let mut wt_var = vec![0.0; out.len()];
+    let mut at_var = vec![0.0; out.len()];
+    let mut add = |sd: f64, shifted: &dyn Fn(f64) -> (Vec<f64>, Vec<f64>)| {
+        if sd <= 0.0 || !sd.is_finite() {
+            return;
+        }
+        let (wp, ap) = shifted(sd * 1e-3);
+        let (wm, am) = shifted(-sd * 1e-3);
+        for o in 0..out.len() {
+            wt_var[o] += ((wp[o] - wm[o]) / 2e-3).powi(2);
+            at_var[o] += ((ap[o] - am[o]) / 2e-3).powi(2);
+        }
+    };
+    for e in (0..n).filter(|&e| det[e].0) {
+        add(var[e].sqrt(), &|h| {
+            let mut x = used.clone();
+            x[e] += h;
+            f(&x, &rules.k.k)
+        });
+        let k_sd = rules.k.k[e] * rules.k.rel_sd[e];
+        add(k_sd, &|h| {
+            let mut k = rules.k.k.clone();
+            k[e] += h;
+            f(&used, &k)
+        });
+    }
+    // The limit of an element not detected: its share at a net rate of L_D.
+    let limit = |e: usize| {
+        let mut x = used.clone();
+        x[e] = det[e].1;
+        100.0 * f(&x, &rules.k.k).0[e]
+    };
+    let mut detected = vec![true; out.len()];
+    let mut limit_wt = vec![None; out.len()];
+    for e in 0..n {
+        if !det[e].0 && from_counts(&mapped[e], &rules.oxygen) {
+            detected[e] = false;
+            limit_wt[e] = Some(limit(e));
+        }
+    }
+    let pct = |v: &[f64]| v.iter().map(|x| 100.0 * x).collect::<Vec<_>>();
+    let pct_sd = |v: &[f64]| v.iter().map(|x| 100.0 * x.sqrt()).collect::<Vec<_>>();
+    PhaseComposition {
+        wt: pct(&wt),
+        wt_sd: pct_sd(&wt_var),
+        at: pct(&at),
+        at_sd: pct_sd(&at_var),
+        net_rate: net.to_vec(),
+        net_var: var.to_vec(),
+        detected,
+        limit_wt,
     }
 }
 
@@ -493,7 +688,7 @@ mod tests {
         s.iter().map(|x| element(x).unwrap()).collect()
     }
 
-    /// Cliff–Lorimer worked example (REFERENCES.md §8, computed there): I_A/I_B = 2.0 and
+    /// Cliff–Lorimer worked example (references.md §8, computed there): I_A/I_B = 2.0 and
     /// k_AB = 1.5 give C_A/C_B = 3, so C_A = 0.75 and C_B = 0.25.
     #[test]
     fn ratio_method_worked_example() {
@@ -509,7 +704,7 @@ mod tests {
                 reference: 1,
             },
             oxygen: Oxygen::Measured,
-            background: Background::none(2),
+            background: BackgroundRule::None,
         };
         let q = quantify(&mapped, &phases, &rules);
         assert!((q.phases[0].wt[0] - 75.0).abs() < 1e-9);
@@ -529,7 +724,7 @@ mod tests {
         let rules = Rules {
             k: KFactors::unit(2),
             oxygen: Oxygen::Measured,
-            background: Background::none(2),
+            background: BackgroundRule::None,
         };
         let q = quantify(&els(&["Fe", "Ni"]), &phases, &rules);
         let expected = 100.0 * ((nb * nb * na + na * na * nb) / (na + nb).powi(4)).sqrt();
@@ -538,7 +733,7 @@ mod tests {
     }
 
     /// Oxygen by stoichiometry recovers the formula's oxygen: Al2O3 from Al alone (Al³⁺)
-    /// gives Al 52.926 wt%, O 47.074 wt% (REFERENCES.md §6, computed from the formula).
+    /// gives Al 52.926 wt%, O 47.074 wt% (references.md §6, computed from the formula).
     #[test]
     fn oxygen_from_valences() {
         let mapped = els(&["Al"]);
@@ -551,7 +746,7 @@ mod tests {
             oxygen: Oxygen::Stoichiometry {
                 valences: vec![3.0],
             },
-            background: Background::none(1),
+            background: BackgroundRule::None,
         };
         let q = quantify(&mapped, &phases, &rules);
         assert_eq!(q.elements[1].symbol, "O");
@@ -591,7 +786,7 @@ mod tests {
         let rules = Rules {
             k,
             oxygen: Oxygen::Measured,
-            background: Background::none(2),
+            background: BackgroundRule::None,
         };
         let q = quantify(&mapped, &[counts("Cu3Sn")], &rules);
         let truth = parse_formula("Cu3Sn").unwrap().mass_fraction_of("Cu") * 100.0;
@@ -623,35 +818,102 @@ mod tests {
         );
     }
 
-    /// Continuum subtraction: a phase free of Cu sets the Cu background, scaled by mean Z.
+    /// Continuum subtraction: phases free of an element fix its level per unit mean Z
+    /// (Kramers 1923: the continuum is proportional to Z), which is subtracted from every
+    /// phase; a phase's counts of an element it lacks are reported as not detected, with
+    /// a limit.
     #[test]
-    fn background_from_the_poorest_phase() {
+    fn continuum_fitted_over_the_phases_free_of_each_element() {
+        // Pure Al, Fe and Ag (Z 13, 26, 47); each phase lacks the other two elements.
+        // Counts invented: peaks 60-80 counts per pixel, continuum 0.2 per pixel per unit Z.
+        let cont = |z: f64| 0.2 * z;
+        let pure = |el: usize, rate: f64, z: f64, n: usize| PhaseCounts {
+            pixels: n,
+            sums: (0..3)
+                .map(|e| n as f64 * (if e == el { rate } else { 0.0 } + cont(z)))
+                .collect(),
+        };
+        let phases = vec![
+            pure(1, 80.0, 26.0, 4000),
+            pure(2, 60.0, 47.0, 4000),
+            pure(0, 70.0, 13.0, 4000),
+        ];
+        let rules = Rules {
+            k: KFactors::unit(3),
+            oxygen: Oxygen::Measured,
+            background: BackgroundRule::Fit {
+                eligible: vec![true; 3],
+            },
+        };
+        let q = quantify(&els(&["Al", "Fe", "Ag"]), &phases, &rules);
+        // Al is in no phase but the third: its level is fitted on the first two.
+        assert_eq!(q.background.free[0], vec![0, 1]);
+        assert!((q.background.per_z[0].unwrap() - 0.2).abs() < 1e-9);
+        for (p, el) in [(0, 1), (1, 2), (2, 0)] {
+            assert!(
+                (q.phases[p].wt[el] - 100.0).abs() < 1e-9,
+                "{:?}",
+                q.phases[p]
+            );
+            for e in (0..3).filter(|&e| e != el) {
+                assert!(!q.phases[p].detected[e]);
+                let lim = q.phases[p].limit_wt[e].unwrap();
+                assert!(lim > 0.0 && lim < 5.0, "limit {lim}");
+            }
+        }
+        // A single phase has no reference: nothing is measured, nothing subtracted.
+        let one = quantify(
+            &els(&["Al", "Fe", "Ag"]),
+            &phases[..1],
+            &Rules {
+                background: BackgroundRule::Fit {
+                    eligible: vec![true],
+                },
+                ..rules.clone()
+            },
+        );
+        assert!(one.background.per_z.iter().all(Option::is_none));
+        assert!(one.phases[0].detected.iter().all(|&d| d));
+    }
+
+    /// Every phase holds the element (oxygen in a silicate rock): no level can be
+    /// measured, so nothing is subtracted and detection is not tested.
+    #[test]
+    fn no_continuum_invented_when_every_phase_holds_the_element() {
         let phases = vec![
             PhaseCounts {
-                pixels: 100,
-                sums: vec![4600.0, 150.0],
+                pixels: 1000,
+                sums: vec![50_000.0, 20_000.0],
             },
             PhaseCounts {
-                pixels: 100,
-                sums: vec![150.0, 3800.0],
+                pixels: 1000,
+                sums: vec![45_000.0, 30_000.0],
             },
         ];
-        let b = Background::lowest_phase(&phases, &[true, true], &[1.0, 1.0]);
-        assert_eq!(b.from, vec![Some(1), Some(0)]);
-        let rules = Rules {
-            k: KFactors::unit(2),
-            oxygen: Oxygen::Measured,
-            background: b,
-        };
-        let q = quantify(&els(&["Cu", "Sn"]), &phases, &rules);
-        assert_eq!(q.phases[0].wt[1], 0.0);
-        assert_eq!(q.phases[1].wt[0], 0.0);
-        assert!(
-            Background::lowest_phase(&phases[..1], &[true], &[1.0, 1.0])
-                .from
-                .iter()
-                .all(Option::is_none),
-            "one phase alone has no background reference"
+        let q = quantify(
+            &els(&["O", "Si"]),
+            &phases,
+            &Rules {
+                k: KFactors::unit(2),
+                oxygen: Oxygen::Measured,
+                background: BackgroundRule::Fit {
+                    eligible: vec![true, true],
+                },
+            },
         );
+        assert_eq!(q.background.per_z[0], None);
+        assert!(q.phases.iter().all(|p| p.detected[0] && p.wt[0] > 50.0));
+    }
+
+    /// Currie (1968), paired observations: L_C = 2.33 √B, L_D = 2.71 + 4.65 √B; the
+    /// published formulas at B = 100 counts give L_C = 23.3 and L_D = 49.2.
+    #[test]
+    fn currie_limits() {
+        let (lc, ld) = currie(100.0, 100.0);
+        assert!((lc - 23.26).abs() < 0.01, "{lc}");
+        assert!((ld - 49.24).abs() < 0.05, "{ld}");
+        let (lc0, ld0) = currie(0.0, 0.0);
+        assert_eq!(lc0, 0.0);
+        assert!((ld0 - 2.71).abs() < 1e-12);
     }
 }

@@ -598,6 +598,10 @@ pub fn page(r: &Report, extras: &Extras) -> String {
                     p.composition_wt[e], p.composition_wt_sd[e]
                 )
             })
+            .chain(
+                (!p.not_detected.is_empty())
+                    .then(|| format!("not detected: {}", esc(&super::not_detected_text(p, ",")))),
+            )
             .collect();
         let m = match &p.reference {
             Some(m) => match &m.reference {

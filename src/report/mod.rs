@@ -67,6 +67,11 @@ pub struct PhaseEntry {
     pub composition_at: BTreeMap<String, f64>,
     /// One standard deviation of `composition_at`, at%.
     pub composition_at_sd: BTreeMap<String, f64>,
+    /// Elements not detected in the phase (net counts under Currie's critical level),
+    /// with their detection limit, wt%: their `composition_wt` is 0 and they are left out
+    /// of the normalisation.
+    #[serde(default, skip_serializing_if = "BTreeMap::is_empty")]
+    pub not_detected: BTreeMap<String, f64>,
     /// `uncalibrated`, `k-factors` or `calibrated`.
     pub composition_basis: String,
     /// Pixels the composition was summed over (interior pixels).
@@ -306,6 +311,12 @@ pub fn build(
                 composition_wt_sd: cmap(&p.composition.wt_sd),
                 composition_at: cmap(&p.composition.at),
                 composition_at_sd: cmap(&p.composition.at_sd),
+                not_detected: t
+                    .composition_elements
+                    .iter()
+                    .zip(&p.composition.limit_wt)
+                    .filter_map(|(e, l)| l.map(|l| (e.clone(), l)))
+                    .collect(),
                 composition_basis: composition.basis.clone(),
                 composition_pixels: p.composition_pixels,
                 composition_from_interior: p.composition_from_interior,
@@ -441,7 +452,7 @@ pub fn phases_csv(r: &Report) -> String {
             s.push_str(&format!(",{prefix}_{e}"));
         }
     }
-    s.push_str(",composition_basis,match,match_quality\n");
+    s.push_str(",not_detected,composition_basis,match,match_quality\n");
     for p in &r.phases {
         let name = csv_field(&p.name);
         s.push_str(&format!(
@@ -478,9 +489,22 @@ pub fn phases_csv(r: &Report) -> String {
             ),
             None => (String::new(), String::new()),
         };
-        s.push_str(&format!(",{},{matched},{quality}\n", p.composition_basis));
+        s.push_str(&format!(
+            ",{},{},{matched},{quality}\n",
+            not_detected_text(p, ";"),
+            p.composition_basis
+        ));
     }
     s
+}
+
+/// The elements not detected in a phase with their limits, e.g. `C <0.31; O <0.22` (wt%).
+pub fn not_detected_text(p: &PhaseEntry, sep: &str) -> String {
+    p.not_detected
+        .iter()
+        .map(|(e, l)| format!("{e} <{l:.2}"))
+        .collect::<Vec<_>>()
+        .join(&format!("{sep} "))
 }
 
 /// The short human summary printed by `map`.
@@ -511,6 +535,9 @@ pub fn summary(r: &Report) -> String {
                 }
             })
             .collect();
+        if !p.not_detected.is_empty() {
+            comp.push(format!("not detected: {}", not_detected_text(p, ",")));
+        }
         if let Some(m) = &p.reference {
             comp.push(match &m.reference {
                 Some(_) => format!("[{:.2}]", m.quality),

@@ -1,0 +1,257 @@
+//! An independent forward model of EDS element maps, for tests: it imports nothing from
+//! modalmap (no physics, no element data, no writer), so that a test's expected values do
+//! not come from the code under test.
+//!
+//! **What it models**, per pixel and mapped element e, for a phase of mass fractions C:
+//! 1. characteristic counts s_e · C_e · m_pe: a sensitivity per element (counts per pixel
+//!    at C = 1) times a matrix factor per phase and element (within ±3 %, drawn from the
+//!    seed), an effect the tool does not model;
+//! 2. the continuum under the line, b_e · Z_eff (Kramers 1923: at a given energy the
+//!    continuum is proportional to Z), with b_e per map as a detector records it and Z_eff
+//!    the electron-fraction mean Z = Σ C_i Z_i²/A_i / Σ C_i Z_i/A_i (not the mass-fraction
+//!    mean the tool uses);
+//! 3. the beam's lateral spread: the expected counts blurred by a Gaussian core with a
+//!    wider tail (90 % σ = `blur_px`, 10 % σ = 3 · `blur_px`), not the tool's model;
+//! 4. dead time: every count of a pixel scaled by 1 / (1 + τ · total rate);
+//! 5. Poisson counting noise.
+//!
+//! **What it leaves out**: absorption and fluorescence beyond the ±3 % factors, peak
+//! overlaps, the continuum's energy dependence (each map has its own level), escape and
+//! sum peaks, charging.
+
+use std::path::Path;
+
+use rand::{Rng, SeedableRng};
+use rand_distr::{Distribution, Poisson};
+
+/// Standard atomic weights (IUPAC 2021, from memory) and atomic numbers of the elements
+/// the test scenarios use.
+pub const ELEMENTS: &[(&str, u32, f64)] = &[
+    ("C", 6, 12.011),
+    ("O", 8, 15.999),
+    ("Na", 11, 22.990),
+    ("Al", 13, 26.982),
+    ("Si", 14, 28.085),
+    ("S", 16, 32.06),
+    ("K", 19, 39.098),
+    ("Cr", 24, 51.996),
+    ("Mn", 25, 54.938),
+    ("Fe", 26, 55.845),
+];
+
+fn element(symbol: &str) -> (u32, f64) {
+    let &(_, z, a) = ELEMENTS
+        .iter()
+        .find(|e| e.0 == symbol)
+        .unwrap_or_else(|| panic!("{symbol} is not in the forward model's table"));
+    (z, a)
+}
+
+/// Mass fractions of a formula given as (symbol, atoms) pairs.
+pub fn mass_fractions(formula: &[(&str, f64)]) -> Vec<(String, f64)> {
+    let total: f64 = formula.iter().map(|(s, n)| n * element(s).1).sum();
+    formula
+        .iter()
+        .map(|(s, n)| (s.to_string(), n * element(s).1 / total))
+        .collect()
+}
+
+/// Electron-fraction mean atomic number.
+pub fn z_eff(c: &[(String, f64)]) -> f64 {
+    let (num, den) = c.iter().fold((0.0, 0.0), |(a, b), (s, w)| {
+        let (z, m) = element(s);
+        let z = f64::from(z);
+        (a + w * z * z / m, b + w * z / m)
+    });
+    num / den
+}
+
+/// One phase of a scenario.
+pub struct Phase {
+    /// Name, for messages.
+    pub name: &'static str,
+    /// Mass fractions.
+    pub composition: Vec<(String, f64)>,
+}
+
+/// A scenario: phases painted on a grid, and the acquisition.
+pub struct Scenario {
+    /// Grid size.
+    pub width: usize,
+    /// Grid size.
+    pub height: usize,
+    /// Phase index of every pixel.
+    pub labels: Vec<usize>,
+    /// The phases.
+    pub phases: Vec<Phase>,
+    /// Mapped elements with their sensitivity (counts per pixel at mass fraction 1) and
+    /// their continuum b_e (counts per pixel per unit Z).
+    pub maps: Vec<(&'static str, f64, f64)>,
+    /// Beam energy, keV.
+    pub beam_kv: f64,
+    /// Pixel size, µm.
+    pub pixel_um: f64,
+    /// Core width of the beam spread, pixels.
+    pub blur_px: f64,
+    /// Dead time per count rate (1 / counts per pixel).
+    pub dead_time: f64,
+    /// Seed of the matrix factors and the noise.
+    pub seed: u64,
+}
+
+impl Scenario {
+    /// Expected counts (before the beam spread) of map `m` in phase `p`.
+    fn expected(&self, p: usize, m: usize, matrix: &[Vec<f64>]) -> f64 {
+        let (symbol, s, b) = self.maps[m];
+        let c = self.phases[p]
+            .composition
+            .iter()
+            .find(|(e, _)| e == symbol)
+            .map_or(0.0, |x| x.1);
+        s * c * matrix[p][m] + b * z_eff(&self.phases[p].composition)
+    }
+
+    /// The matrix factor of every phase and map (within ±3 %, from the seed).
+    pub fn matrix(&self) -> Vec<Vec<f64>> {
+        let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(self.seed ^ 0x6d61_7472_6978);
+        self.phases
+            .iter()
+            .map(|_| {
+                self.maps
+                    .iter()
+                    .map(|_| 1.0 + rng.random_range(-0.03..0.03))
+                    .collect()
+            })
+            .collect()
+    }
+
+    /// The composition (mass fractions of the mapped elements) that the ratio method with
+    /// exact k-factors and no matrix correction should find in phase `p`: the true one
+    /// with each element weighted by its matrix factor, normalised. The tool makes no
+    /// matrix correction, so this, not the truth, is what its compositions are held to.
+    pub fn apparent(&self, p: usize) -> Vec<(String, f64)> {
+        let m = &self.matrix()[p];
+        let weighted: Vec<(String, f64)> = self
+            .maps
+            .iter()
+            .zip(m)
+            .map(|((symbol, _, _), f)| {
+                let c = self.phases[p]
+                    .composition
+                    .iter()
+                    .find(|(e, _)| e == symbol)
+                    .map_or(0.0, |x| x.1);
+                (symbol.to_string(), c * f)
+            })
+            .collect();
+        let total: f64 = weighted.iter().map(|x| x.1).sum();
+        weighted.into_iter().map(|(e, c)| (e, c / total)).collect()
+    }
+
+    /// Generates the counts of every map, row-major, in map order.
+    pub fn counts(&self) -> Vec<Vec<u16>> {
+        let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(self.seed);
+        let matrix = self.matrix();
+        let (w, h) = (self.width, self.height);
+        let mut planes: Vec<Vec<f64>> = (0..self.maps.len())
+            .map(|m| {
+                let ideal: Vec<f64> = self
+                    .labels
+                    .iter()
+                    .map(|&p| self.expected(p, m, &matrix))
+                    .collect();
+                let core = blur(&ideal, w, h, self.blur_px);
+                let tail = blur(&ideal, w, h, 3.0 * self.blur_px);
+                core.iter()
+                    .zip(&tail)
+                    .map(|(a, b)| 0.9 * a + 0.1 * b)
+                    .collect()
+            })
+            .collect();
+        for i in 0..w * h {
+            let total: f64 = planes.iter().map(|p| p[i]).sum();
+            let live = 1.0 / (1.0 + self.dead_time * total);
+            planes.iter_mut().for_each(|p| p[i] *= live);
+        }
+        planes
+            .iter()
+            .map(|p| {
+                p.iter()
+                    .map(|&mu| {
+                        if mu <= 0.0 {
+                            0
+                        } else {
+                            let x: f64 = Poisson::new(mu).unwrap().sample(&mut rng);
+                            x.min(65535.0) as u16
+                        }
+                    })
+                    .collect()
+            })
+            .collect()
+    }
+
+    /// Writes the maps as 16-bit PNGs (the `png` crate) and a field.toml into `dir`.
+    pub fn write(&self, dir: &Path) {
+        std::fs::create_dir_all(dir).unwrap();
+        for ((symbol, _, _), counts) in self.maps.iter().zip(self.counts()) {
+            let file = std::fs::File::create(dir.join(format!("{symbol}_Ka.png"))).unwrap();
+            let mut enc = png::Encoder::new(file, self.width as u32, self.height as u32);
+            enc.set_color(png::ColorType::Grayscale);
+            enc.set_depth(png::BitDepth::Sixteen);
+            let mut w = enc.write_header().unwrap();
+            let bytes: Vec<u8> = counts.iter().flat_map(|v| v.to_be_bytes()).collect();
+            w.write_image_data(&bytes).unwrap();
+        }
+        std::fs::write(
+            dir.join("field.toml"),
+            format!(
+                "pixel_size_um = {}\nbeam_kv = {}\n",
+                self.pixel_um, self.beam_kv
+            ),
+        )
+        .unwrap();
+    }
+
+    /// A k-factor file with the factors a lab would measure on standards here: the
+    /// inverse sensitivities (relative to the first map).
+    pub fn kfactors(&self) -> String {
+        let s0 = self.maps[0].1;
+        let mut t = format!(
+            "format = \"modalmap.kfactors/1\"\nreference = \"{}\"\nbeam_kv = {}\n[k]\n",
+            self.maps[0].0, self.beam_kv
+        );
+        for (symbol, s, _) in &self.maps {
+            t.push_str(&format!("{symbol} = {}\n", s0 / s));
+        }
+        t
+    }
+}
+
+/// Separable Gaussian blur with edges clamped.
+fn blur(v: &[f64], w: usize, h: usize, sigma: f64) -> Vec<f64> {
+    let r = (3.0 * sigma).ceil() as isize;
+    let kernel: Vec<f64> = (-r..=r)
+        .map(|i| (-(i * i) as f64 / (2.0 * sigma * sigma)).exp())
+        .collect();
+    let norm: f64 = kernel.iter().sum();
+    let pass = |src: &[f64], horizontal: bool| -> Vec<f64> {
+        let mut out = vec![0.0; w * h];
+        for y in 0..h {
+            for x in 0..w {
+                let mut acc = 0.0;
+                for (j, k) in kernel.iter().enumerate() {
+                    let d = j as isize - r;
+                    let (xx, yy) = if horizontal {
+                        ((x as isize + d).clamp(0, w as isize - 1) as usize, y)
+                    } else {
+                        (x, (y as isize + d).clamp(0, h as isize - 1) as usize)
+                    };
+                    acc += k * src[yy * w + xx];
+                }
+                out[y * w + x] = acc / norm;
+            }
+        }
+        out
+    };
+    pass(&pass(v, true), false)
+}
