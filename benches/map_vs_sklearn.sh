@@ -1,7 +1,7 @@
 #!/usr/bin/env bash
 # Whole-process benchmark of `modalmap map` against the scikit-learn reference pipeline
-# (../shared/bench/sklearn_reference.py) on the same generated field, as
-# ../shared/bench/README.md asks: alternate the two commands (A B A B …), report the median
+# (benches/sklearn_reference.py: numpy, scipy and scikit-learn as a practitioner would
+# script it) on the same generated field: alternate the two commands (A B A B …), report the median
 # of the per-pair ratios, modalmap's whole process (decode to written outputs) against the
 # reference's compute part only, and both segmentations' agreement with the true labels.
 #
@@ -13,7 +13,7 @@ set -euo pipefail
 cd "$(dirname "$0")/.."
 SIZE=${1:-2048}
 PAIRS=${2:-3}
-REF=${REF:-../shared/bench/sklearn_reference.py}
+REF=${REF:-benches/sklearn_reference.py}
 WORK=${WORK:-/tmp/modalmap-bench-$SIZE}
 mkdir -p "$WORK"
 cargo build --release --quiet

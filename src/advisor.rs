@@ -324,7 +324,7 @@ mod tests {
     }
 
     /// Andersen–Hasler, Cu K in Cu at 20 keV (Ec 8.979 keV, ρ 8.96): 0.810 µm
-    /// (REFERENCES.md §4, computed from the formula); Kanaya–Okayama Cu at 20 keV
+    /// (references.md §4, computed from the formula); Kanaya–Okayama Cu at 20 keV
     /// (A 63.546, Z 29, ρ 8.96): 1.4599 µm (§3).
     #[test]
     fn ranges_of_copper_at_20_kv() {

@@ -325,7 +325,7 @@ mod tests {
         }
     }
 
-    /// Mass fractions from REFERENCES.md §6 (computed from the formulas): Cu6Sn5 is
+    /// Mass fractions from references.md §6 (computed from the formulas): Cu6Sn5 is
     /// Cu 39.112 wt%, Sn 60.888 wt%.
     #[test]
     fn matches_a_calibrated_intermetallic() {

@@ -44,7 +44,7 @@ mod tests {
     use super::*;
     use crate::chem::parse_formula;
 
-    /// Values of Reuter's polynomial (Reuter 1972, the form quoted in REFERENCES.md §1),
+    /// Values of Reuter's polynomial (Reuter 1972, the form quoted in references.md §1),
     /// evaluated there to 4 decimals.
     #[test]
     fn reuter_polynomial_values() {
@@ -66,7 +66,7 @@ mod tests {
         }
     }
 
-    /// Mass-fraction-mixed η of compounds, REFERENCES.md §2 table (Castaing's rule with
+    /// Mass-fraction-mixed η of compounds, references.md §2 table (Castaing's rule with
     /// Reuter's η and standard atomic weights, computed there).
     #[test]
     fn compound_eta_by_mass_fraction() {
@@ -83,7 +83,7 @@ mod tests {
     }
 
     /// Kanaya–Okayama ranges computed from the published formula with the exponents 1.67
-    /// and 0.889 (REFERENCES.md §3, computed there; A: standard atomic weights; ρ: C 2.26,
+    /// and 0.889 (references.md §3, computed there; A: standard atomic weights; ρ: C 2.26,
     /// Al 2.70, Cu 8.96, Au 19.30 as pinned there).
     #[test]
     fn kanaya_okayama_check_values() {
@@ -101,7 +101,7 @@ mod tests {
         }
     }
 
-    /// Andersen–Hasler X-ray ranges (REFERENCES.md §4, computed there with edge energies of
+    /// Andersen–Hasler X-ray ranges (references.md §4, computed there with edge energies of
     /// the X-ray Data Booklet): Cu K in Cu at 20 and 30 keV, Al K in Al at 15 and 20 keV,
     /// Fe K in Fe at 20 keV, Si K in Si at 15 keV, Cu L3 in Cu at 10 keV.
     #[test]

@@ -482,7 +482,7 @@ mod tests {
         MapStack::new(Path::new("t"), w, h, vec![m], md).unwrap()
     }
 
-    /// Anscombe (1948) values computed from A(x) = 2√(x + 3/8) (REFERENCES.md §10).
+    /// Anscombe (1948) values computed from A(x) = 2√(x + 3/8) (references.md §10).
     #[test]
     fn anscombe_values() {
         for (x, a) in [

@@ -816,7 +816,7 @@ mod tests {
             "{}",
             mean(fe, 0, 10)
         );
-        // SiO2: Si 46.744 wt% (REFERENCES.md §6) × 40 + continuum 2 × Zw/30, Zw 10.805 (§2).
+        // SiO2: Si 46.744 wt% (references.md §6) × 40 + continuum 2 × Zw/30, Zw 10.805 (§2).
         let si_expected = 0.46744 * 40.0 + 2.0 * 10.805 / 30.0;
         assert!(
             (mean(si, 10, 18) - si_expected).abs() < 0.4,

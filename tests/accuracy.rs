@@ -183,7 +183,7 @@ fn square_root_transform_with_kmeans() {
     assert!(s.accuracy >= 0.98, "pixel accuracy {:.4}", s.accuracy);
 }
 
-/// The obvious pipeline, as `../shared/bench/sklearn_reference.py` writes it with
+/// The obvious pipeline, as `benches/sklearn_reference.py` writes it with
 /// scikit-learn: Gaussian blur σ = 1 per map, each element divided by its standard
 /// deviation, k-means (one initialisation) or a full-covariance Gaussian mixture on every
 /// pixel, every pixel labelled. Run here with modalmap's kernels, which the linfa tests

@@ -31,7 +31,7 @@ fn json(p: &Path) -> serde_json::Value {
 }
 
 /// Field statistics as ASTM E562/E1245 write them, against numpy/scipy values
-/// (tests/fixtures/stats/make_fixtures.py; includes the worked example of REFERENCES.md
+/// (tests/fixtures/stats/make_fixtures.py; includes the worked example of references.md
 /// §7: 10, 12, 8, 11, 9 % → mean 10.0, s 1.581, t 2.776, CI ± 1.963, %RA 19.6).
 #[test]
 fn field_statistics_match_scipy() {

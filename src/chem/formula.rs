@@ -244,7 +244,7 @@ mod tests {
         }
     }
 
-    /// Mass fractions computed from standard atomic weights ([X] in REFERENCES.md §6), and
+    /// Mass fractions computed from standard atomic weights (references.md §6), and
     /// handbook values where published: hematite 69.94/30.06 and rutile 59.94/40.06 (mindat
     /// mineral data pages), orthoclase 14.05/9.69/30.27/45.99 (webmineral). Handbooks use
     /// older atomic weights, so the check is at 0.01 wt% (0.015 for the crate's Zr weight).
@@ -268,7 +268,7 @@ mod tests {
         );
     }
 
-    /// Molar masses from standard atomic weights (REFERENCES.md §6, computed there).
+    /// Molar masses from standard atomic weights (references.md §6, computed there).
     #[test]
     fn molar_masses() {
         for (f, m) in [
@@ -282,7 +282,7 @@ mod tests {
         }
     }
 
-    /// Mean atomic numbers Zw and Za of Al2O3 and ZrSiO4: REFERENCES.md §2 table, computed
+    /// Mean atomic numbers Zw and Za of Al2O3 and ZrSiO4: references.md §2 table, computed
     /// there from standard atomic weights.
     #[test]
     fn mean_atomic_numbers() {

@@ -140,7 +140,7 @@ mod tests {
     use super::*;
     use crate::chem::element;
 
-    /// X-ray Data Booklet Tables 1-1 and 1-2 (REFERENCES.md §4): Cu K edge 8979 eV,
+    /// X-ray Data Booklet Tables 1-1 and 1-2 (references.md §4): Cu K edge 8979 eV,
     /// Kα1 8047.78 eV; Cu L3 932.7 eV; Sn L3 3929 eV, Lα1 3443.98 eV.
     #[test]
     fn booklet_values() {

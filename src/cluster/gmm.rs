@@ -406,7 +406,7 @@ pub fn fit(
 mod tests {
     use super::*;
 
-    /// BIC check values of REFERENCES.md §10: parameter counts from scikit-learn 1.9.1's
+    /// BIC check values of references.md §10: parameter counts from scikit-learn 1.9.1's
     /// `_n_parameters` for full covariances, and BIC for N = 1000, ln L̂ = −1234.5, K = 3,
     /// d = 2 (computed there).
     #[test]
