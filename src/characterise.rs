@@ -35,6 +35,11 @@ pub const DEFAULT_CLEARANCE_PX: usize = 2;
 /// Largest clearance used, pixels (beyond it small phases lose every pixel).
 pub const MAX_CLEARANCE_PX: usize = 8;
 
+/// A phase is compared with the reference library only if its composition rests on at
+/// least this many counts (all elements together): 400 counts give a major element's
+/// share to about 5 % (1/√N), the least a name can rest on (common practice, no source).
+pub const MIN_MATCH_COUNTS: f64 = 400.0;
+
 /// Oxygen rule as given on the command line.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Default, Serialize, Deserialize, clap::ValueEnum)]
 #[serde(rename_all = "kebab-case")]
@@ -503,18 +508,25 @@ pub fn characterise_with(
             },
         )
     };
-    let match_all = |q: &Quantification, calibrated: bool| -> Vec<Option<Match>> {
+    // A phase with too few counts is compared with no reference: its composition is
+    // too uncertain for a name to mean anything.
+    let match_all = |q: &Quantification, calibrated: bool, sums: &[PhaseCounts]| {
         q.phases
             .iter()
-            .map(|p| best_match(&opts.library, &q.elements, &p.wt, &p.wt_sd, calibrated))
-            .collect()
+            .zip(sums)
+            .map(|(p, s)| {
+                (s.sums.iter().sum::<f64>() >= MIN_MATCH_COUNTS)
+                    .then(|| best_match(&opts.library, &q.elements, &p.wt, &p.wt_sd, calibrated))
+                    .flatten()
+            })
+            .collect::<Vec<Option<Match>>>()
     };
     let mut clearance = DEFAULT_CLEARANCE_PX;
     let mut sums = sums_at(clearance);
     let plain: Vec<PhaseCounts> = sums.iter().map(|s| s.0.clone()).collect();
     let eligible: Vec<bool> = sums.iter().map(|s| s.1).collect();
     let first = run(&plain, &eligible, &KFactors::unit(infos.len()));
-    let first_matches = match_all(&first, false);
+    let first_matches = match_all(&first, false, &plain);
     if let (Some(_), Some(px)) = (md.beam_kv, md.pixel_size_um) {
         let inputs: Vec<_> = table
             .phases
@@ -659,7 +671,16 @@ pub fn characterise_with(
     };
     // Recompute with the (possibly widened) sums and the factors.
     let q = run(&plain, &eligible, &kf);
-    let matches = match_all(&q, calibrated_basis);
+    let matches = match_all(&q, calibrated_basis, &plain);
+    for (p, s) in table.phases.iter().zip(&plain) {
+        let total: f64 = s.sums.iter().sum();
+        if total < MIN_MATCH_COUNTS {
+            notes.push(format!(
+                "phase {} ({}): {total:.0} counts in all, too few to compare with the reference phases (at least {MIN_MATCH_COUNTS:.0}); it is named by its major elements",
+                p.id, p.name
+            ));
+        }
+    }
     let background = &q.background;
 
     // Names: calibration phases keep the name they were given; others take their match,
@@ -676,7 +697,7 @@ pub fn characterise_with(
                     matches[i]
                         .as_ref()
                         .filter(|_| sums[i].1)
-                        .and_then(|m| m.reference.clone())
+                        .and_then(|m| m.name.clone())
                 })
                 .unwrap_or_else(|| p.name.clone())
         })

@@ -688,6 +688,12 @@ fn synth(
     seed: u64,
     force: bool,
 ) -> Result<u8> {
+    if scenario == Scenario::BenchmarkRock && !(16..=20_000).contains(&size) {
+        return Err(Error::options(
+            format!("--size {size} is out of range"),
+            "use 16 to 20000 pixels",
+        ));
+    }
     if let Some(t) = truth {
         if t.exists() && !force {
             return Err(Error::output(
@@ -696,17 +702,21 @@ fn synth(
                 "choose another file for the true labels, or add --force to replace it",
             ));
         }
+        let folder = crate::guard::resolve_output(t)?;
+        if let Some(file) = folder.parent().and_then(crate::io::folder::field_file_in) {
+            return Err(Error::output(
+                t,
+                format!(
+                    "lies in a field's folder (it holds {file}); synth never writes into a field"
+                ),
+                "write the true labels outside any field",
+            ));
+        }
     }
     let dir = crate::report::prepare_output(output, force)?;
     let field = match scenario {
         Scenario::SolderJoint => crate::synth::sample_field()?,
         Scenario::BenchmarkRock => {
-            if !(16..=20_000).contains(&size) {
-                return Err(Error::options(
-                    format!("--size {size} is out of range"),
-                    "use 16 to 20000 pixels",
-                ));
-            }
             let (micro, opts) = crate::synth::benchmark_rock(size, seed);
             crate::synth::generate(&micro, &opts)?
         }

@@ -222,6 +222,14 @@ pub struct Match {
     pub dof: usize,
     /// Other references the measured elements cannot tell apart from the chosen one.
     pub alternatives: Vec<String>,
+    /// The name to give the phase: the reference when it alone fits, "A or B" when the
+    /// data cannot separate several, with the elements that would separate them but were
+    /// not mapped; `None` when nothing fits.
+    #[serde(default)]
+    pub name: Option<String>,
+    /// How the name was decided, in words.
+    #[serde(default)]
+    pub decision: String,
     /// Density of the chosen reference, g/cm³.
     #[serde(skip_serializing_if = "Option::is_none", default)]
     pub density: Option<f64>,
@@ -293,6 +301,8 @@ pub fn best_match(
     let chosen = close[0];
     let quality = 1.0 - chi.cdf(chosen.0);
     let matched = quality >= MIN_QUALITY;
+    let candidates: Vec<&Reference> = close.iter().map(|x| x.2).collect();
+    let (name, decision) = decide_name(matched, &candidates, elements, quality);
     Some(Match {
         reference: matched.then(|| chosen.2.name.clone()),
         formula: chosen.2.formula.clone(),
@@ -301,8 +311,71 @@ pub fn best_match(
         distance2: chosen.0,
         dof,
         alternatives: close[1..].iter().map(|x| x.2.name.clone()).collect(),
+        name,
+        decision,
         density: chosen.2.density,
     })
+}
+
+/// The phase's name from the candidates that fit within the uncertainty (best first):
+/// one alone names the phase; several give "A or B" (at most three, then "…"), with the
+/// elements that would separate them but were not measured.
+fn decide_name(
+    matched: bool,
+    candidates: &[&Reference],
+    measured: &[ElementInfo],
+    quality: f64,
+) -> (Option<String>, String) {
+    if !matched {
+        return (
+            None,
+            format!(
+                "no reference fits (best quality {quality:.3}, under {MIN_QUALITY}): named by its major elements"
+            ),
+        );
+    }
+    if candidates.len() == 1 {
+        return (
+            Some(candidates[0].name.clone()),
+            format!("one reference fits within the uncertainty (quality {quality:.2})"),
+        );
+    }
+    let mut unmeasured: Vec<&str> = Vec::new();
+    for r in candidates {
+        for (e, w) in r.composition.mass_fractions() {
+            if w >= 0.01
+                && !measured.iter().any(|m| m.symbol == e.symbol)
+                && !unmeasured.contains(&e.symbol)
+            {
+                unmeasured.push(e.symbol);
+            }
+        }
+    }
+    let names: Vec<&str> = candidates.iter().take(3).map(|r| r.name.as_str()).collect();
+    let mut name = match (names.len(), candidates.len()) {
+        (2, _) => format!("{} or {}", names[0], names[1]),
+        (_, 3) => format!("{}, {} or {}", names[0], names[1], names[2]),
+        _ => format!("{}, {}, {} or others", names[0], names[1], names[2]),
+    };
+    let why = if unmeasured.is_empty() {
+        "the measured composition cannot separate them".to_string()
+    } else {
+        format!(
+            "{} would separate them but {} not mapped",
+            unmeasured.join(", "),
+            if unmeasured.len() == 1 { "is" } else { "are" }
+        )
+    };
+    if !unmeasured.is_empty() {
+        name = format!("{name} ({} not mapped)", unmeasured.join(", "));
+    }
+    (
+        Some(name),
+        format!(
+            "{} references fit within the uncertainty: {why}",
+            candidates.len()
+        ),
+    )
 }
 
 #[cfg(test)]
@@ -351,6 +424,28 @@ mod tests {
         .unwrap();
         assert_eq!(m.reference.as_deref(), Some("tin"));
         assert!(m.alternatives.iter().any(|a| a == "cassiterite"), "{m:?}");
+        // The name says the data cannot tell them apart, and why.
+        let name = m.name.as_deref().unwrap();
+        assert!(
+            name.starts_with("tin") && name.contains("cassiterite"),
+            "{name}"
+        );
+        assert!(
+            name.contains("O") && name.ends_with("not mapped)"),
+            "{name}"
+        );
+        assert!(m.decision.contains("would separate them"), "{}", m.decision);
+        // With O mapped (and none of it), tin alone fits.
+        let m = best_match(
+            &lib,
+            &els(&["O", "Cu", "Ag", "Sn"]),
+            &[0.0, 0.2, 0.3, 99.5],
+            &[0.1, 0.1, 0.1, 0.2],
+            true,
+        )
+        .unwrap();
+        assert!(m.name.as_deref().unwrap().starts_with("tin"), "{m:?}");
+        assert!(!m.name.as_deref().unwrap().contains("cassiterite"), "{m:?}");
     }
 
     #[test]

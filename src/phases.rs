@@ -37,8 +37,9 @@ pub struct Phase {
     pub pixels: usize,
     /// Share of all field pixels, 0..1.
     pub area_fraction: f64,
-    /// 95 % confidence interval of the area fraction from tile-to-tile variation.
-    pub area_fraction_ci95: [f64; 2],
+    /// 95 % confidence interval of the area fraction from tile-to-tile variation; `None`
+    /// when the field is too small to cut into two tiles (see [`tiling`]).
+    pub area_fraction_ci95: Option<[f64; 2]>,
     /// Mean raw counts per pixel, per element (in element order).
     pub mean: Vec<f64>,
     /// Standard deviation of raw counts per pixel, per element.
@@ -308,11 +309,9 @@ pub fn table_from_sums(
             let (_, _, half, tq) = mean_ci(&fractions);
             t_quantile = tq;
             let p = np / n as f64;
-            let (lo, hi) = if half.is_finite() {
-                ((p - half).max(0.0), (p + half).min(1.0))
-            } else {
-                (p, p)
-            };
+            let ci = half
+                .is_finite()
+                .then(|| [(p - half).max(0.0), (p + half).min(1.0)]);
             let mut name = name_of(&elements, &composition.wt);
             let repeats = names_seen.iter().filter(|s| **s == name).count();
             names_seen.push(name.clone());
@@ -325,7 +324,7 @@ pub fn table_from_sums(
                 model_index: c,
                 pixels: pixels[c],
                 area_fraction: p,
-                area_fraction_ci95: [lo, hi],
+                area_fraction_ci95: ci,
                 mean,
                 sd,
                 composition,

@@ -282,3 +282,50 @@ fn rock_oxygen_has_no_free_phase_and_the_report_says_so() {
         );
     }
 }
+
+/// A field of one pixel: no tile statistics (no interval, with the reason, instead of a
+/// zero-width one) and no reference name from a handful of counts.
+#[test]
+fn a_one_pixel_field_gets_no_interval_and_no_library_name() {
+    let tmp = tempfile::tempdir().unwrap();
+    let field = tmp.path().join("tiny");
+    std::fs::create_dir(&field).unwrap();
+    for (el, v) in [("Fe", 5u16), ("Si", 2u16)] {
+        let file = std::fs::File::create(field.join(format!("{el}.png"))).unwrap();
+        let mut enc = png::Encoder::new(file, 1, 1);
+        enc.set_color(png::ColorType::Grayscale);
+        enc.set_depth(png::BitDepth::Sixteen);
+        enc.write_header()
+            .unwrap()
+            .write_image_data(&v.to_be_bytes())
+            .unwrap();
+    }
+    let out = tmp.path().join("out");
+    let r = std::process::Command::new(env!("CARGO_BIN_EXE_modalmap"))
+        .args([
+            "map",
+            field.to_str().unwrap(),
+            "-o",
+            out.to_str().unwrap(),
+            "--quiet",
+        ])
+        .output()
+        .unwrap();
+    assert!(r.status.success(), "{}", String::from_utf8_lossy(&r.stderr));
+    let rep: serde_json::Value =
+        serde_json::from_slice(&std::fs::read(out.join("report.json")).unwrap()).unwrap();
+    let p = &rep["phases"][0];
+    assert!(p["area_fraction_ci95"].is_null(), "{p:#}");
+    assert!(p.get("match").is_none(), "{p:#}");
+    assert!(rep["warnings"]
+        .to_string()
+        .contains("too small to cut into tiles"));
+    assert!(rep["composition"]["notes"]
+        .to_string()
+        .contains("too few to compare"));
+    let csv = std::fs::read_to_string(out.join("phases.csv")).unwrap();
+    assert!(
+        csv.lines().nth(1).unwrap().contains(",1.000000,,,"),
+        "{csv}"
+    );
+}

@@ -84,6 +84,17 @@ fn kfactor_file(dir: &std::path::Path, det: &Detector) -> std::path::PathBuf {
     p
 }
 
+/// True if a phase named `name` is the reference `reference`: that name alone, or that
+/// name first among candidates the mapped elements cannot separate, with the unmapped
+/// elements that would ("tin, cassiterite or Ni3Sn4 (O, Ni not mapped)": the sample maps
+/// only Cu, Ag and Sn).
+fn named_as(name: &str, reference: &str) -> bool {
+    name == reference
+        || ((name.starts_with(&format!("{reference}, "))
+            || name.starts_with(&format!("{reference} or ")))
+            && name.ends_with("not mapped)"))
+}
+
 /// The sample solder joint, calibrated on two of its phases by library name, recovers the
 /// other three within the counting uncertainty, and every phase takes its library name.
 #[test]
@@ -108,7 +119,11 @@ fn calibrated_sample_field_recovers_every_phase() {
         other => panic!("unexpected phase {other}"),
     };
     for (p, &ti) in r.table.phases.iter().zip(&t) {
-        assert_eq!(p.name, expect(&field.phase_names[ti]));
+        assert!(
+            named_as(&p.name, expect(&field.phase_names[ti])),
+            "{}",
+            p.name
+        );
         assert!(p.composition.wt_sd.iter().all(|s| s.is_finite()));
     }
     assert!(r.table.composition_method.contains("calibrated on"));
@@ -257,7 +272,7 @@ fn an_unknown_phase_is_not_matched() {
                     p.name
                 );
             }
-            "Sn" => assert_eq!(p.name, "tin"),
+            "Sn" => assert!(named_as(&p.name, "tin"), "{}", p.name),
             "Cu6Sn5" => assert_eq!(p.name, "Cu6Sn5 (eta)"),
             o => panic!("{o}"),
         }

@@ -255,6 +255,21 @@ fn synth_never_writes_into_a_field_or_a_non_empty_folder() {
     assert_eq!(r.code, 4, "{}", r.stderr);
     assert_eq!(std::fs::read(d.join("truth.png")).unwrap(), b"keep");
     assert!(!d.join("new").exists());
+    // --truth onto a map of a field, even with --force.
+    let map = f.join("Fe_Ka.png");
+    let r = run(
+        d,
+        &[
+            "synth",
+            "-o",
+            "new",
+            "--truth",
+            map.to_str().unwrap(),
+            "--force",
+        ],
+    );
+    refused(&r, 4, &["Fe_Ka.png", "field"], &f, &before);
+    assert!(!d.join("new").exists());
 }
 
 #[test]

@@ -616,13 +616,12 @@ pub fn page(r: &Report, extras: &Extras) -> String {
         };
         let _ = writeln!(
             h,
-            "<tr><td>{id}</td><td class=\"l\"><span class=\"sw\" style=\"background:{c}\"></span>{name}</td><td>{a:.2}</td><td>{lo:.2} – {hi:.2}</td><td class=\"l\">{comp}{mixed}</td><td class=\"l\">{m}</td><td>{n}</td><td>{ecd}</td></tr>",
+            "<tr><td>{id}</td><td class=\"l\"><span class=\"sw\" style=\"background:{c}\"></span>{name}</td><td>{a:.2}</td><td>{ci}</td><td class=\"l\">{comp}{mixed}</td><td class=\"l\">{m}</td><td>{n}</td><td>{ecd}</td></tr>",
             id = p.id,
             c = rgb(colour(p.id)),
             name = esc(&p.name),
             a = 100.0 * p.area_fraction,
-            lo = 100.0 * p.area_fraction_ci95[0],
-            hi = 100.0 * p.area_fraction_ci95[1],
+            ci = super::ci_text(p.area_fraction_ci95, " – "),
             comp = esc(&comp.join(", ")),
             mixed = if p.composition_from_interior { "" } else { " (mixed with neighbours)" },
             n = p.particles,

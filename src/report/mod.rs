@@ -54,7 +54,7 @@ pub struct PhaseEntry {
     /// Share of all field pixels, 0..1.
     pub area_fraction: f64,
     /// 95 % confidence interval from tile-to-tile variation.
-    pub area_fraction_ci95: [f64; 2],
+    pub area_fraction_ci95: Option<[f64; 2]>,
     /// Mean raw counts per pixel.
     pub mean: BTreeMap<String, f64>,
     /// Standard deviation of raw counts per pixel.
@@ -280,6 +280,12 @@ pub fn build(
         advisor,
         model,
     } = findings;
+    if result.table.tiles[0] * result.table.tiles[1] < 2 {
+        warnings.push(format!(
+            "the field ({} × {} pixels) is too small to cut into tiles of at least 10 × 10 pixels, so the area fractions carry no interval; map a larger field, or several fields and pool them with merge",
+            result.segmentation.width, result.segmentation.height
+        ));
+    }
     use rayon::prelude::*;
     let t = &result.table;
     let md = result.metadata;
@@ -455,17 +461,14 @@ pub fn phases_csv(r: &Report) -> String {
     s.push_str(",not_detected,composition_basis,match,match_quality\n");
     for p in &r.phases {
         let name = csv_field(&p.name);
+        let [lo, hi] = p
+            .area_fraction_ci95
+            .map_or([String::new(), String::new()], |c| {
+                c.map(|v| format!("{v:.6}"))
+            });
         s.push_str(&format!(
-            "{},{},{},{:.6},{:.6},{:.6},{},{:.3},{:.4}",
-            p.id,
-            name,
-            p.pixels,
-            p.area_fraction,
-            p.area_fraction_ci95[0],
-            p.area_fraction_ci95[1],
-            p.particles,
-            p.mean_ecd_px,
-            p.mean_confidence
+            "{},{},{},{:.6},{lo},{hi},{},{:.3},{:.4}",
+            p.id, name, p.pixels, p.area_fraction, p.particles, p.mean_ecd_px, p.mean_confidence
         ));
         for m in [&p.mean, &p.sd] {
             for e in &r.elements {
@@ -496,6 +499,14 @@ pub fn phases_csv(r: &Report) -> String {
         ));
     }
     s
+}
+
+/// A 95 % interval in % for tables, or "none (field too small)".
+pub fn ci_text(ci: Option<[f64; 2]>, dash: &str) -> String {
+    match ci {
+        Some([lo, hi]) => format!("{:.2}{dash}{:.2}", 100.0 * lo, 100.0 * hi),
+        None => "none (small field)".into(),
+    }
 }
 
 /// The elements not detected in a phase with their limits, e.g. `C <0.31; O <0.22` (wt%).
@@ -549,11 +560,7 @@ pub fn summary(r: &Report) -> String {
             p.id,
             p.name,
             100.0 * p.area_fraction,
-            format!(
-                "{:.2}–{:.2}",
-                100.0 * p.area_fraction_ci95[0],
-                100.0 * p.area_fraction_ci95[1]
-            ),
+            ci_text(p.area_fraction_ci95, "–"),
             p.particles,
             comp.join(", ")
         ));
