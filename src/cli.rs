@@ -182,12 +182,12 @@ pub enum Command {
         /// Which invented scenario: the bundled solder joint, or a large rock for benchmarks.
         #[arg(long, value_enum, default_value = "solder-joint")]
         scenario: Scenario,
-        /// Width and height of the benchmark rock, pixels.
-        #[arg(long, default_value_t = 2048)]
-        size: usize,
-        /// Seed of the benchmark rock's microstructure and counts.
-        #[arg(long, default_value_t = 2048)]
-        seed: u64,
+        /// Width and height of the benchmark rock, pixels (2048).
+        #[arg(long)]
+        size: Option<usize>,
+        /// Seed of the benchmark rock's microstructure and counts (2048).
+        #[arg(long)]
+        seed: Option<u64>,
         /// Replace the folder's contents if it holds files (never a field's maps).
         #[arg(long)]
         force: bool,
@@ -294,6 +294,8 @@ pub struct MapArgs {
 #[derive(Debug, Clone, Default, Deserialize)]
 #[serde(deny_unknown_fields, rename_all = "kebab-case")]
 struct ConfigFile {
+    /// `phases = 5` or `phases = "auto:8"`: a number or a string, as the flag's values.
+    #[serde(default, deserialize_with = "number_or_string")]
     phases: Option<String>,
     method: Option<String>,
     seed: Option<u64>,
@@ -314,6 +316,22 @@ struct ConfigFile {
     valence: Option<Vec<String>>,
     background: Option<String>,
     library: Option<Vec<PathBuf>>,
+}
+
+/// A configuration value written as a TOML integer or string, as text.
+fn number_or_string<'de, D: serde::Deserializer<'de>>(
+    d: D,
+) -> std::result::Result<Option<String>, D::Error> {
+    #[derive(Deserialize)]
+    #[serde(untagged)]
+    enum Scalar {
+        Int(i64),
+        Text(String),
+    }
+    Ok(Option::<Scalar>::deserialize(d)?.map(|s| match s {
+        Scalar::Int(i) => i.to_string(),
+        Scalar::Text(t) => t,
+    }))
 }
 
 /// Every option of `map`, flags and configuration file merged.
@@ -684,10 +702,17 @@ fn synth(
     output: &std::path::Path,
     truth: Option<&std::path::Path>,
     scenario: Scenario,
-    size: usize,
-    seed: u64,
+    size: Option<usize>,
+    seed: Option<u64>,
     force: bool,
 ) -> Result<u8> {
+    if scenario == Scenario::SolderJoint && (size.is_some() || seed.is_some()) {
+        return Err(Error::options(
+            "--size and --seed set the benchmark rock; the solder joint is the bundled sample, always the same",
+            "leave them out, or add --scenario benchmark-rock",
+        ));
+    }
+    let (size, seed) = (size.unwrap_or(2048), seed.unwrap_or(2048));
     if scenario == Scenario::BenchmarkRock && !(16..=20_000).contains(&size) {
         return Err(Error::options(
             format!("--size {size} is out of range"),
@@ -1196,11 +1221,7 @@ fn merge(folders: &[PathBuf], out: &std::path::Path, force: bool, quiet: bool) -
                 p.name,
                 100.0 * p.area_fraction_mean,
                 100.0 * p.area_fraction_sd,
-                format!(
-                    "{:.2}–{:.2}",
-                    100.0 * p.area_fraction_ci95[0],
-                    100.0 * p.area_fraction_ci95[1]
-                ),
+                crate::fields::pooled_ci_text(p, "–"),
                 p.relative_accuracy_pct
                     .map_or("–".into(), |v| format!("{v:.1}"))
             );

@@ -369,7 +369,8 @@ pub struct PooledPhase {
     /// Sample standard deviation of the fields' area fractions.
     pub area_fraction_sd: f64,
     /// 95 % interval of the mean (Student t, n − 1 degrees of freedom).
-    pub area_fraction_ci95: [f64; 2],
+    /// `None` with one field: the field-to-field spread is undefined.
+    pub area_fraction_ci95: Option<[f64; 2]>,
     /// Two-sided 95 % t quantile used.
     pub t_quantile: f64,
     /// Relative accuracy, % (half-width of the interval over the mean).
@@ -559,11 +560,9 @@ pub fn merge(reports: &[(PathBuf, Report)]) -> Result<Summary> {
                 })
                 .collect();
             let (mean, sd, half, t) = mean_ci(&fractions);
-            let (lo, hi) = if half.is_finite() {
-                ((mean - half).max(0.0), (mean + half).min(1.0))
-            } else {
-                (mean, mean)
-            };
+            let ci = half
+                .is_finite()
+                .then(|| [(mean - half).max(0.0), (mean + half).min(1.0)]);
             let weight: f64 = entries.iter().map(|q| q.composition_pixels as f64).sum();
             let mut composition_wt = BTreeMap::new();
             if weight > 0.0 {
@@ -585,7 +584,7 @@ pub fn merge(reports: &[(PathBuf, Report)]) -> Result<Summary> {
                 fields: n,
                 area_fraction_mean: mean,
                 area_fraction_sd: sd,
-                area_fraction_ci95: [lo, hi],
+                area_fraction_ci95: ci,
                 t_quantile: t,
                 relative_accuracy_pct: (half.is_finite() && mean > 0.0)
                     .then(|| 100.0 * half / mean),
@@ -633,14 +632,16 @@ pub fn summary_csv(s: &Summary) -> String {
     for p in &s.phases {
         let name = crate::report::csv_field(&p.name);
         out.push_str(&format!(
-            "{},{},{},{:.6},{:.6},{:.6},{:.6},{},{},{}",
+            "{},{},{},{:.6},{:.6},{},{},{},{},{}",
             p.id,
             name,
             p.fields,
             p.area_fraction_mean,
             p.area_fraction_sd,
-            p.area_fraction_ci95[0],
-            p.area_fraction_ci95[1],
+            p.area_fraction_ci95
+                .map_or(String::new(), |c| format!("{:.6}", c[0])),
+            p.area_fraction_ci95
+                .map_or(String::new(), |c| format!("{:.6}", c[1])),
             p.relative_accuracy_pct
                 .map_or(String::new(), |v| format!("{v:.2}")),
             p.particles,
@@ -659,6 +660,14 @@ pub fn summary_csv(s: &Summary) -> String {
     out
 }
 
+/// A pooled phase's 95 % interval in %, or why it has none.
+pub fn pooled_ci_text(p: &PooledPhase, dash: &str) -> String {
+    match p.area_fraction_ci95 {
+        Some([lo, hi]) => format!("{:.2}{dash}{:.2}", 100.0 * lo, 100.0 * hi),
+        None => "undefined (one field)".into(),
+    }
+}
+
 /// `summary.html`: a short self-contained page with the pooled table.
 pub fn summary_html(s: &Summary) -> String {
     let mut rows = String::new();
@@ -670,13 +679,12 @@ pub fn summary_html(s: &Summary) -> String {
             .map(|(e, v)| format!("{e} {v:.1}"))
             .collect();
         rows.push_str(&format!(
-            "<tr><td>{}</td><td>{}</td><td>{:.2}</td><td>{:.2}</td><td>{:.2} – {:.2}</td><td>{}</td><td>{}</td><td>{}</td></tr>\n",
+            "<tr><td>{}</td><td>{}</td><td>{:.2}</td><td>{:.2}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td></tr>\n",
             p.id,
             crate::report::html::esc(&p.name),
             100.0 * p.area_fraction_mean,
             100.0 * p.area_fraction_sd,
-            100.0 * p.area_fraction_ci95[0],
-            100.0 * p.area_fraction_ci95[1],
+            pooled_ci_text(p, " – "),
             p.relative_accuracy_pct.map_or("–".into(), |v| format!("{v:.1}")),
             p.particles,
             crate::report::html::esc(&comp.join(", "))

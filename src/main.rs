@@ -5,6 +5,12 @@ use std::process::ExitCode;
 use clap::Parser;
 
 fn main() -> ExitCode {
+    // A closed pipe (`modalmap inspect f | head`) ends the program quietly, as for any
+    // Unix tool, instead of a write error.
+    // SAFETY: setting a signal's disposition to the default before any thread starts.
+    unsafe {
+        libc::signal(libc::SIGPIPE, libc::SIG_DFL);
+    }
     let cli = modalmap::cli::Cli::parse();
     // SIGINT, SIGTERM, SIGHUP: remove this run's temporary files, leave OUT as it was.
     modalmap::cleanup::on_signals();

@@ -285,3 +285,99 @@ fn bad_option_values_exit_2() {
     let r = modalmap(&["frobnicate"]);
     assert_eq!(r.code, 2);
 }
+
+/// `modalmap inspect … | head`: a reader that goes away ends the program quietly (killed by
+/// SIGPIPE, as any Unix tool), not with "internal error … Broken pipe".
+#[test]
+fn a_closed_pipe_is_a_quiet_exit() {
+    use std::os::unix::process::ExitStatusExt;
+    let sample = Path::new(env!("CARGO_MANIFEST_DIR")).join("sample-maps");
+    let mut child = std::process::Command::new(env!("CARGO_BIN_EXE_modalmap"))
+        .args(["inspect", sample.to_str().unwrap()])
+        .stdout(std::process::Stdio::piped())
+        .stderr(std::process::Stdio::piped())
+        .spawn()
+        .unwrap();
+    drop(child.stdout.take()); // the reader is gone before anything is written
+    let out = child.wait_with_output().unwrap();
+    let stderr = String::from_utf8_lossy(&out.stderr);
+    assert!(stderr.is_empty(), "{stderr}");
+    assert_eq!(out.status.signal(), Some(libc::SIGPIPE), "{:?}", out.status);
+}
+
+/// A configuration file takes the natural TOML type: `phases = 3` as well as `"3"`.
+#[test]
+fn config_numbers_may_be_written_as_numbers() {
+    let tmp = tempfile::tempdir().unwrap();
+    let sample = Path::new(env!("CARGO_MANIFEST_DIR")).join("sample-maps");
+    for value in ["3", "\"3\""] {
+        let cfg = tmp.path().join("run.toml");
+        std::fs::write(&cfg, format!("phases = {value}\n")).unwrap();
+        let out = tmp.path().join(format!("out{}", value.len()));
+        let r = modalmap(&[
+            "map",
+            sample.to_str().unwrap(),
+            "-o",
+            out.to_str().unwrap(),
+            "--config",
+            cfg.to_str().unwrap(),
+            "--quiet",
+            "--no-bse",
+        ]);
+        assert_eq!(r.code, 0, "phases = {value}: {}", r.stderr);
+        let rep: serde_json::Value =
+            serde_json::from_slice(&std::fs::read(out.join("report.json")).unwrap()).unwrap();
+        assert_eq!(
+            rep["phases"].as_array().unwrap().len(),
+            3,
+            "phases = {value}"
+        );
+    }
+    std::fs::write(tmp.path().join("bad.toml"), "phases = 2.5\n").unwrap();
+    let r = modalmap(&[
+        "map",
+        sample.to_str().unwrap(),
+        "-o",
+        tmp.path().join("o").to_str().unwrap(),
+        "--config",
+        tmp.path().join("bad.toml").to_str().unwrap(),
+    ]);
+    assert_refused(&r, 2, &["bad.toml"]);
+}
+
+/// `synth` refuses the options its scenario ignores instead of dropping them.
+#[test]
+fn synth_refuses_what_it_would_ignore() {
+    let tmp = tempfile::tempdir().unwrap();
+    let out = tmp.path().join("s");
+    for extra in [["--seed", "7"], ["--size", "64"]] {
+        let mut args = vec!["synth", "-o", out.to_str().unwrap()];
+        args.extend(extra);
+        let r = modalmap(&args);
+        assert_refused(&r, 2, &[extra[0], "--scenario benchmark-rock"]);
+        assert!(!out.exists());
+    }
+}
+
+/// `auto` that chooses the largest count it was allowed says so: the sample has five
+/// phases, `auto:3` cannot find them all.
+#[test]
+fn auto_at_its_maximum_is_remarked() {
+    let tmp = tempfile::tempdir().unwrap();
+    let sample = Path::new(env!("CARGO_MANIFEST_DIR")).join("sample-maps");
+    let out = tmp.path().join("out");
+    let r = modalmap(&[
+        "map",
+        sample.to_str().unwrap(),
+        "-o",
+        out.to_str().unwrap(),
+        "--phases",
+        "auto:3",
+        "--no-bse",
+    ]);
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    assert!(r.stdout.contains("try --phases auto:7"), "{}", r.stdout);
+    let rep: serde_json::Value =
+        serde_json::from_slice(&std::fs::read(out.join("report.json")).unwrap()).unwrap();
+    assert!(rep["warnings"].to_string().contains("largest count tried"));
+}

@@ -108,6 +108,15 @@ fn fit_apply_in_shards_and_merge_match_the_truth() {
     assert_eq!(one["phases"], four["phases"], "shards change nothing");
     assert_eq!(one["fields"].as_array().unwrap().len(), 8);
     assert!(d.join("sum-all/summary.csv").is_file() && d.join("sum-all/summary.html").is_file());
+    // One field has no field-to-field spread: no interval, said as such, not a zero width.
+    let first = all.join(fields[0].0.file_name().unwrap());
+    let single = merge(&first, &d.join("sum-one"));
+    for p in single["phases"].as_array().unwrap() {
+        assert!(p["area_fraction_ci95"].is_null(), "{p}");
+        assert!(p["relative_accuracy_pct"].is_null(), "{p}");
+    }
+    let html = std::fs::read_to_string(d.join("sum-one/summary.html")).unwrap();
+    assert!(html.contains("undefined (one field)"));
 
     // Per model phase: the true area fraction of the truth phase it covers, field by
     // field, against the pooled mean and its interval.

@@ -357,6 +357,16 @@ pub fn build(
         .iter()
         .min_by(|a, b| a.bic.total_cmp(&b.bic))
         .map(|c| c.k);
+    let largest_tried = result.curve.iter().map(|c| c.k).max();
+    if let (Some(best), Some(max)) = (bic_minimum, largest_tried) {
+        if auto && best == max && t.phases.len() + 1 >= max {
+            warnings.push(format!(
+                "the phase count may be limited by the largest count tried: BIC was lowest at {max} components, the most tried, and {} phases remain; try --phases auto:{}",
+                t.phases.len(),
+                max + 4
+            ));
+        }
+    }
     for p in &t.phases {
         if p.area_fraction < 0.005 && p.pixels < 200 {
             warnings.push(format!(
