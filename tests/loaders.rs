@@ -85,6 +85,10 @@ fn h5py_broken_files_are_refused_with_reasons() {
             "attr_wrong_type.h5",
             "attribute `pixel_size_um` is not a number",
         ),
+        // Valid files whose maps sit behind links, which the reader cannot follow: the
+        // message says so (not "damaged").
+        ("soft_link.h5", "soft or external link"),
+        ("external_link.h5", "soft or external links are not read"),
     ];
     for (name, key) in cases {
         let e = load_field(&fixture(name), &Limits::default()).unwrap_err();

@@ -363,7 +363,11 @@ fn load_inner(
     }
     metadata.check(path)?;
     let Some((w, h, _)) = dims else {
-        return Err(bad(path, "contains no element maps".into()));
+        return Err(bad(
+            path,
+            "contains no element maps (maps reached through soft or external links are not read)"
+                .into(),
+        ));
     };
     let stack = MapStack::new(path, w, h, maps, metadata)?;
     Ok(LoadedField {
@@ -429,12 +433,25 @@ fn map_dataset(
 
 /// The error for a file the HDF5 reader refuses.
 fn unreadable(path: &Path, e: hdf5_pure::Error) -> Error {
+    // A soft or external link's entry has no object address (HDF5's "undefined address",
+    // all bits set); the reader stops on it as if the file were cut short.
+    if e.to_string().contains(&u64::MAX.to_string()) {
+        return Error::input(
+            path,
+            "holds an HDF5 soft or external link where modalmap looks for maps (or an entry \
+             with no address): this reader follows neither kind of link",
+            LINK_FIX,
+        );
+    }
     Error::input(
         path,
         format!("is not a readable HDF5 file ({e})"),
         "the file is damaged, truncated or not HDF5; export it again",
     )
 }
+
+const LINK_FIX: &str = "store each map as a dataset in the file itself (with h5py, \
+     f['maps/Fe'] = f['raw/Fe'][()] copies a linked dataset), then try again";
 
 /// Lists an HDF5 field for reading by rows (see [`RowListing`]).
 pub(crate) fn list_rows(path: &Path, limits: &Limits) -> Result<RowListing> {
@@ -489,7 +506,11 @@ pub(crate) fn list_rows(path: &Path, limits: &Limits) -> Result<RowListing> {
     }
     metadata.check(path)?;
     let Some((width, height)) = size else {
-        return Err(bad(path, "contains no element maps".into()));
+        return Err(bad(
+            path,
+            "contains no element maps (maps reached through soft or external links are not read)"
+                .into(),
+        ));
     };
     Ok(RowListing {
         file,
