@@ -818,6 +818,16 @@ fn resolve(
     matches: &[Option<Match>],
 ) -> std::result::Result<usize, (String, String)> {
     let k = table.phases.len();
+    // The phases found, for the message: the user chooses again from these.
+    let names: Vec<String> = table
+        .phases
+        .iter()
+        .zip(matches)
+        .map(|(p, m)| match m {
+            Some(m) => format!("{} ({}, closest {})", p.id, p.name, m.closest),
+            None => format!("{} ({})", p.id, p.name),
+        })
+        .collect();
     match sel {
         Selector::Id(id) => {
             let i = usize::from(*id) - 1;
@@ -825,8 +835,11 @@ fn resolve(
                 Ok(i)
             } else {
                 Err((
-                    format!("there is no phase {id}: the field has {k} phases"),
-                    format!("give a phase id from 1 to {k} (see phases.csv of a first run)"),
+                    format!(
+                        "there is no phase {id}: the field has {k} phases ({})",
+                        names.join("; ")
+                    ),
+                    format!("give a phase id from 1 to {k}"),
                 ))
             }
         }
@@ -837,15 +850,6 @@ fn resolve(
                         || matches[i]
                             .as_ref()
                             .is_some_and(|m| m.closest.eq_ignore_ascii_case(name))
-                })
-                .collect();
-            let names: Vec<String> = table
-                .phases
-                .iter()
-                .zip(matches)
-                .map(|(p, m)| match m {
-                    Some(m) => format!("{} ({}, closest {})", p.id, p.name, m.closest),
-                    None => format!("{} ({})", p.id, p.name),
                 })
                 .collect();
             match hits.as_slice() {

@@ -50,11 +50,10 @@ fn steel() -> Scenario {
         disc(cx, cy, 9.0, 3);
     }
     let fe_mn = vec![("Fe".to_string(), 0.99), ("Mn".to_string(), 0.01)];
-    Scenario {
-        width: w,
-        height: h,
+    Scenario::at_15_kv(
+        (w, h),
         labels,
-        phases: vec![
+        vec![
             Phase {
                 name: "ferrite",
                 composition: fe_mn,
@@ -74,7 +73,7 @@ fn steel() -> Scenario {
         ],
         // (element, counts per pixel at mass fraction 1, continuum per unit Z): light
         // elements weak, their continuum of the same order as a few wt% of signal.
-        maps: vec![
+        vec![
             ("C", 12.0, 0.03),
             ("O", 12.0, 0.03),
             ("Al", 40.0, 0.03),
@@ -83,12 +82,8 @@ fn steel() -> Scenario {
             ("Mn", 55.0, 0.04),
             ("Fe", 60.0, 0.04),
         ],
-        beam_kv: 15.0,
-        pixel_um: 0.5,
-        blur_px: 0.6,
-        dead_time: 0.002,
-        seed: 11,
-    }
+        11,
+    )
 }
 
 /// Four minerals in stripes and blocks (an invented scenario): quartz, albite, K-feldspar
@@ -106,11 +101,10 @@ fn rock() -> Scenario {
             }
         })
         .collect();
-    Scenario {
-        width: w,
-        height: h,
+    Scenario::at_15_kv(
+        (w, h),
         labels,
-        phases: vec![
+        vec![
             Phase {
                 name: "quartz",
                 composition: mass_fractions(&[("Si", 1.0), ("O", 2.0)]),
@@ -128,7 +122,7 @@ fn rock() -> Scenario {
                 composition: mass_fractions(&[("Fe", 3.0), ("O", 4.0)]),
             },
         ],
-        maps: vec![
+        vec![
             ("O", 12.0, 0.03),
             ("Na", 30.0, 0.03),
             ("Al", 40.0, 0.03),
@@ -136,12 +130,8 @@ fn rock() -> Scenario {
             ("K", 50.0, 0.035),
             ("Fe", 60.0, 0.04),
         ],
-        beam_kv: 15.0,
-        pixel_um: 0.5,
-        blur_px: 0.6,
-        dead_time: 0.002,
-        seed: 12,
-    }
+        12,
+    )
 }
 
 fn read_labels(path: &Path) -> Vec<u16> {

@@ -381,3 +381,21 @@ fn auto_at_its_maximum_is_remarked() {
         serde_json::from_slice(&std::fs::read(out.join("report.json")).unwrap()).unwrap();
     assert!(rep["warnings"].to_string().contains("largest count tried"));
 }
+
+/// A calibration that names a phase the field does not have lists the phases found.
+#[test]
+fn a_wrong_calibration_phase_lists_the_phases_found() {
+    let tmp = tempfile::tempdir().unwrap();
+    let sample = Path::new(env!("CARGO_MANIFEST_DIR")).join("sample-maps");
+    let r = modalmap(&[
+        "map",
+        sample.to_str().unwrap(),
+        "-o",
+        tmp.path().join("o").to_str().unwrap(),
+        "--calibrate",
+        "9=Cu3Sn",
+        "--no-bse",
+    ]);
+    assert_refused(&r, 2, &["--calibrate 9=Cu3Sn", "no phase 9", "1 (", "5 ("]);
+    assert!(!tmp.path().join("o").exists());
+}

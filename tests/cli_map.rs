@@ -376,6 +376,33 @@ fn calibrated_map_reports_compositions_names_and_advice() {
     for col in ["wt_Cu", "wt_sd_Cu", "at_Sn", "match", "match_quality"] {
         assert!(header.split(',').any(|c| c == col), "{col} in {header}");
     }
+    // Every row has the header's columns, and the ECD in µm is the ECD in pixels times
+    // the sample's pixel size.
+    let cols: Vec<&str> = header.split(',').collect();
+    let (px, um) = (
+        cols.iter().position(|c| *c == "mean_ecd_px").unwrap(),
+        cols.iter().position(|c| *c == "mean_ecd_um").unwrap(),
+    );
+    let size = rep["pixel_size_um"].as_f64().unwrap();
+    for row in csv.lines().skip(1) {
+        // The names hold no comma here, and the "A or B (X, Y not mapped)" names are
+        // quoted; split on the quoted field first.
+        let unquoted: String = row
+            .split('"')
+            .enumerate()
+            .map(|(i, part)| {
+                if i % 2 == 1 {
+                    part.replace(',', ";")
+                } else {
+                    part.to_string()
+                }
+            })
+            .collect();
+        let f: Vec<&str> = unquoted.split(',').collect();
+        assert_eq!(f.len(), cols.len(), "{row}");
+        let (p, u): (f64, f64) = (f[px].parse().unwrap(), f[um].parse().unwrap());
+        assert!((u - p * size).abs() < 1e-3 + 1e-3 * u, "{row}");
+    }
     assert!(r.stdout.contains("k-factors calibrated on"));
     assert!(r.stdout.contains("beam-physics advice"));
 }

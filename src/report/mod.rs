@@ -455,7 +455,7 @@ pub fn csv_field(v: &str) -> String {
 
 /// `phases.csv`: one row per phase.
 pub fn phases_csv(r: &Report) -> String {
-    let mut s = String::from("id,name,pixels,area_fraction,area_fraction_ci95_low,area_fraction_ci95_high,particles,mean_ecd_px,mean_confidence");
+    let mut s = String::from("id,name,pixels,area_fraction,area_fraction_ci95_low,area_fraction_ci95_high,particles,mean_ecd_px,mean_ecd_um,mean_confidence");
     for e in &r.elements {
         s.push_str(&format!(",mean_{e}"));
     }
@@ -477,8 +477,15 @@ pub fn phases_csv(r: &Report) -> String {
                 c.map(|v| format!("{v:.6}"))
             });
         s.push_str(&format!(
-            "{},{},{},{:.6},{lo},{hi},{},{:.3},{:.4}",
-            p.id, name, p.pixels, p.area_fraction, p.particles, p.mean_ecd_px, p.mean_confidence
+            "{},{},{},{:.6},{lo},{hi},{},{:.3},{},{:.4}",
+            p.id,
+            name,
+            p.pixels,
+            p.area_fraction,
+            p.particles,
+            p.mean_ecd_px,
+            p.mean_ecd_um.map_or(String::new(), |u| format!("{u:.4}")),
+            p.mean_confidence
         ));
         for m in [&p.mean, &p.sd] {
             for e in &r.elements {

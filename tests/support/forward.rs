@@ -100,6 +100,29 @@ pub struct Scenario {
 }
 
 impl Scenario {
+    /// A scenario acquired at 15 kV with 0.5 µm pixels, a beam spread of 0.6 pixels and a
+    /// dead time of 0.002 per count per pixel (about 12 % at 60 counts per pixel).
+    pub fn at_15_kv(
+        (width, height): (usize, usize),
+        labels: Vec<usize>,
+        phases: Vec<Phase>,
+        maps: Vec<(&'static str, f64, f64)>,
+        seed: u64,
+    ) -> Scenario {
+        Scenario {
+            width,
+            height,
+            labels,
+            phases,
+            maps,
+            beam_kv: 15.0,
+            pixel_um: 0.5,
+            blur_px: 0.6,
+            dead_time: 0.002,
+            seed,
+        }
+    }
+
     /// Expected counts (before the beam spread) of map `m` in phase `p`.
     fn expected(&self, p: usize, m: usize, matrix: &[Vec<f64>]) -> f64 {
         let (symbol, s, b) = self.maps[m];
