@@ -11,12 +11,12 @@
 //! phase. Accurate bulk analysis needs standards and ZAF or φ(ρz) corrections.
 //!
 //! **Background.** Element maps hold gross counts: characteristic X-rays plus the
-//! continuum under the peak. By default the continuum of each element's window is taken
-//! from the phase with the fewest counts of it, when that phase has under
-//! [`FREE_SHARE`] of the richest phase's counts or its k-weighted counts make under
-//! [`FREE_WT`] of its composition (it is then taken to be free of the element), and scaled to every other phase by the ratio of mean atomic numbers, since the
-//! continuum grows in proportion to Z (Kramers 1923). Where no phase is that poor in an
-//! element, nothing is subtracted and the report says so.
+//! continuum under the peak, which grows in proportion to Z (Kramers 1923). By default
+//! the continuum of each element is fitted as a level per unit mean Z over the phases free
+//! of it ([`Background`]) and subtracted from every phase; where no phase is free of an
+//! element, nothing is subtracted and the report says so. Elements whose net counts stay
+//! under Currie's critical level are not detected ([`currie`]): reported with their limit
+//! and left out of the normalisation.
 //!
 //! **Uncertainty.** Counts are Poisson: the sum N of counts over a phase's pixels has
 //! variance N. The variances of the gross counts, of the background estimate and of the
