@@ -8,7 +8,7 @@
 //! 2. **Registration.** Phase correlation (Kuglin & Hines 1975) between the resampled BSE
 //!    image and a BSE image *predicted* from the phase map (each phase drawn at its
 //!    backscatter coefficient), refined to sub-pixel precision with an upsampled DFT around
-//!    the peak (Guizar-Sicairos, Thurman & Fienup 2008). Sign convention (ARCHITECTURE.md):
+//!    the peak (Guizar-Sicairos, Thurman & Fienup 2008). Sign convention (method-notes.md, "Shift convention"):
 //!    a feature at map (x, y) appears in the BSE image at ((x + dx)·s, (y + dy)·s). A
 //!    registration whose correlation peak does not stand out is not used.
 //! 3. **The check.** Per phase, the BSE mean, SD and SE on interior pixels (all eight

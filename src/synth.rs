@@ -851,7 +851,7 @@ mod tests {
     #[test]
     fn bse_follows_the_shift_convention() {
         // A single disk at map (20, 15); with shift (3, -2) and scale 2 its centre must
-        // appear in the BSE image at ((20+3)·2, (15-2)·2) = (46, 26) (ARCHITECTURE.md).
+        // appear in the BSE image at ((20+3)·2, (15-2)·2) = (46, 26) (method-notes.md, "Shift convention").
         let micro = Microstructure::new(
             vec![SynthPhase::formula("Au"), SynthPhase::formula("C")],
             |x, y| {

@@ -157,7 +157,7 @@ fn unrelated_image_is_not_trusted() {
 
 /// End to end on the sample field, whose BSE image was rendered with a drift of
 /// (2.6, −1.4) map pixels at twice the resolution (`synth::solder_joint`): the report must
-/// give that shift with the sign of ARCHITECTURE.md, and the brightness order must agree
+/// give that shift with the sign of method-notes.md ("Shift convention"), and the brightness order must agree
 /// with the chemistry (Cu-rich phases and tin are told apart by η).
 #[test]
 fn sample_field_shift_and_order() {
