@@ -297,6 +297,19 @@ impl ValidCompositionOptions {
         &self.given
     }
 
+    /// The files these options read (k-factors, libraries), each with what it is.
+    pub fn input_files(&self) -> impl Iterator<Item = (&'static str, &Path)> {
+        let g = &self.given;
+        g.kfactors
+            .iter()
+            .map(|p| ("k-factor file", p.as_path()))
+            .chain(
+                g.libraries
+                    .iter()
+                    .map(|p| ("reference-phase library", p.as_path())),
+            )
+    }
+
     /// The reference library in use.
     pub fn library(&self) -> &Library {
         &self.library

@@ -803,21 +803,15 @@ fn fit(inputs: &[PathBuf], output: &std::path::Path, args: &MapArgs) -> Result<u
             path: p,
         })
         .collect();
-    let given = composition.options();
-    for (what, p) in args
-        .config
-        .iter()
-        .map(|p| ("configuration file", p))
-        .chain(given.kfactors.iter().map(|p| ("k-factor file", p)))
-        .chain(
-            given
-                .libraries
-                .iter()
-                .map(|p| ("reference-phase library", p)),
-        )
-    {
-        reads.push(crate::guard::Input { what, path: p });
-    }
+    reads.extend(args.config.iter().map(|p| crate::guard::Input {
+        what: "configuration file",
+        path: p,
+    }));
+    reads.extend(
+        composition
+            .input_files()
+            .map(|(what, path)| crate::guard::Input { what, path }),
+    );
     crate::guard::check_file_output(output, &reads)?;
     let limits = args.limits.checked()?;
     let mut fields = Vec::new();

@@ -67,7 +67,6 @@ impl FieldJob<'_> {
     /// the job.
     pub fn check_outputs(&self, fields: &[&Path], outs: &[PathBuf]) -> Result<()> {
         use crate::guard::Input;
-        let given = self.composition.options();
         let mut inputs: Vec<Input> = fields
             .iter()
             .map(|path| Input {
@@ -79,14 +78,11 @@ impl FieldJob<'_> {
             what: "BSE image",
             path: p,
         }));
-        inputs.extend(given.kfactors.iter().map(|p| Input {
-            what: "k-factor file",
-            path: p,
-        }));
-        inputs.extend(given.libraries.iter().map(|p| Input {
-            what: "reference-phase library",
-            path: p,
-        }));
+        inputs.extend(
+            self.composition
+                .input_files()
+                .map(|(what, path)| Input { what, path }),
+        );
         inputs.extend(
             self.also_reads
                 .iter()
@@ -303,10 +299,9 @@ pub(crate) fn dropped_inputs(skipped: &[crate::io::Skipped]) -> Vec<String> {
 
 /// k-factor and library files are inputs too: their hashes go into the provenance.
 fn add_composition_inputs(files: &mut Vec<PathBuf>, job: &FieldJob) {
-    let given = job.composition.options();
-    for p in given.kfactors.iter().chain(&given.libraries) {
-        if !files.contains(p) {
-            files.push(p.clone());
+    for (_, p) in job.composition.input_files() {
+        if !files.iter().any(|f| f == p) {
+            files.push(p.to_path_buf());
         }
     }
 }

@@ -377,8 +377,8 @@ fn net_rates(
     phases: &[PhaseCounts],
     background: &Background,
     zbar: &[f64],
+    lv: &[f64],
 ) -> Vec<(Vec<f64>, Vec<f64>)> {
-    let lv = level_var(phases, background, zbar);
     phases
         .iter()
         .enumerate()
@@ -404,8 +404,8 @@ fn detection(
     phases: &[PhaseCounts],
     background: &Background,
     zbar: &[f64],
+    lv: &[f64],
 ) -> Vec<Vec<(bool, f64)>> {
-    let lv = level_var(phases, background, zbar);
     phases
         .iter()
         .enumerate()
@@ -461,18 +461,23 @@ pub fn quantify(mapped: &[ElementInfo], phases: &[PhaseCounts], rules: &Rules) -
             )
         })
         .collect();
-    let mut background = fit(&zbar);
-    let mut nets = net_rates(phases, &background, &zbar);
-    let mut det = detection(phases, &background, &zbar);
+    // Net rates and detections for a continuum fitted at these mean Z (the level's
+    // variance computed once for both).
+    let evaluate = |zbar: &[f64]| {
+        let background = fit(zbar);
+        let lv = level_var(phases, &background, zbar);
+        let nets = net_rates(phases, &background, zbar, &lv);
+        let det = detection(phases, &background, zbar, &lv);
+        (background, nets, det)
+    };
+    let (mut background, mut nets, mut det) = evaluate(&zbar);
     for _ in 0..6 {
         zbar = nets
             .iter()
             .zip(&det)
             .map(|((net, _), d)| mean_z(&out, &fractions(&detected_only(net, d))))
             .collect();
-        background = fit(&zbar);
-        nets = net_rates(phases, &background, &zbar);
-        det = detection(phases, &background, &zbar);
+        (background, nets, det) = evaluate(&zbar);
     }
     let compositions = nets
         .into_iter()
