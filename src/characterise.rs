@@ -24,6 +24,7 @@ use crate::error::{Error, Result};
 use crate::library::{best_match, composition_from_wt, Library, Match};
 use crate::phases::{ClearSums, PhaseTable};
 use crate::stack::MapStack;
+use crate::unmix::{Unmixing, MAX_VARIANCE_INFLATION};
 
 /// The k-factor file format name and version.
 pub const KFACTOR_FORMAT: &str = "modalmap.kfactors/1";
@@ -404,6 +405,10 @@ pub struct CompositionReport {
     pub oxygen: String,
     /// Pixels kept clear of other phases when summing counts.
     pub clearance_px: usize,
+    /// How the phases without interior pixels were unmixed from their neighbours, when
+    /// any were.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub unmixing: Option<UnmixingReport>,
     /// What the ± values are.
     pub uncertainty: String,
     /// Things to know about these compositions.
@@ -461,6 +466,10 @@ pub fn characterise(
             })
             .at(clearance)
         },
+        Some(&|| {
+            let planes: Vec<&[f32]> = counts.maps().iter().map(|m| m.counts.as_slice()).collect();
+            crate::unmix::unmix(labels, width, height, &planes, k)
+        }),
         opts,
     )
 }
@@ -473,6 +482,7 @@ pub fn characterise_with(
     lines: &[(ElementInfo, Option<String>)],
     md: &crate::stack::FieldMetadata,
     sums_at: &dyn Fn(usize) -> Vec<(PhaseCounts, bool)>,
+    unmix: Option<&dyn Fn() -> Option<Unmixing>>,
     opts: &ValidCompositionOptions,
 ) -> Result<(CompositionReport, Advice)> {
     let lines = lines.to_vec();
@@ -535,6 +545,7 @@ pub fn characterise_with(
             .collect::<Vec<Option<Match>>>()
     };
     let mut clearance = DEFAULT_CLEARANCE_PX;
+    let mut xray_range_um = None;
     let mut sums = sums_at(clearance);
     let plain: Vec<PhaseCounts> = sums.iter().map(|s| s.0.clone()).collect();
     let eligible: Vec<bool> = sums.iter().map(|s| s.1).collect();
@@ -554,7 +565,8 @@ pub fn characterise_with(
             })
             .collect();
         let a = advisor::advise(&lines, md.beam_kv, md.pixel_size_um, &inputs);
-        if let Some(r) = a.largest_xray_range_um() {
+        xray_range_um = a.largest_xray_range_um();
+        if let Some(r) = xray_range_um {
             let want = (r / (2.0 * px)).ceil() as usize;
             clearance = want.clamp(DEFAULT_CLEARANCE_PX, MAX_CLEARANCE_PX);
             if clearance != DEFAULT_CLEARANCE_PX {
@@ -562,8 +574,29 @@ pub fn characterise_with(
             }
         }
     }
-    let plain: Vec<PhaseCounts> = sums.iter().map(|s| s.0.clone()).collect();
+    let mut plain: Vec<PhaseCounts> = sums.iter().map(|s| s.0.clone()).collect();
     let eligible: Vec<bool> = sums.iter().map(|s| s.1).collect();
+    let symbols: Vec<&str> = infos.iter().map(|e| e.symbol).collect();
+    let unmixing = unmix_thin(
+        &mut plain,
+        &eligible,
+        unmix,
+        &Around {
+            table,
+            pixel_um: md.pixel_size_um,
+            xray_range_um,
+            clearance,
+            symbols: &symbols,
+        },
+    );
+    notes.extend(unmixing.1.iter().cloned());
+    let (unmixing, unmixed) = (unmixing.0, unmixing.2);
+    // Unmixed phases can show the continuum too.
+    let eligible: Vec<bool> = eligible
+        .iter()
+        .zip(&unmixed)
+        .map(|(a, b)| *a || *b)
+        .collect();
     // Net counts with unit factors on the final sums: what a calibration is fitted to.
     let unit = run(&plain, &eligible, &KFactors::unit(infos.len()));
 
@@ -709,7 +742,7 @@ pub fn characterise_with(
                 .or_else(|| {
                     matches[i]
                         .as_ref()
-                        .filter(|_| sums[i].1)
+                        .filter(|_| sums[i].1 || unmixed[i])
                         .and_then(|m| m.name.clone())
                 })
                 .unwrap_or_else(|| p.name.clone())
@@ -721,8 +754,9 @@ pub fn characterise_with(
         p.composition = q.phases[i].clone();
         p.composition_pixels = sums[i].0.pixels;
         p.composition_from_interior = sums[i].1;
+        p.composition_unmixed = unmixed[i];
         p.reference = matches[i].clone();
-        if !sums[i].1 {
+        if !sums[i].1 && !unmixed[i] {
             notes.push(format!(
                 "phase {} ({}): no pixel lies {clearance} px clear of other phases, so its composition comes from all its pixels and is mixed with its neighbours",
                 p.id, p.name
@@ -749,8 +783,15 @@ pub fn characterise_with(
                     e.symbol
                 ),
                 (_, None) => {
+                    let size = match background.unmeasured[i] {
+                        Some(c) => format!(
+                            "; judging by the other maps' continuum ({c:.4} counts per pixel per unit mean Z, their median) it may be of that order, which its ± includes as one standard deviation, so names that differ in {} alone stay open",
+                            e.symbol
+                        ),
+                        None => String::new(),
+                    };
                     notes.push(format!(
-                        "{}: no phase is free of it (every phase's counts exceed a continuum), so its continuum cannot be measured on this field: none is subtracted, its amounts are over-estimated by the continuum under its line and its detection is not tested{}",
+                        "{}: no phase is free of it (every phase's counts exceed a continuum), so its continuum cannot be measured on this field: none is subtracted, its amounts are over-estimated by the continuum under its line and its detection is not tested{size}{}",
                         e.symbol,
                         if e.symbol == "O" { "; for oxides and silicates, --oxygen stoichiometry avoids this" } else { "" }
                     ));
@@ -802,6 +843,7 @@ pub fn characterise_with(
         background: background_notes,
         oxygen: oxygen_text,
         clearance_px: clearance,
+        unmixing,
         uncertainty: "± is one standard deviation from counting statistics (Poisson) of the summed counts, the background and the calibration; it leaves out the error of the ratio method itself".into(),
         notes,
         options: opts.given.clone(),
@@ -822,6 +864,137 @@ pub fn characterise_with(
         .collect();
     let advice = advisor::advise(&lines, md.beam_kv, md.pixel_size_um, &inputs);
     Ok((report, advice))
+}
+
+/// The beam spread fitted at the phase boundaries and the phases unmixed with it.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct UnmixingReport {
+    /// Gaussian σ of the beam's spread, pixels.
+    pub sigma_px: f64,
+    /// The same in µm, when the pixel size is known.
+    pub sigma_um: Option<f64>,
+    /// True when σ is only a bound (the end of the range tried).
+    pub sigma_is_bound: bool,
+    /// The largest X-ray generation range the advisor computed, µm, for comparison.
+    pub xray_range_um: Option<f64>,
+    /// Weighted residual per degree of freedom (1: the mixing model and Poisson counting
+    /// explain the counts; the ± values are scaled up by it where it exceeds 1).
+    pub dispersion: f64,
+    /// Ids of the phases whose compositions were unmixed.
+    pub phases: Vec<u16>,
+}
+
+/// What [`unmix_thin`] needs to know of the field besides the counts.
+struct Around<'a> {
+    table: &'a PhaseTable,
+    pixel_um: Option<f64>,
+    xray_range_um: Option<f64>,
+    clearance: usize,
+    symbols: &'a [&'a str],
+}
+
+/// Unmixes the phases without interior pixels (`interior` false) when the caller can
+/// provide the counts (`unmix`): their sums are replaced by the unmixed pure rates where
+/// the solve is well conditioned and gives no impossible negative rate. Returns the
+/// report, the notes, and per phase whether it was unmixed.
+fn unmix_thin(
+    plain: &mut [PhaseCounts],
+    interior: &[bool],
+    unmix: Option<&dyn Fn() -> Option<Unmixing>>,
+    around: &Around,
+) -> (Option<UnmixingReport>, Vec<String>, Vec<bool>) {
+    let Around {
+        table,
+        pixel_um: px,
+        xray_range_um,
+        clearance,
+        symbols,
+    } = *around;
+    let k = plain.len();
+    let mut unmixed = vec![false; k];
+    let mut notes = Vec::new();
+    if interior.iter().all(|&i| i) {
+        return (None, notes, unmixed);
+    }
+    let Some(unmix) = unmix else {
+        notes.push(format!(
+            "phases without pixels {clearance} px clear of their neighbours are not unmixed when the field is streamed in strips: their compositions are mixed with their neighbours'"
+        ));
+        return (None, notes, unmixed);
+    };
+    let Some(u) = unmix() else {
+        return (None, notes, unmixed);
+    };
+    for i in (0..k).filter(|&i| !interior[i]) {
+        let p = &table.phases[i];
+        if u.inflation[i] > MAX_VARIANCE_INFLATION {
+            notes.push(format!(
+                "phase {} ({}): unmixing it from its neighbours is ill-conditioned (variance inflation {:.0}, over {MAX_VARIANCE_INFLATION:.0}): its composition comes from all its pixels and is mixed with its neighbours'",
+                p.id, p.name, u.inflation[i]
+            ));
+            continue;
+        }
+        // A pure rate well below zero is impossible: the label footprint or the beam
+        // model does not fit this phase (common practice, no source: 3 standard
+        // deviations).
+        let negative: Vec<String> = (0..u.rates[i].len())
+            .filter(|&e| u.rates[i][e] < -3.0 * u.var[i][e].sqrt())
+            .map(|e| {
+                format!(
+                    "{} {:.2} ± {:.2}",
+                    symbols[e],
+                    u.rates[i][e],
+                    u.var[i][e].sqrt()
+                )
+            })
+            .collect();
+        if !negative.is_empty() {
+            notes.push(format!(
+                "phase {} ({}): unmixing it from its neighbours gives impossible negative rates ({} counts per pixel), so the mixing model does not fit it (too small for its outline to be traced, or a beam spread unlike a Gaussian): its composition comes from all its pixels and is mixed with its neighbours'",
+                p.id, p.name, negative.join(", ")
+            ));
+            continue;
+        }
+        let n = plain[i].pixels;
+        plain[i] = PhaseCounts {
+            pixels: n,
+            sums: u.rates[i].iter().map(|r| r * n as f64).collect(),
+            rate_var: Some(u.var[i].clone()),
+        };
+        unmixed[i] = true;
+    }
+    let ids: Vec<u16> = (0..k)
+        .filter(|&i| unmixed[i])
+        .map(|i| table.phases[i].id)
+        .collect();
+    if ids.is_empty() {
+        return (None, notes, unmixed);
+    }
+    let list: Vec<String> = ids.iter().map(u16::to_string).collect();
+    let sigma = match px {
+        Some(px) => format!("σ = {:.2} px = {:.2} µm", u.sigma_px, u.sigma_px * px),
+        None => format!("σ = {:.2} px", u.sigma_px),
+    };
+    let range = xray_range_um.map_or(String::new(), |r| {
+        format!("; for comparison, the X-ray range is {r:.2} µm")
+    });
+    notes.push(format!(
+        "phase{} {}: no pixel lies {clearance} px clear of other phases, so {} unmixed from the neighbours' counts (linear mixing with the beam's spread, {sigma}{}, fitted at the phase boundaries{range}; residual per degree of freedom {:.2})",
+        if ids.len() > 1 { "s" } else { "" },
+        list.join(", "),
+        if ids.len() > 1 { "their compositions are" } else { "its composition is" },
+        if u.at_grid_edge { ", a bound only" } else { "" },
+        u.dispersion
+    ));
+    let report = UnmixingReport {
+        sigma_px: u.sigma_px,
+        sigma_um: px.map(|p| u.sigma_px * p),
+        sigma_is_bound: u.at_grid_edge,
+        xray_range_um,
+        dispersion: u.dispersion,
+        phases: ids,
+    };
+    (Some(report), notes, unmixed)
 }
 
 /// The phase (index into the table) a calibration selector names.

@@ -30,5 +30,6 @@ pub mod report;
 pub mod run;
 pub mod stack;
 pub mod synth;
+pub mod unmix;
 
 pub use error::{Error, ErrorKind, Result};

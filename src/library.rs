@@ -237,10 +237,12 @@ pub struct Match {
 
 /// Tolerance τ of a measured mass fraction `c` against a reference fraction `r` (both
 /// 0..1): 2 % absolute + 5 % of the amount when calibrated, 5 % + 25 % when not (common
-/// practice for semi-quantitative EDS, no source).
+/// practice for semi-quantitative EDS, no source). An element the reference lacks is held
+/// to the calibrated tolerance either way: no k-factor turns a detected element's counts
+/// into nothing, so an unknown factor cannot excuse them.
 pub fn tolerance(c: f64, r: f64, calibrated: bool) -> f64 {
     let m = c.max(r);
-    if calibrated {
+    if calibrated || r == 0.0 {
         0.02 + 0.05 * m
     } else {
         0.05 + 0.25 * m

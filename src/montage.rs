@@ -557,6 +557,20 @@ pub fn label_streamed(
 }
 
 impl StreamedField {
+    /// The whole field again, binned onto the labelling grid, when its values fit within
+    /// `max_values` (`None` when they do not): for the steps that need every pixel's counts
+    /// at once after the labelling (unmixing thin phases).
+    pub fn read_whole(&mut self, bin: usize, max_values: u64) -> Result<Option<MapStack>> {
+        let rows = self.height / bin * bin;
+        if (self.width as u64) * (rows as u64) * (self.lines.len() as u64) > max_values {
+            return Ok(None);
+        }
+        self.rewind()?;
+        let stack = crate::prepare::bin_stack(self.read(0, rows)?, bin)?;
+        self.rewind()?;
+        Ok(Some(stack))
+    }
+
     /// Starts every map again from its first row.
     fn rewind(&mut self) -> Result<()> {
         let png = self

@@ -53,6 +53,9 @@ pub struct Phase {
     /// False when no pixel of the phase lies clear of its neighbours, so its composition
     /// comes from all its pixels and is mixed with theirs.
     pub composition_from_interior: bool,
+    /// True when the phase has no interior pixels and its composition was unmixed from its
+    /// neighbours' (linear mixing with the beam's spread, [`crate::unmix`]).
+    pub composition_unmixed: bool,
     /// The closest reference phase, once matched.
     pub reference: Option<crate::library::Match>,
     /// Number of separate features (8-connected regions).
@@ -269,6 +272,7 @@ pub fn table_from_sums(
     let phase_counts: Vec<PhaseCounts> = order
         .iter()
         .map(|&c| PhaseCounts {
+            rate_var: None,
             pixels: pixels[c],
             sums: sum[c * d..(c + 1) * d].to_vec(),
         })
@@ -330,6 +334,7 @@ pub fn table_from_sums(
                 composition,
                 composition_pixels: pixels[c],
                 composition_from_interior: false,
+                composition_unmixed: false,
                 reference: None,
                 particles: 0,
                 mean_ecd_px: 0.0,
@@ -407,29 +412,7 @@ impl ClearSums {
         k: usize,
         rows: std::ops::Range<usize>,
     ) -> ClearSums {
-        use imageproc::distance_transform::{distance_transform, Norm};
-        // Boundary pixels: an 8-neighbour carries another label. A pixel is r clear of
-        // other labels exactly when it is at least r from every boundary pixel.
-        let mut boundary = vec![0u8; width * height];
-        boundary
-            .par_chunks_mut(width)
-            .enumerate()
-            .for_each(|(y, row)| {
-                for (x, b) in row.iter_mut().enumerate() {
-                    let l = labels[y * width + x];
-                    let differs = (y.saturating_sub(1)..(y + 2).min(height)).any(|yy| {
-                        (x.saturating_sub(1)..(x + 2).min(width))
-                            .any(|xx| labels[yy * width + xx] != l)
-                    });
-                    if differs {
-                        *b = 255;
-                    }
-                }
-            });
-        let img: ImageBuffer<Luma<u8>, Vec<u8>> =
-            ImageBuffer::from_raw(width as u32, height as u32, boundary).expect("size matches");
-        let any_boundary = img.as_raw().iter().any(|&v| v > 0);
-        let dist = distance_transform(&img, Norm::LInf).into_raw();
+        let dist = boundary_distance(labels, width, height);
         let d = planes.len();
         // Sums by exact clearance, in fixed blocks of rows combined in order (the same
         // result whatever the thread count) …
@@ -448,11 +431,9 @@ impl ClearSums {
                         continue;
                     }
                     let c = l as usize - 1;
-                    let clear = if any_boundary {
-                        usize::from(dist[i]).min(MAX_CLEARANCE)
-                    } else {
-                        MAX_CLEARANCE
-                    };
+                    let clear = dist
+                        .as_ref()
+                        .map_or(MAX_CLEARANCE, |d| usize::from(d[i]).min(MAX_CLEARANCE));
                     s.pixels[clear][c] += 1;
                     for (e, p) in planes.iter().enumerate() {
                         s.sums[clear][c * d + e] += f64::from(p[i]);
@@ -497,6 +478,7 @@ impl ClearSums {
                 };
                 (
                     PhaseCounts {
+                        rate_var: None,
                         pixels: self.pixels[rr][c],
                         sums: self.sums[rr][c * d..(c + 1) * d].to_vec(),
                     },
@@ -505,6 +487,34 @@ impl ClearSums {
             })
             .collect()
     }
+}
+
+/// Chessboard distance of every pixel of a `width × height` label image to the nearest
+/// boundary pixel (one with another label among its 8 neighbours), capped at 255: a pixel
+/// at distance r has no other label within r pixels. `None` when the image holds one label.
+pub fn boundary_distance(labels: &[u16], width: usize, height: usize) -> Option<Vec<u8>> {
+    use imageproc::distance_transform::{distance_transform, Norm};
+    let mut boundary = vec![0u8; width * height];
+    boundary
+        .par_chunks_mut(width)
+        .enumerate()
+        .for_each(|(y, row)| {
+            for (x, b) in row.iter_mut().enumerate() {
+                let l = labels[y * width + x];
+                let differs = (y.saturating_sub(1)..(y + 2).min(height)).any(|yy| {
+                    (x.saturating_sub(1)..(x + 2).min(width)).any(|xx| labels[yy * width + xx] != l)
+                });
+                if differs {
+                    *b = 255;
+                }
+            }
+        });
+    if !boundary.iter().any(|&v| v > 0) {
+        return None;
+    }
+    let img: ImageBuffer<Luma<u8>, Vec<u8>> =
+        ImageBuffer::from_raw(width as u32, height as u32, boundary).expect("size matches");
+    Some(distance_transform(&img, Norm::LInf).into_raw())
 }
 
 /// Summed counts of each phase (label 1..=k) over its interior: pixels with no other label

@@ -354,16 +354,43 @@ fn process_streamed(
     } = streamed;
     progress("compositions");
     let model_index: Vec<usize> = table.phases.iter().map(|p| p.model_index).collect();
+    // Thin phases are unmixed as on a field mapped whole, when the field fits in memory
+    // (read a third time, only if some phase needs it).
+    let (lines, metadata) = (field.lines.clone(), field.metadata.clone());
+    let whole = std::cell::RefCell::new((&mut field, None));
+    let bin = job.map.options().prepare.bin;
+    let table_k = table.phases.len();
+    let unmix = || -> Option<crate::unmix::Unmixing> {
+        let mut w = whole.borrow_mut();
+        let stack = match w.0.read_whole(bin, limits.max_field_values()) {
+            Ok(Some(s)) => s,
+            Ok(None) => {
+                w.1 = Some("the field is too large to hold whole, so phases without interior pixels are not unmixed from their neighbours (raise --max-pixels to allow it)".to_string());
+                return None;
+            }
+            Err(e) => {
+                w.1 = Some(format!(
+                    "phases without interior pixels are not unmixed: {e}"
+                ));
+                return None;
+            }
+        };
+        let planes: Vec<&[f32]> = stack.maps().iter().map(|m| m.counts.as_slice()).collect();
+        let (gw, gh) = (segmentation.width, segmentation.height);
+        crate::unmix::unmix(&segmentation.labels, gw, gh, &planes, table_k)
+    };
     let (composition_report, advice) = crate::characterise::characterise_with(
         &mut table,
-        &field.lines,
-        &field.metadata,
+        &lines,
+        &metadata,
         &|r| {
             let by_model = clear.at(r);
             model_index.iter().map(|&m| by_model[m].clone()).collect()
         },
+        Some(&unmix),
         job.composition,
     )?;
+    warnings.extend(whole.into_inner().1);
     use_model_names(&mut table, model);
     let mut files = field.files.clone();
     add_composition_inputs(&mut files, job);

@@ -46,6 +46,9 @@ pub struct PhaseCounts {
     pub pixels: usize,
     /// Sum of counts per mapped element.
     pub sums: Vec<f64>,
+    /// Variance of each element's rate (counts per pixel) when the sums are not plain
+    /// Poisson counts (unmixed from the neighbours); `None`: Poisson, sums / pixels².
+    pub rate_var: Option<Vec<f64>>,
 }
 
 impl PhaseCounts {
@@ -54,7 +57,10 @@ impl PhaseCounts {
     }
 
     fn rate_var(&self, e: usize) -> f64 {
-        self.sums[e].max(1.0) / (self.pixels.max(1) as f64).powi(2)
+        match &self.rate_var {
+            Some(v) => v[e],
+            None => self.sums[e].max(1.0) / (self.pixels.max(1) as f64).powi(2),
+        }
     }
 }
 
@@ -135,6 +141,10 @@ pub struct Background {
     pub per_z: Vec<Option<f64>>,
     /// Per mapped element: the phases judged free of it, whose counts fixed the level.
     pub free: Vec<Vec<usize>>,
+    /// Per mapped element whose level could not be measured (no phase free of it): the
+    /// median level of the maps where it could, as an order of magnitude of the continuum
+    /// left under its line. It is not subtracted; it widens the element's uncertainty.
+    pub unmeasured: Vec<Option<f64>>,
 }
 
 impl Background {
@@ -144,6 +154,7 @@ impl Background {
             subtracted: false,
             per_z: vec![None; n],
             free: vec![Vec::new(); n],
+            unmeasured: vec![None; n],
         }
     }
 
@@ -164,20 +175,44 @@ impl Background {
                 free[e] = f;
             }
         }
+        // The levels found, for the order of magnitude of those that could not be.
+        let mut found: Vec<f64> = per_z.iter().flatten().copied().collect();
+        found.sort_by(f64::total_cmp);
+        let median = (!found.is_empty()).then(|| {
+            let m = found.len() / 2;
+            if found.len() % 2 == 1 {
+                found[m]
+            } else {
+                0.5 * (found[m - 1] + found[m])
+            }
+        });
+        let unmeasured = (0..n)
+            .map(|e| {
+                (per_z[e].is_none() && k[e].is_finite())
+                    .then_some(median)
+                    .flatten()
+            })
+            .collect();
         Background {
             subtracted: true,
             per_z,
             free,
+            unmeasured,
         }
     }
 }
 
-/// Whether `sum` counts over `pixels` pixels of mean Z `zbar` are explained by a
+/// Whether phase `p`'s counts of element `e` at mean Z `zbar` are explained by a
 /// continuum of `c` counts per pixel per unit Z alone.
-fn continuum_alone(sum: f64, pixels: usize, zbar: f64, c: f64) -> bool {
-    let mu = c * zbar * pixels as f64;
-    let sd = (mu + (CONTINUUM_MODEL_REL_SD * mu).powi(2)).sqrt();
-    sum - mu <= 3.0 * sd
+fn continuum_alone(p: &PhaseCounts, e: usize, zbar: f64, c: f64) -> bool {
+    let n = p.pixels as f64;
+    let mu = c * zbar * n;
+    let counting = match &p.rate_var {
+        None => mu,
+        Some(v) => v[e] * n * n,
+    };
+    let sd = (counting + (CONTINUUM_MODEL_REL_SD * mu).powi(2)).sqrt();
+    p.sums[e] - mu <= 3.0 * sd
 }
 
 /// The continuum level of element `e` and the phases free of it (see [`Background`]).
@@ -208,7 +243,7 @@ fn fit_one(
         let next: Vec<usize> = cand
             .iter()
             .copied()
-            .filter(|&p| continuum_alone(phases[p].sums[e], phases[p].pixels, zbar[p], c))
+            .filter(|&p| continuum_alone(&phases[p], e, zbar[p], c))
             .collect();
         if next.is_empty() || next == free {
             break;
@@ -387,8 +422,13 @@ fn net_rates(
             let net: Vec<f64> = (0..n)
                 .map(|e| pc.rate(e) - background.rate(e, zbar[p]))
                 .collect();
+            // A continuum that could not be measured stays in; its likely size (the other
+            // maps' level) counts as one standard deviation.
             let var: Vec<f64> = (0..n)
-                .map(|e| pc.rate_var(e) + zbar[p].powi(2) * lv[e])
+                .map(|e| {
+                    let left = background.unmeasured[e].map_or(0.0, |c| c * zbar[p]);
+                    pc.rate_var(e) + zbar[p].powi(2) * lv[e] + left * left
+                })
                 .collect();
             (net, var)
         })
@@ -417,7 +457,14 @@ fn detection(
                     let b = background.rate(e, zbar[p]) * n;
                     let var_b =
                         (zbar[p] * n).powi(2) * lv[e] + (CONTINUUM_MODEL_REL_SD * b).powi(2);
-                    let (lc, ld) = currie(b, var_b);
+                    let (lc, ld) = match &pc.rate_var {
+                        None => currie(b, var_b),
+                        // Unmixed rates: their own variance stands for the counts'.
+                        Some(v) => {
+                            let s0 = (v[e] * n * n + var_b).sqrt();
+                            (1.645 * s0, 2.71 + 3.29 * s0)
+                        }
+                    };
                     let free = background.free[e].contains(&p);
                     let detected = !tested || (!free && pc.sums[e] - b > lc);
                     (detected, ld / n)
@@ -699,6 +746,7 @@ mod tests {
     fn ratio_method_worked_example() {
         let mapped = els(&["Cu", "Sn"]);
         let phases = [PhaseCounts {
+            rate_var: None,
             pixels: 1000,
             sums: vec![2.0e6, 1.0e6],
         }];
@@ -723,6 +771,7 @@ mod tests {
     fn counting_uncertainty_matches_the_hand_derivation() {
         let (na, nb) = (400.0f64, 1600.0f64);
         let phases = [PhaseCounts {
+            rate_var: None,
             pixels: 10,
             sums: vec![na, nb],
         }];
@@ -743,6 +792,7 @@ mod tests {
     fn oxygen_from_valences() {
         let mapped = els(&["Al"]);
         let phases = [PhaseCounts {
+            rate_var: None,
             pixels: 100,
             sums: vec![1.0e5],
         }];
@@ -769,6 +819,7 @@ mod tests {
         let counts = |f: &str| {
             let c = parse_formula(f).unwrap();
             PhaseCounts {
+                rate_var: None,
                 pixels: 10_000,
                 sums: mapped
                     .iter()
@@ -833,6 +884,7 @@ mod tests {
         // Counts invented: peaks 60-80 counts per pixel, continuum 0.2 per pixel per unit Z.
         let cont = |z: f64| 0.2 * z;
         let pure = |el: usize, rate: f64, z: f64, n: usize| PhaseCounts {
+            rate_var: None,
             pixels: n,
             sums: (0..3)
                 .map(|e| n as f64 * (if e == el { rate } else { 0.0 } + cont(z)))
@@ -887,10 +939,12 @@ mod tests {
     fn no_continuum_invented_when_every_phase_holds_the_element() {
         let phases = vec![
             PhaseCounts {
+                rate_var: None,
                 pixels: 1000,
                 sums: vec![50_000.0, 20_000.0],
             },
             PhaseCounts {
+                rate_var: None,
                 pixels: 1000,
                 sums: vec![45_000.0, 30_000.0],
             },

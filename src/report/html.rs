@@ -623,7 +623,11 @@ pub fn page(r: &Report, extras: &Extras) -> String {
             a = 100.0 * p.area_fraction,
             ci = super::ci_text(p.area_fraction_ci95, " – "),
             comp = esc(&comp.join(", ")),
-            mixed = if p.composition_from_interior { "" } else { " (mixed with neighbours)" },
+            mixed = match (p.composition_from_interior, p.composition_unmixed) {
+                (true, _) => "",
+                (false, true) => " (unmixed from its neighbours)",
+                (false, false) => " (mixed with neighbours)",
+            },
             n = p.particles,
         );
     }

@@ -79,6 +79,10 @@ pub struct PhaseEntry {
     /// False when the phase has too few pixels clear of its neighbours, so its
     /// composition comes from all its pixels and is mixed with theirs.
     pub composition_from_interior: bool,
+    /// True when the phase has no interior pixels and its composition was unmixed from its
+    /// neighbours' counts (linear mixing with the beam's spread).
+    #[serde(default)]
+    pub composition_unmixed: bool,
     /// The closest reference phase and the match quality.
     #[serde(rename = "match", skip_serializing_if = "Option::is_none", default)]
     pub reference: Option<crate::library::Match>,
@@ -326,6 +330,7 @@ pub fn build(
                 composition_basis: composition.basis.clone(),
                 composition_pixels: p.composition_pixels,
                 composition_from_interior: p.composition_from_interior,
+                composition_unmixed: p.composition_unmixed,
                 reference: p.reference.clone(),
                 particles: p.particles,
                 mean_ecd_px: p.mean_ecd_px,
