@@ -139,8 +139,13 @@ pub fn map_stack_with_progress(
     let fit = select::fit(&f, &opts.cluster)?;
     drop(t);
     let st = opts.transform.params().stabilise;
-    let auto = matches!(opts.cluster.get().phases, PhaseCount::Auto { .. });
-    let (mut clusters, mut simplifications) = if auto {
+    // Simplified when fitted with spare components: an automatic count, or a fixed one
+    // with the Poisson mixture.
+    let spares = match opts.cluster.get().phases {
+        PhaseCount::Auto { .. } => true,
+        PhaseCount::Fixed(_) => select::spares_for(opts.cluster.get().method),
+    };
+    let (mut clusters, mut simplifications) = if spares {
         simplify::merge_indistinguishable(fit.clusters, st)
     } else {
         (fit.clusters, Vec::new())
@@ -154,7 +159,7 @@ pub fn map_stack_with_progress(
     drop(t);
     // Dissolve boundary bands and phases below the size floor, then label again.
     for _ in 0..8 {
-        if !auto || clusters.k() < 2 {
+        if !spares || clusters.k() < 2 {
             break;
         }
         let inside = interior_fractions(&seg, clusters.k());
@@ -194,6 +199,25 @@ pub fn map_stack_with_progress(
             simplifications.push(note);
         }
         seg = refine(&f, &clusters, &opts.refine);
+    }
+    // A fixed count: merge the closest phases until the count asked for remains (fewer
+    // is what the data separate; the report says so).
+    if let PhaseCount::Fixed(want) = opts.cluster.get().phases {
+        if clusters.k() > want {
+            while clusters.k() > want {
+                let (a, b, j) = simplify::closest_pair(&clusters, st);
+                simplifications.push(Simplification {
+                    action: format!(
+                        "merged the two closest phases ({} and {}) to give the {want} phases asked for",
+                        simplify::fmt_counts(&clusters.expected_counts(a, st)),
+                        simplify::fmt_counts(&clusters.expected_counts(b, st))
+                    ),
+                    value: j,
+                });
+                clusters = clusters.merged(a, b);
+            }
+            seg = refine(&f, &clusters, &opts.refine);
+        }
     }
     // Per-phase averaging after a first segmentation: re-estimate each phase from its
     // interior pixels, then label again.

@@ -29,7 +29,7 @@ impl std::str::FromStr for PhaseCount {
     type Err = String;
     fn from_str(s: &str) -> std::result::Result<Self, String> {
         if s == "auto" {
-            return Ok(PhaseCount::Auto { max: 10 });
+            return Ok(PhaseCount::Auto { max: AUTO_MAX });
         }
         if let Some(m) = s.strip_prefix("auto:") {
             return m
@@ -62,7 +62,7 @@ impl Default for ClusterParams {
     fn default() -> Self {
         ClusterParams {
             method: Method::Poisson,
-            phases: PhaseCount::Auto { max: 10 },
+            phases: PhaseCount::Auto { max: AUTO_MAX },
             seed: 1,
             n_init: 4,
             sample_size: 200_000,
@@ -303,6 +303,23 @@ const SHORT_EM: PoissonParams = PoissonParams {
     tol: 1e-4,
 };
 
+/// Components fitted beyond a fixed phase count N at least: the spares go to boundary
+/// bands and duplicates that are removed afterwards (common practice, no source: bands
+/// along two or three kinds of boundary).
+pub const SPARE_COMPONENTS: usize = 3;
+
+/// Whether a fixed phase count is fitted with spare components that the simplification
+/// removes: for the Poisson mixture only. With k-means or the Gaussian mixture the spares
+/// split a phase along its counting noise into pieces without interior pixels, which the
+/// band rule would then dissolve (a ceramic's whole matrix, in a test): those methods fit
+/// N components directly.
+pub fn spares_for(method: Method) -> bool {
+    method == Method::Poisson
+}
+
+/// The largest count `auto` tries.
+pub const AUTO_MAX: usize = 10;
+
 /// Fits the model of a field.
 pub fn fit(f: &Features, params: &ValidClusterParams) -> Result<Fit> {
     let p = params.get();
@@ -344,70 +361,77 @@ pub fn fit(f: &Features, params: &ValidClusterParams) -> Result<Fit> {
             "ask for fewer phases, or lower --min-counts if real phases were masked as empty",
         ));
     }
-    match p.phases {
-        PhaseCount::Fixed(k) => Ok(Fit {
-            clusters: fit_k(&rows, d, k, p)?,
-            curve: Vec::new(),
-            fitted_pixels: n,
-        }),
-        PhaseCount::Auto { max } => {
-            let mut curve = Vec::new();
-            let mut best: Option<(f64, Clusters)> = None;
-            let mut consider = |c: Clusters, b: f64, curve: &mut Vec<CurvePoint>| {
-                curve.push(CurvePoint { k: c.k(), bic: b });
-                if best.as_ref().is_none_or(|(bb, _)| b < *bb) {
-                    best = Some((b, c));
-                }
-            };
-            if p.method == Method::Poisson {
-                let mut m = poisson::fit(
-                    rows.as_slice(),
-                    d,
-                    poisson::from_labels(&rows, d, &vec![0; n], 1),
-                    &EM,
-                );
-                for k in 1..=max.min(n) {
-                    if k > 1 {
-                        if !distinct_rows(&rows, d, k) {
-                            break;
-                        }
-                        m = grow_poisson(&rows, d, &m, p);
-                    }
-                    let b = m.bic(n);
-                    consider(Clusters::Poisson { model: m.clone() }, b, &mut curve);
-                }
-            } else {
-                // The curve uses the Gaussian mixture's likelihood for both Gaussian methods.
-                for k in 1..=max.min(n) {
-                    if !distinct_rows(&rows, d, k) {
-                        break;
-                    }
-                    let cp = ClusterParams {
-                        method: Method::Gmm,
-                        ..*p
-                    };
-                    let Ok(c) = fit_k(&rows, d, k, &cp) else {
-                        break;
-                    };
-                    let Clusters::Gmm { model } = &c else {
-                        unreachable!("asked for a mixture")
-                    };
-                    let b = model.bic(n);
-                    consider(c, b, &mut curve);
-                }
-            }
-            let (_, chosen) =
-                best.ok_or_else(|| Error::internal("no phase count could be fitted"))?;
-            let clusters = if p.method == Method::Kmeans {
-                fit_k(&rows, d, chosen.k(), p)?
-            } else {
-                chosen
-            };
-            Ok(Fit {
-                clusters,
-                curve,
+    // A fixed count N is fitted like the automatic one, with spare components (BIC
+    // chooses among N..=max(N + SPARE_COMPONENTS, the automatic count's largest)), so
+    // that a band of mixed boundary pixels or a duplicate takes a spare one and is
+    // removed afterwards instead of taking one of the N phases; where the automatic count
+    // finds N phases, N gives the same model. Only the Poisson mixture: the Gaussian
+    // methods split a phase along its noise when given spares (see [`spares_for`]).
+    let (lo, max) = match p.phases {
+        PhaseCount::Fixed(k) if !spares_for(p.method) => {
+            return Ok(Fit {
+                clusters: fit_k(&rows, d, k, p)?,
+                curve: Vec::new(),
                 fitted_pixels: n,
             })
         }
+        PhaseCount::Fixed(k) => (k, (k + SPARE_COMPONENTS).max(AUTO_MAX)),
+        PhaseCount::Auto { max } => (1, max),
+    };
+    let mut curve = Vec::new();
+    let mut best: Option<(f64, Clusters)> = None;
+    let mut consider = |c: Clusters, b: f64, curve: &mut Vec<CurvePoint>| {
+        curve.push(CurvePoint { k: c.k(), bic: b });
+        if c.k() >= lo && best.as_ref().is_none_or(|(bb, _)| b < *bb) {
+            best = Some((b, c));
+        }
+    };
+    if p.method == Method::Poisson {
+        let mut m = poisson::fit(
+            rows.as_slice(),
+            d,
+            poisson::from_labels(&rows, d, &vec![0; n], 1),
+            &EM,
+        );
+        for k in 1..=max.min(n) {
+            if k > 1 {
+                if !distinct_rows(&rows, d, k) {
+                    break;
+                }
+                m = grow_poisson(&rows, d, &m, p);
+            }
+            let b = m.bic(n);
+            consider(Clusters::Poisson { model: m.clone() }, b, &mut curve);
+        }
+    } else {
+        // The curve uses the Gaussian mixture's likelihood for both Gaussian methods.
+        for k in lo..=max.min(n) {
+            if !distinct_rows(&rows, d, k) {
+                break;
+            }
+            let cp = ClusterParams {
+                method: Method::Gmm,
+                ..*p
+            };
+            let Ok(c) = fit_k(&rows, d, k, &cp) else {
+                break;
+            };
+            let Clusters::Gmm { model } = &c else {
+                unreachable!("asked for a mixture")
+            };
+            let b = model.bic(n);
+            consider(c, b, &mut curve);
+        }
     }
+    let (_, chosen) = best.ok_or_else(|| Error::internal("no phase count could be fitted"))?;
+    let clusters = if p.method == Method::Kmeans {
+        fit_k(&rows, d, chosen.k(), p)?
+    } else {
+        chosen
+    };
+    Ok(Fit {
+        clusters,
+        curve,
+        fitted_pixels: n,
+    })
 }

@@ -138,33 +138,41 @@ pub struct Simplification {
     pub value: f64,
 }
 
+/// The two components whose expected counts are closest (smallest J-divergence), with
+/// the divergence. Needs k ≥ 2.
+pub fn closest_pair(c: &Clusters, st: Stabilise) -> (usize, usize, f64) {
+    let k = c.k();
+    let ends: Vec<Vec<f64>> = (0..k).map(|i| c.expected_counts(i, st)).collect();
+    let mut best: Option<(f64, usize, usize)> = None;
+    for a in 0..k {
+        for b in a + 1..k {
+            let j = j_divergence(&ends[a], &ends[b]);
+            if best.is_none_or(|bb| j < bb.0) {
+                best = Some((j, a, b));
+            }
+        }
+    }
+    let (j, a, b) = best.expect("k ≥ 2");
+    (a, b, j)
+}
+
 /// Merges the closest pair while its divergence is below [`MERGE_BELOW`].
 pub fn merge_indistinguishable(mut c: Clusters, st: Stabilise) -> (Clusters, Vec<Simplification>) {
     let mut notes = Vec::new();
     loop {
-        let k = c.k();
-        if k < 2 {
+        if c.k() < 2 {
             break;
         }
-        let ends: Vec<Vec<f64>> = (0..k).map(|i| c.expected_counts(i, st)).collect();
-        let mut best: Option<(f64, usize, usize)> = None;
-        for a in 0..k {
-            for b in a + 1..k {
-                let j = j_divergence(&ends[a], &ends[b]);
-                if best.is_none_or(|bb| j < bb.0) {
-                    best = Some((j, a, b));
-                }
-            }
-        }
-        let (j, a, b) = best.expect("k ≥ 2");
+        let (a, b, j) = closest_pair(&c, st);
         if j >= MERGE_BELOW {
             break;
         }
+        let ends: Vec<Vec<f64>> = [a, b].iter().map(|&i| c.expected_counts(i, st)).collect();
         notes.push(Simplification {
             action: format!(
                 "merged two components a single pixel cannot tell apart ({} and {})",
-                fmt_counts(&ends[a]),
-                fmt_counts(&ends[b])
+                fmt_counts(&ends[0]),
+                fmt_counts(&ends[1])
             ),
             value: j,
         });

@@ -372,6 +372,14 @@ pub fn build(
             ));
         }
     }
+    if let PhaseCount::Fixed(want) = options.cluster.phases {
+        if t.phases.len() < want {
+            warnings.push(format!(
+                "{want} phases were asked for but the data separate only {}: the others were bands of mixed boundary pixels, components too small to keep, or duplicates a single pixel cannot tell apart (see the simplifications); check the BSE image for a phase the maps cannot show",
+                t.phases.len()
+            ));
+        }
+    }
     for p in &t.phases {
         if p.area_fraction < 0.005 && p.pixels < 200 {
             warnings.push(format!(

@@ -27,9 +27,11 @@ use rand_distr::{Distribution, Poisson};
 /// Standard atomic weights (IUPAC 2021, from memory) and atomic numbers of the elements
 /// the test scenarios use.
 pub const ELEMENTS: &[(&str, u32, f64)] = &[
+    ("H", 1, 1.008),
     ("C", 6, 12.011),
     ("O", 8, 15.999),
     ("Na", 11, 22.990),
+    ("Mg", 12, 24.305),
     ("Al", 13, 26.982),
     ("Si", 14, 28.085),
     ("S", 16, 32.06),

@@ -1,0 +1,95 @@
+//! The phase count the user asks for, against fields from the independent forward model
+//! (tests/support): `--phases N` with the true N must find every true phase and do at
+//! least as well as the automatic count.
+//!
+//! Thresholds, fixed before measuring: a true phase is found when one phase of the result
+//! holds more than half of its pixels, a different one for each true phase (the issue's
+//! criterion); pixel agreement with N given no worse than the automatic count's by more
+//! than 0.001 (one pixel in a thousand: what changing the count may cost at ties).
+
+mod support;
+
+use std::collections::BTreeMap;
+use std::path::Path;
+
+use support::scenarios::{eutectic_braze, read_labels, steel_with_inclusions};
+
+/// Maps the field with `phases` and returns the labels and report.json.
+fn map(field: &Path, out: &Path, phases: &str) -> (Vec<u16>, serde_json::Value) {
+    let r = std::process::Command::new(env!("CARGO_BIN_EXE_modalmap"))
+        .args(["map", field.to_str().unwrap(), "-o", out.to_str().unwrap()])
+        .args(["--quiet", "--no-bse", "--phases", phases])
+        .output()
+        .unwrap();
+    assert!(r.status.success(), "{}", String::from_utf8_lossy(&r.stderr));
+    let report = serde_json::from_slice(&std::fs::read(out.join("report.json")).unwrap()).unwrap();
+    (read_labels(&out.join("labels.png")), report)
+}
+
+/// Per true phase, the found phase holding most of its pixels and that share; and the
+/// pixel agreement when each found phase stands for the true phase it overlaps most.
+fn score(truth: &[usize], k: usize, labels: &[u16]) -> (Vec<(u16, f64)>, f64) {
+    let mut table: BTreeMap<(usize, u16), usize> = BTreeMap::new();
+    for (&t, &l) in truth.iter().zip(labels) {
+        *table.entry((t, l)).or_default() += 1;
+    }
+    let best = (0..k)
+        .map(|t| {
+            let total: usize = table.iter().filter(|e| e.0 .0 == t).map(|e| e.1).sum();
+            let (l, n) = table
+                .iter()
+                .filter(|e| e.0 .0 == t && e.0 .1 > 0)
+                .map(|e| (e.0 .1, *e.1))
+                .max_by_key(|e| e.1)
+                .unwrap_or((0, 0));
+            (l, n as f64 / total as f64)
+        })
+        .collect();
+    let mut of_label: BTreeMap<u16, (usize, usize)> = BTreeMap::new();
+    for (&(t, l), &n) in &table {
+        let e = of_label.entry(l).or_insert((t, 0));
+        if n > e.1 {
+            *e = (t, n);
+        }
+    }
+    let agree: usize = of_label.iter().filter(|e| *e.0 > 0).map(|e| e.1 .1).sum();
+    (best, agree as f64 / truth.len() as f64)
+}
+
+#[test]
+fn the_true_phase_count_finds_every_phase_and_matches_auto() {
+    for s in [steel_with_inclusions(), eutectic_braze()] {
+        let tmp = tempfile::tempdir().unwrap();
+        let field = tmp.path().join("field");
+        s.write(&field);
+        let k = s.phases.len();
+        let (auto_labels, _) = map(&field, &tmp.path().join("auto"), "auto");
+        let (fixed_labels, report) = map(&field, &tmp.path().join("fixed"), &k.to_string());
+        let (auto_best, auto_agree) = score(&s.labels, k, &auto_labels);
+        let (best, agree) = score(&s.labels, k, &fixed_labels);
+        let names: Vec<&str> = s.phases.iter().map(|p| p.name).collect();
+        assert_eq!(
+            report["phases"].as_array().unwrap().len(),
+            k,
+            "{names:?}: {report:#}"
+        );
+        let mut ids: Vec<u16> = best.iter().map(|b| b.0).collect();
+        ids.sort_unstable();
+        ids.dedup();
+        assert_eq!(
+            ids.len(),
+            k,
+            "{names:?}: two true phases share a found phase: {best:?}"
+        );
+        for ((name, (_, share)), (_, auto_share)) in names.iter().zip(&best).zip(&auto_best) {
+            assert!(
+                *share > 0.5,
+                "{name}: {share:.3} of its pixels in one phase (auto {auto_share:.3})"
+            );
+        }
+        assert!(
+            agree >= auto_agree - 0.001,
+            "{names:?}: pixel agreement {agree:.4} with --phases {k}, {auto_agree:.4} with auto"
+        );
+    }
+}
