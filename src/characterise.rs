@@ -731,6 +731,7 @@ pub fn characterise_with(
 
     // Names: calibration phases keep the name they were given; others take their match,
     // unless their composition is mixed with their neighbours'.
+    let out_symbols: Vec<String> = q.elements.iter().map(|e| e.symbol.to_string()).collect();
     let names: Vec<String> = table
         .phases
         .iter()
@@ -745,7 +746,15 @@ pub fn characterise_with(
                         .filter(|_| sums[i].1 || unmixed[i])
                         .and_then(|m| m.name.clone())
                 })
-                .unwrap_or_else(|| p.name.clone())
+                .unwrap_or_else(|| {
+                    // No reference name: the major elements of the final composition
+                    // (continuum out, unmixed), not of the raw counts it was first named by.
+                    if sums[i].1 || unmixed[i] {
+                        crate::phases::name_of(&out_symbols, &q.phases[i].wt)
+                    } else {
+                        p.name.clone()
+                    }
+                })
         })
         .collect();
     let names = unique_names(names);

@@ -111,7 +111,9 @@ pub fn mean_ci(values: &[f64]) -> (f64, f64, f64, f64) {
     (mean, s, t * s / n.sqrt(), t)
 }
 
-fn name_of(elements: &[String], comp: &[f64]) -> String {
+/// A phase's name from its major elements: "El-rich" over 75 %, else up to three
+/// elements of 15 % or more, largest first.
+pub fn name_of(elements: &[String], comp: &[f64]) -> String {
     let mut order: Vec<usize> = (0..comp.len()).collect();
     order.sort_by(|&a, &b| comp[b].total_cmp(&comp[a]).then(a.cmp(&b)));
     if comp.is_empty() || comp[order[0]] <= 0.0 {

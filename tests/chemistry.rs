@@ -123,6 +123,10 @@ fn thin_lamellae_and_small_particles_are_unmixed_from_their_neighbours() {
     for (entry, want) in found.iter().zip([Some("copper"), Some("silver"), None]) {
         assert!(right_or_unsure(entry, want, false), "{entry:#}");
     }
+    // Without a reference name, the particles are named by the major elements of their
+    // unmixed composition: not by the substrate's Cu that their raw counts carry.
+    let name = found[2]["name"].as_str().unwrap();
+    assert!(name.contains("Ti") && !name.contains("Cu"), "{name}");
 }
 
 /// Whether a phase's name is the truth `want` (a reference name, or `None` for a phase
