@@ -24,7 +24,7 @@ use crate::error::{Error, Result};
 use crate::library::{best_match, composition_from_wt, Library, Match};
 use crate::phases::{ClearSums, PhaseTable};
 use crate::stack::MapStack;
-use crate::unmix::{Unmixing, MAX_VARIANCE_INFLATION};
+use crate::unmix::{UnmixSource, MAX_VARIANCE_INFLATION};
 
 /// The k-factor file format name and version.
 pub const KFACTOR_FORMAT: &str = "modalmap.kfactors/1";
@@ -466,9 +466,9 @@ pub fn characterise(
             })
             .at(clearance)
         },
-        Some(&|| {
+        Some(&|wanted: &[bool]| {
             let planes: Vec<&[f32]> = counts.maps().iter().map(|m| m.counts.as_slice()).collect();
-            crate::unmix::unmix(labels, width, height, &planes, k)
+            crate::unmix::unmix(labels, width, height, &planes, wanted)
         }),
         opts,
     )
@@ -482,7 +482,7 @@ pub fn characterise_with(
     lines: &[(ElementInfo, Option<String>)],
     md: &crate::stack::FieldMetadata,
     sums_at: &dyn Fn(usize) -> Vec<(PhaseCounts, bool)>,
-    unmix: Option<&dyn Fn() -> Option<Unmixing>>,
+    unmix: Option<UnmixSource>,
     opts: &ValidCompositionOptions,
 ) -> Result<(CompositionReport, Advice)> {
     let lines = lines.to_vec();
@@ -909,7 +909,7 @@ struct Around<'a> {
 fn unmix_thin(
     plain: &mut [PhaseCounts],
     interior: &[bool],
-    unmix: Option<&dyn Fn() -> Option<Unmixing>>,
+    unmix: Option<UnmixSource>,
     around: &Around,
 ) -> (Option<UnmixingReport>, Vec<String>, Vec<bool>) {
     let Around {
@@ -931,7 +931,8 @@ fn unmix_thin(
         ));
         return (None, notes, unmixed);
     };
-    let Some(u) = unmix() else {
+    let wanted: Vec<bool> = interior.iter().map(|i| !i).collect();
+    let Some(u) = unmix(&wanted) else {
         return (None, notes, unmixed);
     };
     for i in (0..k).filter(|&i| !interior[i]) {

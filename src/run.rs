@@ -359,8 +359,7 @@ fn process_streamed(
     let (lines, metadata) = (field.lines.clone(), field.metadata.clone());
     let whole = std::cell::RefCell::new((&mut field, None));
     let bin = job.map.options().prepare.bin;
-    let table_k = table.phases.len();
-    let unmix = || -> Option<crate::unmix::Unmixing> {
+    let unmix = |wanted: &[bool]| -> Option<crate::unmix::Unmixing> {
         let mut w = whole.borrow_mut();
         let stack = match w.0.read_whole(bin, limits.max_field_values()) {
             Ok(Some(s)) => s,
@@ -377,7 +376,7 @@ fn process_streamed(
         };
         let planes: Vec<&[f32]> = stack.maps().iter().map(|m| m.counts.as_slice()).collect();
         let (gw, gh) = (segmentation.width, segmentation.height);
-        crate::unmix::unmix(&segmentation.labels, gw, gh, &planes, table_k)
+        crate::unmix::unmix(&segmentation.labels, gw, gh, &planes, wanted)
     };
     let (composition_report, advice) = crate::characterise::characterise_with(
         &mut table,

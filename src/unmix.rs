@@ -39,6 +39,10 @@ const MIN_EXPECTED: f64 = 0.5;
 /// Rows per block of the parallel sums.
 const BLOCK_ROWS: usize = 64;
 
+/// What computes the unmixing on demand, given per phase whether to unmix it (the caller
+/// holds the counts: in memory, or read again from a streamed field).
+pub type UnmixSource<'a> = &'a dyn Fn(&[bool]) -> Option<Unmixing>;
+
 /// The pure count rates of every phase, unmixed.
 #[derive(Debug, Clone, PartialEq)]
 pub struct Unmixing {
@@ -89,12 +93,29 @@ impl Components<'_> {
     }
 }
 
-/// The blurred indicators at every pixel within the kernel's reach of a boundary: the
-/// pixel indices and, per pixel, one share per component.
-fn shares(comp: &Components, kern: &[f64], dist: &[u8]) -> (Vec<usize>, Vec<f32>) {
+/// Whether pixel `i` is in a sample of one pixel in `stride`: a fixed hash of the index,
+/// so the same pixels whatever the thread count.
+fn sampled(i: usize, stride: u64) -> bool {
+    stride <= 1 || ((i as u64).wrapping_mul(0x9E37_79B9_7F4A_7C15) >> 40).is_multiple_of(stride)
+}
+
+/// The blurred indicators at the pixels within the kernel's reach of a boundary (one in
+/// `stride` of them, within `focus` when given): the pixel indices and, per pixel, one
+/// share per component.
+fn shares(
+    comp: &Components,
+    kern: &[f64],
+    dist: &[u8],
+    stride: u64,
+    focus: Option<&[bool]>,
+) -> (Vec<usize>, Vec<f32>) {
     let (w, h, c) = (comp.width, comp.height, comp.count);
     let r = kern.len() / 2;
-    let near = |i: usize| usize::from(dist[i]) < r;
+    let near =
+        |i: usize| usize::from(dist[i]) < r && sampled(i, stride) && focus.is_none_or(|f| f[i]);
+    if stride > 1 {
+        return sparse_shares(comp, kern, near);
+    }
     let blocks: Vec<(Vec<usize>, Vec<f32>)> = (0..h.div_ceil(BLOCK_ROWS))
         .into_par_iter()
         .map(|b| {
@@ -139,6 +160,11 @@ fn shares(comp: &Components, kern: &[f64], dist: &[u8]) -> (Vec<usize>, Vec<f32>
             (idx, sh)
         })
         .collect();
+    concat(blocks)
+}
+
+/// The blocks' pixel indices and shares, in block order.
+fn concat(blocks: Vec<(Vec<usize>, Vec<f32>)>) -> (Vec<usize>, Vec<f32>) {
     let mut idx = Vec::new();
     let mut sh = Vec::new();
     for (i, s) in blocks {
@@ -148,52 +174,109 @@ fn shares(comp: &Components, kern: &[f64], dist: &[u8]) -> (Vec<usize>, Vec<f32>
     (idx, sh)
 }
 
+/// [`shares`] at a sparse sample of pixels: each pixel's shares summed over its window
+/// directly, cheaper than a separable pass over every row when few pixels are wanted.
+fn sparse_shares(
+    comp: &Components,
+    kern: &[f64],
+    keep: impl Fn(usize) -> bool + Sync,
+) -> (Vec<usize>, Vec<f32>) {
+    let (w, h, c) = (comp.width, comp.height, comp.count);
+    let r = kern.len() / 2;
+    let blocks: Vec<(Vec<usize>, Vec<f32>)> = (0..h.div_ceil(BLOCK_ROWS))
+        .into_par_iter()
+        .map(|b| {
+            let (mut idx, mut sh) = (Vec::new(), Vec::new());
+            for y in b * BLOCK_ROWS..((b + 1) * BLOCK_ROWS).min(h) {
+                for x in (0..w).filter(|&x| keep(y * w + x)) {
+                    let mut out = vec![0f32; c];
+                    for (ty, &gy) in kern.iter().enumerate() {
+                        let yy = (y + ty).saturating_sub(r).min(h - 1);
+                        for (tx, &gx) in kern.iter().enumerate() {
+                            let xx = (x + tx).saturating_sub(r).min(w - 1);
+                            out[comp.of(yy * w + xx)] += (gy * gx) as f32;
+                        }
+                    }
+                    idx.push(y * w + x);
+                    sh.extend(out);
+                }
+            }
+            (idx, sh)
+        })
+        .collect();
+    concat(blocks)
+}
+
 /// Per component and element, over the pixels out of the kernel's reach: pixels, Σy, Σy².
+#[derive(Clone)]
 struct Interior {
     n: Vec<f64>,
     sum: Vec<f64>,
     sum2: Vec<f64>,
 }
 
-fn interior(comp: &Components, planes: &[&[f32]], dist: &[u8], r: usize) -> Interior {
-    let (c, d) = (comp.count, planes.len());
-    let n_px = comp.width * comp.height;
-    let blocks: Vec<Interior> = (0..n_px.div_ceil(BLOCK_ROWS * comp.width))
-        .into_par_iter()
-        .map(|b| {
-            let mut s = Interior {
-                n: vec![0.0; c],
-                sum: vec![0.0; c * d],
-                sum2: vec![0.0; c * d],
-            };
-            let span = b * BLOCK_ROWS * comp.width..((b + 1) * BLOCK_ROWS * comp.width).min(n_px);
-            for i in span.filter(|&i| usize::from(dist[i]) >= r) {
-                let p = comp.of(i);
-                s.n[p] += 1.0;
-                for (e, plane) in planes.iter().enumerate() {
-                    let y = f64::from(plane[i]);
-                    s.sum[p * d + e] += y;
-                    s.sum2[p * d + e] += y * y;
-                }
-            }
-            s
-        })
-        .collect();
-    let mut total = Interior {
-        n: vec![0.0; c],
-        sum: vec![0.0; c * d],
-        sum2: vec![0.0; c * d],
-    };
-    for b in blocks {
-        total.n.iter_mut().zip(&b.n).for_each(|(a, x)| *a += x);
-        total.sum.iter_mut().zip(&b.sum).for_each(|(a, x)| *a += x);
-        total
-            .sum2
-            .iter_mut()
-            .zip(&b.sum2)
-            .for_each(|(a, x)| *a += x);
+impl Interior {
+    fn zero(c: usize, d: usize) -> Interior {
+        Interior {
+            n: vec![0.0; c],
+            sum: vec![0.0; c * d],
+            sum2: vec![0.0; c * d],
+        }
     }
-    total
+
+    fn add(&mut self, o: &Interior) {
+        self.n.iter_mut().zip(&o.n).for_each(|(a, x)| *a += x);
+        self.sum.iter_mut().zip(&o.sum).for_each(|(a, x)| *a += x);
+        self.sum2.iter_mut().zip(&o.sum2).for_each(|(a, x)| *a += x);
+    }
+}
+
+/// [`Interior`] sums by distance to the nearest boundary, from one pass: bucket t holds the
+/// pixels at distance t (the last bucket, at [`REACH`] or more), so the pixels out of
+/// reach of a kernel of radius r are the buckets from r on.
+struct ByDistance {
+    buckets: Vec<Interior>,
+}
+
+/// The largest kernel radius, pixels (3σ for the widest σ tried).
+const REACH: usize = 12;
+
+impl ByDistance {
+    fn new(comp: &Components, planes: &[&[f32]], dist: &[u8]) -> ByDistance {
+        let (c, d) = (comp.count, planes.len());
+        let n_px = comp.width * comp.height;
+        let block = BLOCK_ROWS * comp.width;
+        let blocks: Vec<Vec<Interior>> = (0..n_px.div_ceil(block))
+            .into_par_iter()
+            .map(|b| {
+                let mut s = vec![Interior::zero(c, d); REACH + 1];
+                for i in b * block..((b + 1) * block).min(n_px) {
+                    let (t, p) = (usize::from(dist[i]).min(REACH), comp.of(i));
+                    s[t].n[p] += 1.0;
+                    for (e, plane) in planes.iter().enumerate() {
+                        let y = f64::from(plane[i]);
+                        s[t].sum[p * d + e] += y;
+                        s[t].sum2[p * d + e] += y * y;
+                    }
+                }
+                s
+            })
+            .collect();
+        let mut buckets = vec![Interior::zero(c, d); REACH + 1];
+        for b in blocks {
+            buckets.iter_mut().zip(&b).for_each(|(a, x)| a.add(x));
+        }
+        ByDistance { buckets }
+    }
+
+    /// The pixels at distance `r` or more.
+    fn from(&self, r: usize) -> Interior {
+        let mut total = self.buckets[REACH].clone();
+        for t in (r.min(REACH)..REACH).rev() {
+            total.add(&self.buckets[t]);
+        }
+        total
+    }
 }
 
 /// One element's data at one σ: the shares at the pixels near a boundary (`idx`, `sh`),
@@ -205,6 +288,8 @@ struct ElementData<'a> {
     plane: &'a [f32],
     e: usize,
     d: usize,
+    /// Pixels each sampled pixel near a boundary stands for.
+    zone_weight: f64,
 }
 
 /// One element's weighted normal equations (AᵀWA, AᵀWy) and weighted residual at the
@@ -217,6 +302,7 @@ fn normal_equations(data: &ElementData, x: &[f64]) -> (DMatrix<f64>, DVector<f64
         plane,
         e,
         d,
+        zone_weight,
     } = *data;
     let c = x.len();
     let chunk = 4096;
@@ -229,7 +315,7 @@ fn normal_equations(data: &ElementData, x: &[f64]) -> (DMatrix<f64>, DVector<f64
             let mut chi2 = 0.0;
             for (&i, a) in ii.iter().zip(ss.chunks_exact(c)) {
                 let yhat: f64 = a.iter().zip(x).map(|(&a, x)| f64::from(a) * x).sum();
-                let wgt = 1.0 / yhat.max(MIN_EXPECTED);
+                let wgt = zone_weight / yhat.max(MIN_EXPECTED);
                 let y = f64::from(plane[i]);
                 chi2 += wgt * (y - yhat).powi(2);
                 for p in 0..c {
@@ -304,17 +390,41 @@ fn solve_element(data: &ElementData, start: &[f64]) -> Option<Solved> {
     })
 }
 
-/// Every element solved at one σ, with the total weighted residual.
+/// What every solve reads: the components, the counts, the distances to the nearest
+/// boundary and the sums out of reach by distance.
+struct Field<'a> {
+    comp: Components<'a>,
+    planes: &'a [&'a [f32]],
+    dist: Vec<u8>,
+    by_distance: ByDistance,
+    /// The pixels within [`REACH`] of a phase to unmix: the only ones near a boundary
+    /// that are modelled (elsewhere a phase's interior speaks for it).
+    focus: Vec<bool>,
+}
+
+/// Pixels near a boundary the search for σ uses at most (a sample of them, each standing
+/// for the ones left out); the final solve uses them all (common practice, no source: σ
+/// is one number, and 50 000 pixels fix it to a few per cent).
+const SIGMA_FIT_PIXELS: usize = 50_000;
+
+/// Every element solved at one σ over one in `stride` of the pixels near a boundary,
+/// with the total weighted residual.
 fn solve_at(
-    comp: &Components,
-    planes: &[&[f32]],
-    dist: &[u8],
+    field: &Field,
     start: &[Vec<f64>],
     sigma: f64,
+    stride: u64,
 ) -> Option<(Vec<Solved>, f64)> {
+    let Field {
+        comp,
+        planes,
+        dist,
+        by_distance,
+        focus,
+    } = field;
     let kern = kernel(sigma);
-    let (idx, sh) = shares(comp, &kern, dist);
-    let inner = interior(comp, planes, dist, kern.len() / 2);
+    let (idx, sh) = shares(comp, &kern, dist, stride, Some(focus));
+    let inner = by_distance.from(kern.len() / 2);
     let d = planes.len();
     let mut out = Vec::with_capacity(d);
     for (e, plane) in planes.iter().enumerate() {
@@ -326,6 +436,7 @@ fn solve_at(
             plane,
             e,
             d,
+            zone_weight: stride as f64,
         };
         out.push(solve_element(&data, &s)?);
     }
@@ -334,14 +445,17 @@ fn solve_at(
 }
 
 /// Unmixes the phases of a `width × height` label image (labels 1..=k, 0 unassigned) over
-/// its count planes. `None` when the image has no boundary, or a phase has no pixel.
+/// its count planes, modelling the pixels near a boundary within [`REACH`] of the phases
+/// marked in `wanted` (per phase). `None` when the image has no boundary, or a phase has
+/// no pixel.
 pub fn unmix(
     labels: &[u16],
     width: usize,
     height: usize,
     planes: &[&[f32]],
-    k: usize,
+    wanted: &[bool],
 ) -> Option<Unmixing> {
+    let k = wanted.len();
     let dist = crate::phases::boundary_distance(labels, width, height)?;
     let comp = Components {
         labels,
@@ -350,8 +464,10 @@ pub fn unmix(
         k,
         count: k + usize::from(labels.contains(&0)),
     };
+    let focus = near_phases(labels, width, height, wanted);
+    let by_distance = ByDistance::new(&comp, planes, &dist);
     // Start from each component's mean over all its pixels.
-    let all = interior(&comp, planes, &vec![u8::MAX; labels.len()], 0);
+    let all = by_distance.from(0);
     if all.n.contains(&0.0) {
         return None;
     }
@@ -359,20 +475,34 @@ pub fn unmix(
     let start: Vec<Vec<f64>> = (0..comp.count)
         .map(|p| (0..d).map(|e| all.sum[p * d + e] / all.n[p]).collect())
         .collect();
-    let residual: Vec<f64> = SIGMA_GRID_PX
+    let zone = dist
         .iter()
-        .map(|&s| solve_at(&comp, planes, &dist, &start, s).map_or(f64::INFINITY, |r| r.1))
-        .collect();
+        .zip(&focus)
+        .filter(|&(&t, &f)| usize::from(t) < REACH && f)
+        .count();
+    let stride = zone.div_ceil(SIGMA_FIT_PIXELS).max(1) as u64;
+    let field = Field {
+        comp,
+        planes,
+        dist,
+        by_distance,
+        focus,
+    };
+    let residual_at = |s: f64| solve_at(&field, &start, s, stride).map_or(f64::INFINITY, |r| r.1);
+    let residual: Vec<f64> = SIGMA_GRID_PX.iter().map(|&s| residual_at(s)).collect();
     let best = (0..residual.len()).min_by(|&a, &b| residual[a].total_cmp(&residual[b]))?;
     let at_grid_edge = best == 0 || best + 1 == SIGMA_GRID_PX.len();
     let sigma = if at_grid_edge {
         SIGMA_GRID_PX[best]
     } else {
-        golden_minimum(SIGMA_GRID_PX[best - 1], SIGMA_GRID_PX[best + 1], |s| {
-            solve_at(&comp, planes, &dist, &start, s).map_or(f64::INFINITY, |r| r.1)
-        })
+        golden_minimum(
+            SIGMA_GRID_PX[best - 1],
+            SIGMA_GRID_PX[best + 1],
+            residual_at,
+        )
     };
-    let (solved, chi2) = solve_at(&comp, planes, &dist, &start, sigma)?;
+    let (solved, chi2) = solve_at(&field, &start, sigma, 1)?;
+    let comp = &field.comp;
     let values = (labels.len() * d) as f64;
     let dispersion = chi2 / (values - (comp.count * d) as f64 - 1.0).max(1.0);
     let scale: Vec<f64> = solved
@@ -401,9 +531,34 @@ pub fn unmix(
     })
 }
 
-/// Steps of the golden-section search: the bracket shrinks to 0.618¹⁶ ≈ 0.0005 of its
+/// The pixels within [`REACH`] (chessboard distance) of a pixel of a phase marked in
+/// `wanted`.
+fn near_phases(labels: &[u16], width: usize, height: usize, wanted: &[bool]) -> Vec<bool> {
+    use image::{ImageBuffer, Luma};
+    use imageproc::distance_transform::{distance_transform, Norm};
+    let of = |l: u16| l > 0 && wanted[usize::from(l) - 1];
+    let img: ImageBuffer<Luma<u8>, Vec<u8>> = ImageBuffer::from_raw(
+        width as u32,
+        height as u32,
+        labels
+            .iter()
+            .map(|&l| if of(l) { 255 } else { 0 })
+            .collect(),
+    )
+    .expect("size matches");
+    if !labels.iter().any(|&l| of(l)) {
+        return vec![false; labels.len()];
+    }
+    distance_transform(&img, Norm::LInf)
+        .into_raw()
+        .into_iter()
+        .map(|d| usize::from(d) <= REACH)
+        .collect()
+}
+
+/// Steps of the golden-section search: the bracket shrinks to 0.618¹² ≈ 0.003 of its
 /// width in log σ.
-const GOLDEN_STEPS: usize = 16;
+const GOLDEN_STEPS: usize = 12;
 
 /// The minimum of `f` between `lo` and `hi` by golden-section search in log σ (Kiefer
 /// 1953), for a function with one minimum in the bracket.
@@ -450,6 +605,51 @@ mod tests {
         }
     }
 
+    /// Components of a label image (unassigned pixels a component when present), the
+    /// kernel for `sigma` and the distances to the boundaries.
+    fn setup(
+        labels: &[u16],
+        (w, h): (usize, usize),
+        k: usize,
+        sigma: f64,
+    ) -> (Components<'_>, Vec<f64>, Vec<u8>) {
+        let comp = Components {
+            labels,
+            width: w,
+            height: h,
+            k,
+            count: k + usize::from(labels.contains(&0)),
+        };
+        let dist = crate::phases::boundary_distance(labels, w, h).unwrap();
+        (comp, kernel(sigma), dist)
+    }
+
+    /// The sampled shares, summed over each window directly, equal the separable ones.
+    #[test]
+    fn sparse_shares_equal_the_separable_ones() {
+        let (w, h) = (40usize, 30usize);
+        let labels: Vec<u16> = (0..w * h)
+            .map(|i| 1 + u16::from((i % w + i / w) % 7 < 2))
+            .collect();
+        let (comp, kern, dist) = setup(&labels, (w, h), 2, 1.2);
+        let (all_idx, all_sh) = shares(&comp, &kern, &dist, 1, None);
+        let (idx, sh) = shares(&comp, &kern, &dist, 3, None);
+        assert!(!idx.is_empty() && idx.len() < all_idx.len());
+        for (j, i) in idx.iter().enumerate() {
+            let k = all_idx.iter().position(|a| a == i).unwrap();
+            for c in 0..2 {
+                assert!((sh[j * 2 + c] - all_sh[k * 2 + c]).abs() < 1e-5);
+            }
+        }
+    }
+
+    /// The widest kernel reaches exactly [`REACH`] pixels: the sums by distance cover it.
+    #[test]
+    fn the_widest_kernel_reaches_reach() {
+        let widest = SIGMA_GRID_PX[SIGMA_GRID_PX.len() - 1];
+        assert_eq!(kernel(widest).len() / 2, REACH);
+    }
+
     /// The blurred indicators against imageproc's separable filter (the same kernel, edges
     /// replicated) applied to each indicator image.
     #[test]
@@ -468,16 +668,8 @@ mod tests {
                 }
             })
             .collect();
-        let comp = Components {
-            labels: &labels,
-            width: w,
-            height: h,
-            k: 2,
-            count: 3,
-        };
-        let kern = kernel(0.9);
-        let dist = crate::phases::boundary_distance(&labels, w, h).unwrap();
-        let (idx, sh) = shares(&comp, &kern, &dist);
+        let (comp, kern, dist) = setup(&labels, (w, h), 2, 0.9);
+        let (idx, sh) = shares(&comp, &kern, &dist, 1, None);
         assert!(!idx.is_empty());
         let k32: Vec<f32> = kern.iter().map(|&v| v as f32).collect();
         for c in 0..3 {
@@ -528,7 +720,7 @@ mod tests {
             })
             .collect();
         let refs: Vec<&[f32]> = planes.iter().map(|p| p.as_slice()).collect();
-        let u = unmix(&labels, w, h, &refs, 2).unwrap();
+        let u = unmix(&labels, w, h, &refs, &[false, true]).unwrap();
         assert!((u.sigma_px - 0.8).abs() < 0.08, "{}", u.sigma_px);
         for (p, (got, want)) in u.rates.iter().zip(&pure).enumerate() {
             for (e, (g, w)) in got.iter().zip(want).enumerate() {
@@ -559,7 +751,7 @@ mod tests {
                 .num_threads(threads)
                 .build()
                 .unwrap()
-                .install(|| unmix(&labels, w, h, &[&plane], 3).unwrap())
+                .install(|| unmix(&labels, w, h, &[&plane], &[false, true, false]).unwrap())
         };
         assert_eq!(run(1), run(2));
     }

@@ -93,3 +93,26 @@ fn the_true_phase_count_finds_every_phase_and_matches_auto() {
         );
     }
 }
+
+/// Asked for more phases than the field holds, the result keeps only what the data
+/// separate (no phase spent on a band of boundary pixels or on noise) and the report says
+/// so in its warnings.
+#[test]
+fn more_phases_than_the_field_holds_are_refused_with_a_warning() {
+    let s = steel_with_inclusions();
+    let tmp = tempfile::tempdir().unwrap();
+    let field = tmp.path().join("field");
+    s.write(&field);
+    let (labels, report) = map(&field, &tmp.path().join("out"), "7");
+    let found = report["phases"].as_array().unwrap().len();
+    let (best, _) = score(&s.labels, s.phases.len(), &labels);
+    assert!(best.iter().all(|b| b.1 > 0.5), "{best:?}");
+    assert!(found < 7, "{found} phases: {report:#}");
+    assert!(
+        report["warnings"].to_string().contains(&format!(
+            "7 phases were asked for but the data separate only {found}"
+        )),
+        "{:#}",
+        report["warnings"]
+    );
+}
