@@ -10,13 +10,15 @@
 //! pure rates follow by weighted least squares with Poisson variances (weights 1/ŷ,
 //! reweighted three times) and their covariance is (AᵀWA)⁻¹, scaled up by the weighted
 //! residual per degree of freedom when the counts scatter more than Poisson. σ itself is
-//! the value that minimises the weighted residual over all maps: a grid from 0.25 to 4
-//! pixels, then a golden-section search between the best point's neighbours.
+//! the value that minimises the weighted residual summed over the maps: a grid from 0.25
+//! to 4 pixels, then a golden-section search between the best point's neighbours, on a
+//! fixed sample of the boundary pixels.
 //!
-//! Pixels farther from every boundary than the kernel reaches see one phase only; they
-//! enter the normal equations through their per-phase sums, so the cost grows with the
-//! boundary length, not the field. Every sum is taken in fixed blocks combined in order:
-//! the same answer whatever the thread count.
+//! Only the boundary pixels within reach of the phases to unmix are modelled; pixels
+//! farther from every boundary than the kernel reaches see one phase only and enter the
+//! normal equations through their per-phase sums, so the cost grows with the length of
+//! those phases' boundaries, not with the field. Every sum is taken in fixed blocks
+//! combined in order: the same answer whatever the thread count.
 
 use nalgebra::{DMatrix, DVector};
 use rayon::prelude::*;
@@ -408,13 +410,13 @@ struct Field<'a> {
 const SIGMA_FIT_PIXELS: usize = 50_000;
 
 /// Every element solved at one σ over one in `stride` of the pixels near a boundary,
-/// with the total weighted residual.
+/// with the total weighted residual and the pixels it covers.
 fn solve_at(
     field: &Field,
     start: &[Vec<f64>],
     sigma: f64,
     stride: u64,
-) -> Option<(Vec<Solved>, f64)> {
+) -> Option<(Vec<Solved>, f64, f64)> {
     let Field {
         comp,
         planes,
@@ -441,7 +443,8 @@ fn solve_at(
         out.push(solve_element(&data, &s)?);
     }
     let chi2 = out.iter().map(|s| s.chi2).sum();
-    Some((out, chi2))
+    let used = idx.len() as f64 * stride as f64 + inner.n.iter().sum::<f64>();
+    Some((out, chi2, used))
 }
 
 /// Unmixes the phases of a `width × height` label image (labels 1..=k, 0 unassigned) over
@@ -501,14 +504,12 @@ pub fn unmix(
             residual_at,
         )
     };
-    let (solved, chi2) = solve_at(&field, &start, sigma, 1)?;
+    let (solved, chi2, used) = solve_at(&field, &start, sigma, 1)?;
     let comp = &field.comp;
-    let values = (labels.len() * d) as f64;
-    let dispersion = chi2 / (values - (comp.count * d) as f64 - 1.0).max(1.0);
-    let scale: Vec<f64> = solved
-        .iter()
-        .map(|s| (s.chi2 / (labels.len() as f64 - comp.count as f64).max(1.0)).max(1.0))
-        .collect();
+    // Degrees of freedom over the pixels the residual covers.
+    let dof = (used - comp.count as f64).max(1.0);
+    let dispersion = chi2 / (dof * d as f64);
+    let scale: Vec<f64> = solved.iter().map(|s| (s.chi2 / dof).max(1.0)).collect();
     Some(Unmixing {
         sigma_px: sigma,
         at_grid_edge,
