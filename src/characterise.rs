@@ -466,10 +466,10 @@ pub fn characterise(
             })
             .at(clearance)
         },
-        Some(&|wanted: &[bool]| {
+        &|wanted: &[bool]| {
             let planes: Vec<&[f32]> = counts.maps().iter().map(|m| m.counts.as_slice()).collect();
             crate::unmix::unmix(labels, width, height, &planes, wanted)
-        }),
+        },
         opts,
     )
 }
@@ -482,7 +482,7 @@ pub fn characterise_with(
     lines: &[(ElementInfo, Option<String>)],
     md: &crate::stack::FieldMetadata,
     sums_at: &dyn Fn(usize) -> Vec<(PhaseCounts, bool)>,
-    unmix: Option<UnmixSource>,
+    unmix: UnmixSource,
     opts: &ValidCompositionOptions,
 ) -> Result<(CompositionReport, Advice)> {
     let lines = lines.to_vec();
@@ -902,14 +902,14 @@ struct Around<'a> {
     symbols: &'a [&'a str],
 }
 
-/// Unmixes the phases without interior pixels (`interior` false) when the caller can
-/// provide the counts (`unmix`): their sums are replaced by the unmixed pure rates where
+/// Unmixes the phases without interior pixels (`interior` false) from the counts the
+/// caller provides (`unmix`): their sums are replaced by the unmixed pure rates where
 /// the solve is well conditioned and gives no impossible negative rate. Returns the
 /// report, the notes, and per phase whether it was unmixed.
 fn unmix_thin(
     plain: &mut [PhaseCounts],
     interior: &[bool],
-    unmix: Option<UnmixSource>,
+    unmix: UnmixSource,
     around: &Around,
 ) -> (Option<UnmixingReport>, Vec<String>, Vec<bool>) {
     let Around {
@@ -925,12 +925,6 @@ fn unmix_thin(
     if interior.iter().all(|&i| i) {
         return (None, notes, unmixed);
     }
-    let Some(unmix) = unmix else {
-        notes.push(format!(
-            "phases without pixels {clearance} px clear of their neighbours are not unmixed when the field is streamed in strips: their compositions are mixed with their neighbours'"
-        ));
-        return (None, notes, unmixed);
-    };
     let wanted: Vec<bool> = interior.iter().map(|i| !i).collect();
     let Some(u) = unmix(&wanted) else {
         return (None, notes, unmixed);

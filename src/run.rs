@@ -386,7 +386,7 @@ fn process_streamed(
             let by_model = clear.at(r);
             model_index.iter().map(|&m| by_model[m].clone()).collect()
         },
-        Some(&unmix),
+        &unmix,
         job.composition,
     )?;
     warnings.extend(whole.into_inner().1);
