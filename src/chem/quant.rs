@@ -457,13 +457,10 @@ fn detection(
                     let b = background.rate(e, zbar[p]) * n;
                     let var_b =
                         (zbar[p] * n).powi(2) * lv[e] + (CONTINUUM_MODEL_REL_SD * b).powi(2);
+                    // Unmixed rates: their own variance stands for the counts'.
                     let (lc, ld) = match &pc.rate_var {
                         None => currie(b, var_b),
-                        // Unmixed rates: their own variance stands for the counts'.
-                        Some(v) => {
-                            let s0 = (v[e] * n * n + var_b).sqrt();
-                            (1.645 * s0, 2.71 + 3.29 * s0)
-                        }
+                        Some(v) => currie(0.0, v[e] * n * n + var_b),
                     };
                     let free = background.free[e].contains(&p);
                     let detected = !tested || (!free && pc.sums[e] - b > lc);
