@@ -8,6 +8,7 @@ use crate::cluster::simplify::{self, Simplification};
 use crate::cluster::{Clusters, Method};
 use crate::error::{Error, Result};
 use crate::phases::{phase_table, phase_table_in_order, PhaseTable};
+use crate::prepare::Features;
 use crate::prepare::{prepare, FeatureTransform, PrepareParams, Stabilise};
 use crate::refine::{
     interior_fractions, interior_means, refine, refine_from, RefineParams, Segmentation,
@@ -116,6 +117,9 @@ pub struct MapResult {
     pub min_counts_used: f64,
     /// Pixels the model was fitted on.
     pub fitted_pixels: usize,
+    /// The method whose likelihood chose the phase count: the Poisson mixture for an
+    /// automatic count whatever the method, else the method itself.
+    pub counted_by: Method,
 }
 
 /// Runs the main job on one field.
@@ -125,18 +129,92 @@ pub fn map_stack(stack: MapStack, opts: &ValidMapOptions) -> Result<MapResult> {
 
 /// Runs the main job, telling `progress` the name of each stage as it starts (the command
 /// line shows it; the library never prints).
+///
+/// With an automatic count and k-means or the Gaussian mixture, the phases are counted
+/// with the Poisson mixture (its likelihood is the one that describes counts; the
+/// Gaussian methods' own BIC splits a large phase along its counting noise) and the
+/// chosen method is then fitted from that partition, so that the count does not depend
+/// on the method.
 pub fn map_stack_with_progress(
     stack: MapStack,
     opts: &ValidMapOptions,
     progress: &mut dyn FnMut(&str),
 ) -> Result<MapResult> {
+    let p = opts.cluster.get();
+    if matches!(p.phases, PhaseCount::Auto { .. }) && p.method != Method::Poisson {
+        return map_counted_by_poisson(stack, opts, progress);
+    }
+    progress("preparing features");
+    let t = crate::profile::stage("prepare");
+    let f = prepare(stack, &opts.transform)?;
+    drop(t);
+    let chosen = choose_phases(&f, opts, progress)?;
+    Ok(finish(f, chosen, opts, progress))
+}
+
+/// The phases of a field before the last labelling.
+struct Chosen {
+    clusters: Clusters,
+    curve: Vec<CurvePoint>,
+    simplifications: Vec<Simplification>,
+    /// A first segmentation with `clusters`.
+    seg: Segmentation,
+    fitted_pixels: usize,
+    counted_by: Method,
+}
+
+/// The count with the Poisson mixture, then the chosen method fitted from its phases.
+fn map_counted_by_poisson(
+    stack: MapStack,
+    opts: &ValidMapOptions,
+    progress: &mut dyn FnMut(&str),
+) -> Result<MapResult> {
+    let poisson = MapOptions {
+        cluster: ClusterParams {
+            method: Method::Poisson,
+            ..*opts.cluster.get()
+        },
+        ..*opts.options()
+    }
+    .check()?;
+    progress("counting the phases");
+    let t = crate::profile::stage("prepare");
+    let pf = prepare(stack.clone(), &poisson.transform)?;
+    drop(t);
+    let counted = choose_phases(&pf, &poisson, progress)?;
+    drop(pf);
     progress("preparing features");
     let t = crate::profile::stage("prepare");
     let f = prepare(stack, &opts.transform)?;
     drop(t);
     progress("fitting the phase model");
     let t = crate::profile::stage("fit");
-    let fit = select::fit(&f, &opts.cluster)?;
+    let k = counted.clusters.k();
+    let fit = select::fit_from_labels(&f, &counted.seg.labels, k, &opts.cluster)?;
+    drop(t);
+    let t = crate::profile::stage("refine");
+    let seg = refine(&f, &fit.clusters, &opts.refine);
+    drop(t);
+    let chosen = Chosen {
+        clusters: fit.clusters,
+        seg,
+        fitted_pixels: fit.fitted_pixels,
+        ..counted
+    };
+    Ok(finish(f, chosen, opts, progress))
+}
+
+/// Fits the model (with spare components where the count is automatic, or fixed with the
+/// Poisson mixture), removes bands of mixed boundary pixels, phases below the size floor
+/// and duplicates, merges down to a fixed count, and labels the field once.
+fn choose_phases(
+    f: &Features,
+    opts: &ValidMapOptions,
+    progress: &mut dyn FnMut(&str),
+) -> Result<Chosen> {
+    progress("fitting the phase model");
+    let t = crate::profile::stage("fit");
+    let fit = select::fit(f, &opts.cluster)?;
     drop(t);
     let st = opts.transform.params().stabilise;
     // Simplified when fitted with spare components: an automatic count, or a fixed one
@@ -155,42 +233,14 @@ pub fn map_stack_with_progress(
         .max(1.0) as usize;
     progress("labelling pixels");
     let t = crate::profile::stage("refine");
-    let mut seg = refine(&f, &clusters, &opts.refine);
+    let mut seg = refine(f, &clusters, &opts.refine);
     drop(t);
     // Dissolve boundary bands and phases below the size floor, then label again.
     for _ in 0..8 {
         if !spares || clusters.k() < 2 {
             break;
         }
-        let inside = interior_fractions(&seg, clusters.k());
-        let mut ends: Vec<Vec<f64>> = (0..clusters.k())
-            .map(|c| clusters.expected_counts(c, st))
-            .collect();
-        ends.push(vec![0.0; f.dims]);
-        let mut drop: Vec<(usize, Simplification)> = Vec::new();
-        for (c, &(px, interior)) in inside.iter().enumerate() {
-            if px < min_px {
-                drop.push((c, Simplification {
-                    action: format!("dissolved a component of {px} pixels, below the size floor of {min_px}"),
-                    value: px as f64,
-                }));
-            } else if let Some((dev, weights)) = simplify::nearest_mixture(c, &ends) {
-                if dev < simplify::MIXTURE_WITHIN && interior < BOUNDARY_INTERIOR {
-                    drop.push((
-                        c,
-                        Simplification {
-                            action: format!(
-                            "dissolved a band of mixed pixels ({} ≈ {}; {:.1} % interior pixels)",
-                            simplify::fmt_counts(&ends[c]),
-                            simplify::describe_mixture(&weights, &ends, clusters.k()),
-                            100.0 * interior
-                        ),
-                            value: dev,
-                        },
-                    ));
-                }
-            }
-        }
+        let drop = bands_and_specks(f, &clusters, &seg, st, min_px);
         if drop.is_empty() || drop.len() >= clusters.k() {
             break;
         }
@@ -198,7 +248,7 @@ pub fn map_stack_with_progress(
             clusters = clusters.without(c);
             simplifications.push(note);
         }
-        seg = refine(&f, &clusters, &opts.refine);
+        seg = refine(f, &clusters, &opts.refine);
     }
     // A fixed count: merge the closest phases until the count asked for remains (fewer
     // is what the data separate; the report says so).
@@ -216,11 +266,82 @@ pub fn map_stack_with_progress(
                 });
                 clusters = clusters.merged(a, b);
             }
-            seg = refine(&f, &clusters, &opts.refine);
+            seg = refine(f, &clusters, &opts.refine);
         }
     }
-    // Per-phase averaging after a first segmentation: re-estimate each phase from its
-    // interior pixels, then label again.
+    Ok(Chosen {
+        clusters,
+        curve: fit.curve,
+        simplifications,
+        seg,
+        fitted_pixels: fit.fitted_pixels,
+        counted_by: opts.cluster.get().method,
+    })
+}
+
+/// The components to dissolve, in ascending order: those below the size floor of `min_px`
+/// pixels, and bands of mixed boundary pixels (a mixture of the others with few interior
+/// pixels).
+fn bands_and_specks(
+    f: &Features,
+    clusters: &Clusters,
+    seg: &Segmentation,
+    st: Stabilise,
+    min_px: usize,
+) -> Vec<(usize, Simplification)> {
+    let inside = interior_fractions(seg, clusters.k());
+    let mut ends: Vec<Vec<f64>> = (0..clusters.k())
+        .map(|c| clusters.expected_counts(c, st))
+        .collect();
+    ends.push(vec![0.0; f.dims]);
+    let mut drop: Vec<(usize, Simplification)> = Vec::new();
+    for (c, &(px, interior)) in inside.iter().enumerate() {
+        if px < min_px {
+            drop.push((
+                c,
+                Simplification {
+                    action: format!(
+                        "dissolved a component of {px} pixels, below the size floor of {min_px}"
+                    ),
+                    value: px as f64,
+                },
+            ));
+        } else if let Some((dev, weights)) = simplify::nearest_mixture(c, &ends) {
+            if dev < simplify::MIXTURE_WITHIN && interior < BOUNDARY_INTERIOR {
+                drop.push((
+                    c,
+                    Simplification {
+                        action: format!(
+                            "dissolved a band of mixed pixels ({} ≈ {}; {:.1} % interior pixels)",
+                            simplify::fmt_counts(&ends[c]),
+                            simplify::describe_mixture(&weights, &ends, clusters.k()),
+                            100.0 * interior
+                        ),
+                        value: dev,
+                    },
+                ));
+            }
+        }
+    }
+    drop
+}
+
+/// Per-phase averaging after a first segmentation: re-estimates each phase from its
+/// interior pixels, labels the field again, and computes the phase table.
+fn finish(
+    f: Features,
+    chosen: Chosen,
+    opts: &ValidMapOptions,
+    progress: &mut dyn FnMut(&str),
+) -> MapResult {
+    let Chosen {
+        mut clusters,
+        curve,
+        simplifications,
+        mut seg,
+        fitted_pixels,
+        counted_by,
+    } = chosen;
     let means = interior_means(&f, &seg, clusters.k());
     if means.iter().any(Option::is_some) {
         for (c, m) in means.iter().enumerate() {
@@ -239,16 +360,17 @@ pub fn map_stack_with_progress(
     progress("phase statistics");
     let _t = crate::profile::stage("phase table");
     let table = phase_table(&mut seg, &f.counts, clusters.k());
-    Ok(MapResult {
+    MapResult {
         clusters,
-        curve: fit.curve,
+        curve,
         simplifications,
         segmentation: seg,
         table,
         counts: f.counts,
         min_counts_used: f.min_counts_used,
-        fitted_pixels: fit.fitted_pixels,
-    })
+        fitted_pixels,
+        counted_by,
+    }
 }
 
 /// Labels a field with a saved model's clusters (no refit): prepare with the model's
@@ -279,6 +401,7 @@ pub fn label_with_model(
         counts: f.counts,
         min_counts_used: f.min_counts_used,
         fitted_pixels: 0,
+        counted_by: clusters.method(),
     })
 }
 

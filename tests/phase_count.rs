@@ -16,9 +16,16 @@ use support::scenarios::{eutectic_braze, read_labels, steel_with_inclusions};
 
 /// Maps the field with `phases` and returns the labels and report.json.
 fn map(field: &Path, out: &Path, phases: &str) -> (Vec<u16>, serde_json::Value) {
+    map_with(field, out, phases, "poisson")
+}
+
+/// Maps the field with `phases` and `method`.
+fn map_with(field: &Path, out: &Path, phases: &str, method: &str) -> (Vec<u16>, serde_json::Value) {
     let r = std::process::Command::new(env!("CARGO_BIN_EXE_modalmap"))
         .args(["map", field.to_str().unwrap(), "-o", out.to_str().unwrap()])
-        .args(["--quiet", "--no-bse", "--phases", phases])
+        .args([
+            "--quiet", "--no-bse", "--phases", phases, "--method", method,
+        ])
         .output()
         .unwrap();
     assert!(r.status.success(), "{}", String::from_utf8_lossy(&r.stderr));
@@ -115,4 +122,54 @@ fn more_phases_than_the_field_holds_are_refused_with_a_warning() {
         "{:#}",
         report["warnings"]
     );
+}
+
+/// The automatic count does not depend on the method: k-means and the Gaussian mixture
+/// find the same phases as the default on the test fields (every true phase held more
+/// than half by its own phase, as above) and on the bundled sample (the same count, and
+/// pixel agreement with the default's labels of at least 0.99: the methods may still draw
+/// boundaries a little differently, common practice, no source).
+#[test]
+fn the_automatic_count_does_not_depend_on_the_method() {
+    for s in [steel_with_inclusions(), eutectic_braze()] {
+        let tmp = tempfile::tempdir().unwrap();
+        let field = tmp.path().join("field");
+        s.write(&field);
+        let k = s.phases.len();
+        for method in ["kmeans", "gmm"] {
+            let (labels, report) = map_with(&field, &tmp.path().join(method), "auto", method);
+            let names: Vec<&str> = s.phases.iter().map(|p| p.name).collect();
+            assert_eq!(
+                report["phases"].as_array().unwrap().len(),
+                k,
+                "{method} on {names:?}: {:#}",
+                report["phase_count"]
+            );
+            assert_eq!(report["phase_count"]["counted_with"], "poisson");
+            let (best, _) = score(&s.labels, k, &labels);
+            let mut ids: Vec<u16> = best.iter().map(|b| b.0).collect();
+            ids.sort_unstable();
+            ids.dedup();
+            assert_eq!(ids.len(), k, "{method} on {names:?}: {best:?}");
+            assert!(
+                best.iter().all(|b| b.1 > 0.5),
+                "{method} on {names:?}: {best:?}"
+            );
+        }
+    }
+    let sample = Path::new(env!("CARGO_MANIFEST_DIR")).join("sample-maps");
+    let tmp = tempfile::tempdir().unwrap();
+    let (reference, report) = map_with(&sample, &tmp.path().join("poisson"), "auto", "poisson");
+    let k = report["phases"].as_array().unwrap().len();
+    assert!(report["phase_count"].get("counted_with").is_none());
+    for method in ["kmeans", "gmm"] {
+        let (labels, report) = map_with(&sample, &tmp.path().join(method), "auto", method);
+        assert_eq!(report["phases"].as_array().unwrap().len(), k, "{method}");
+        let truth: Vec<usize> = reference.iter().map(|&l| usize::from(l)).collect();
+        let (best, agree) = score(&truth, k + 1, &labels);
+        assert!(
+            agree >= 0.99,
+            "{method}: agreement {agree:.4} with the default ({best:?})"
+        );
+    }
 }

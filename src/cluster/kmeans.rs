@@ -244,6 +244,15 @@ pub fn fit(data: &[f32], d: usize, p: &KMeansParams) -> KMeans {
     best.expect("n_init ≥ 1")
 }
 
+/// Runs Lloyd's iterations from the given centres (`k × d`, `p.k` rows); `p.n_init` is
+/// not used. An emptied cluster restarts on a row drawn with `p.seed`.
+pub fn fit_from(data: &[f32], d: usize, centres: Vec<f32>, p: &KMeansParams) -> KMeans {
+    debug_assert_eq!(centres.len(), p.k * d);
+    let tol = p.tol * mean_variance(data, d);
+    let mut rng = ChaCha8Rng::seed_from_u64(p.seed);
+    lloyd(data, d, centres, p, tol, &mut rng)
+}
+
 impl KMeans {
     /// Centroids as `f32` for the hot loops.
     pub fn centres_f32(&self) -> Vec<f32> {

@@ -36,6 +36,17 @@ pub enum Method {
     Gmm,
 }
 
+impl Method {
+    /// The method's name in a sentence.
+    pub fn describe(self) -> &'static str {
+        match self {
+            Method::Poisson => "Poisson mixture",
+            Method::Kmeans => "k-means",
+            Method::Gmm => "Gaussian mixture",
+        }
+    }
+}
+
 /// A fitted model that scores pixels against phases.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 #[serde(tag = "method", rename_all = "snake_case")]
@@ -60,6 +71,15 @@ pub enum Clusters {
 }
 
 impl Clusters {
+    /// The method that made the model.
+    pub fn method(&self) -> Method {
+        match self {
+            Clusters::Kmeans { .. } => Method::Kmeans,
+            Clusters::Gmm { .. } => Method::Gmm,
+            Clusters::Poisson { .. } => Method::Poisson,
+        }
+    }
+
     /// Number of phases.
     pub fn k(&self) -> usize {
         match self {

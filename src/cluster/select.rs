@@ -139,15 +139,131 @@ pub struct Fit {
     pub fitted_pixels: usize,
 }
 
+/// The pixels that take part, sampled (seeded) down to `max`, in ascending order.
+fn fitting_pixels(f: &Features, max: usize, seed: u64) -> Vec<usize> {
+    let active: Vec<usize> = (0..f.pixels()).filter(|&i| f.mask[i]).collect();
+    kmeans::sample_rows(active.len(), max, seed)
+        .into_iter()
+        .map(|j| active[j])
+        .collect()
+}
+
 /// The rows of the pixels that take part, sampled (seeded) down to `max`.
 pub fn fitting_rows(f: &Features, max: usize, seed: u64) -> Vec<f32> {
-    let active: Vec<usize> = (0..f.pixels()).filter(|&i| f.mask[i]).collect();
-    let pick = kmeans::sample_rows(active.len(), max, seed);
-    let mut rows = Vec::with_capacity(pick.len() * f.dims);
-    for &j in &pick {
-        rows.extend_from_slice(f.row(active[j]));
+    let mut rows = Vec::new();
+    for i in fitting_pixels(f, max, seed) {
+        rows.extend_from_slice(f.row(i));
     }
     rows
+}
+
+/// Fits the chosen method's model with `k` phases, started from a labelling of the same
+/// field (`labels`: 0 = none, c + 1 = phase c), on the fitting sample. The phase count and
+/// the starting partition come from elsewhere (the Poisson mixture's count, see
+/// [`crate::pipeline`]); the model is this method's own: k-means runs Lloyd's iterations
+/// from the phases' mean features, the Gaussian mixture runs EM from the partition. A
+/// phase that the sample misses is represented by its pixels in the whole field.
+pub fn fit_from_labels(
+    f: &Features,
+    labels: &[u16],
+    k: usize,
+    params: &ValidClusterParams,
+) -> Result<Fit> {
+    let p = params.get();
+    let d = f.dims;
+    let labelled = |i: usize| f.mask[i] && labels[i] > 0 && usize::from(labels[i]) <= k;
+    let mut pick: Vec<usize> = fitting_pixels(f, p.sample_size, p.seed)
+        .into_iter()
+        .filter(|&i| labelled(i))
+        .collect();
+    // Every phase needs a few rows for its centre and covariance.
+    let floor = 2 * d + 2;
+    let mut sampled = vec![0usize; k];
+    for &i in &pick {
+        sampled[usize::from(labels[i]) - 1] += 1;
+    }
+    let sample_len = pick.len();
+    for (c, &have) in sampled.iter().enumerate() {
+        if have < floor {
+            let extra: Vec<usize> = (0..f.pixels())
+                .filter(|&i| labelled(i) && usize::from(labels[i]) == c + 1)
+                .filter(|i| pick[..sample_len].binary_search(i).is_err())
+                .take(floor - have)
+                .collect();
+            pick.extend(extra);
+        }
+    }
+    let mut rows = Vec::with_capacity(pick.len() * d);
+    let mut start = Vec::with_capacity(pick.len());
+    for &i in &pick {
+        rows.extend_from_slice(f.row(i));
+        start.push(labels[i] - 1);
+    }
+    if start.is_empty() {
+        return Err(Error::internal(
+            "no labelled pixels to start the model from",
+        ));
+    }
+    let n = start.len();
+    let clusters = match p.method {
+        Method::Poisson => Clusters::Poisson {
+            model: poisson::fit(&rows, d, poisson::from_labels(&rows, d, &start, k), &EM),
+        },
+        Method::Kmeans => {
+            let mut centres = vec![0.0f32; k * d];
+            let mut size = vec![0.0f64; k];
+            let mut sums = vec![0.0f64; k * d];
+            for (row, &c) in rows.chunks_exact(d).zip(&start) {
+                size[usize::from(c)] += 1.0;
+                for (s, &x) in sums[usize::from(c) * d..].iter_mut().zip(row) {
+                    *s += f64::from(x);
+                }
+            }
+            for c in 0..k {
+                for t in 0..d {
+                    centres[c * d + t] = (sums[c * d + t] / size[c].max(1.0)) as f32;
+                }
+            }
+            let km = kmeans::fit_from(&rows, d, centres, &kmeans_params(k, p));
+            let variance = km.inertia / (n * d) as f64;
+            Clusters::Kmeans {
+                model: km,
+                variance,
+            }
+        }
+        Method::Gmm => Clusters::Gmm {
+            model: gmm::fit(&rows, d, &start, &gmm_params(k)).map_err(|e| {
+                Error::options(
+                    format!("the Gaussian mixture with {k} phases failed: {e}"),
+                    "ask for fewer phases (--phases), or use another --method",
+                )
+            })?,
+        },
+    };
+    Ok(Fit {
+        clusters,
+        curve: Vec::new(),
+        fitted_pixels: n,
+    })
+}
+
+fn kmeans_params(k: usize, p: &ClusterParams) -> KMeansParams {
+    KMeansParams {
+        k,
+        n_init: p.n_init,
+        max_iter: 300,
+        tol: 1e-4,
+        seed: p.seed,
+    }
+}
+
+fn gmm_params(k: usize) -> GmmParams {
+    GmmParams {
+        k,
+        max_iter: 200,
+        tol: 1e-4,
+        reg_covar: 1e-3,
+    }
 }
 
 fn distinct_rows(rows: &[f32], d: usize, at_least: usize) -> bool {
@@ -170,17 +286,7 @@ fn fit_k(rows: &[f32], d: usize, k: usize, p: &ClusterParams) -> Result<Clusters
             model: fit_poisson(rows, d, k, p),
         });
     }
-    let km = kmeans::fit(
-        rows,
-        d,
-        &KMeansParams {
-            k,
-            n_init: p.n_init,
-            max_iter: 300,
-            tol: 1e-4,
-            seed: p.seed,
-        },
-    );
+    let km = kmeans::fit(rows, d, &kmeans_params(k, p));
     match p.method {
         Method::Kmeans => {
             let variance = km.inertia / (n * d) as f64;
@@ -191,18 +297,7 @@ fn fit_k(rows: &[f32], d: usize, k: usize, p: &ClusterParams) -> Result<Clusters
         }
         _ => {
             let labels = km.predict(rows);
-            let model = gmm::fit(
-                rows,
-                d,
-                &labels,
-                &GmmParams {
-                    k,
-                    max_iter: 200,
-                    tol: 1e-4,
-                    reg_covar: 1e-3,
-                },
-            )
-            .map_err(|e| {
+            let model = gmm::fit(rows, d, &labels, &gmm_params(k)).map_err(|e| {
                 Error::options(
                     format!("the Gaussian mixture with {k} phases failed: {e}"),
                     "ask for fewer phases (--phases), or use another --method",

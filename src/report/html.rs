@@ -329,8 +329,22 @@ pub fn bic_curve(r: &Report) -> Option<String> {
     Some(svg.finish(
         "Phase-count curve",
         &format!(
-            "BIC for 1 to {} components; lowest at {:?}; {} phases after merging and dissolving",
-            kmax, r.phase_count.bic_minimum, r.phase_count.phases
+            "BIC{} for {} to {} components; lowest at {}; {} phases after merging and dissolving{}",
+            match r.phase_count.counted_with {
+                Some(m) => format!(" of the {}", m.describe()),
+                None => String::new(),
+            },
+            kmin,
+            kmax,
+            r.phase_count
+                .bic_minimum
+                .map_or("no count".to_string(), |k| k.to_string()),
+            r.phase_count.phases,
+            if r.phase_count.counted_with.is_some() {
+                format!(", then fitted with {} from its phases", r.options.cluster.method.describe())
+            } else {
+                String::new()
+            }
         ),
     ))
 }

@@ -19,6 +19,7 @@ pub use output::{prepare_output, write_file_atomically, OutputDir, Scratch};
 
 use crate::cluster::select::{CurvePoint, PhaseCount};
 use crate::cluster::simplify::Simplification;
+use crate::cluster::Method;
 use crate::error::{Error, Result};
 use crate::pipeline::MapOptions;
 
@@ -123,6 +124,11 @@ pub struct PhaseCountReport {
     pub bic_minimum: Option<usize>,
     /// Components merged or dissolved after BIC.
     pub simplifications: Vec<Simplification>,
+    /// The method whose likelihood and BIC chose the count, where it is not the method
+    /// that labelled the pixels (an automatic count with k-means or the Gaussian mixture
+    /// is chosen with the Poisson mixture, then the method is fitted from its phases).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub counted_with: Option<Method>,
 }
 
 /// One input file and its SHA-256.
@@ -247,6 +253,8 @@ pub struct Labelled<'a> {
     pub min_counts_used: f64,
     /// Pixels the model was fitted on.
     pub fitted_pixels: usize,
+    /// The method that chose the count, where it is not the one that labelled the pixels.
+    pub counted_with: Option<Method>,
     /// The field's metadata.
     pub metadata: &'a crate::stack::FieldMetadata,
     /// Mapped elements with the line named with each map.
@@ -437,6 +445,7 @@ pub fn build(
             curve: result.curve.to_vec(),
             bic_minimum,
             simplifications: result.simplifications.to_vec(),
+            counted_with: result.counted_with,
         },
         statistics,
         options: *options,
@@ -602,8 +611,18 @@ pub fn summary(r: &Report) -> String {
     ));
     if r.phase_count.mode == "auto" {
         if let Some(k) = r.phase_count.bic_minimum {
+            let (with, then) = match r.phase_count.counted_with {
+                Some(m) => (
+                    format!(" of the {}", m.describe()),
+                    format!(
+                        "; {} then fitted from its phases",
+                        r.options.cluster.method.describe()
+                    ),
+                ),
+                None => (String::new(), String::new()),
+            };
             s.push_str(&format!(
-                "\n  phase count: BIC lowest at {k}; {} component(s) merged or dissolved as boundary mixtures or duplicates\n",
+                "\n  phase count: BIC{with} lowest at {k}; {} component(s) merged or dissolved as boundary mixtures or duplicates{then}\n",
                 r.phase_count.simplifications.len()
             ));
         }
