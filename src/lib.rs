@@ -31,5 +31,6 @@ pub mod run;
 pub mod stack;
 pub mod synth;
 pub mod unmix;
+pub mod xray_yield;
 
 pub use error::{Error, ErrorKind, Result};

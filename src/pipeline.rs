@@ -15,6 +15,7 @@ use crate::refine::{
     ValidRefineParams,
 };
 use crate::stack::MapStack;
+use crate::xray_yield::YieldField;
 
 /// Every option of `map`, as given (command line and configuration file merged).
 #[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
@@ -120,6 +121,8 @@ pub struct MapResult {
     /// The method whose likelihood chose the phase count: the Poisson mixture for an
     /// automatic count whatever the method, else the method itself.
     pub counted_by: Method,
+    /// The X-ray yield across the field, divided out of `counts` where applied.
+    pub xray_yield: YieldField,
 }
 
 /// Runs the main job on one field.
@@ -129,6 +132,11 @@ pub fn map_stack(stack: MapStack, opts: &ValidMapOptions) -> Result<MapResult> {
 
 /// Runs the main job, telling `progress` the name of each stage as it starts (the command
 /// line shows it; the library never prints).
+///
+/// The phases are counted and a first labelling made ([`choose_phases`]); the X-ray yield
+/// across the field is estimated from that labelling ([`crate::xray_yield`]). Where the
+/// yield is uneven, or the method is not the one that counted, the model is fitted again
+/// from the first labelling on the (corrected) counts before the last labelling.
 ///
 /// With an automatic count and k-means or the Gaussian mixture, the phases are counted
 /// with the Poisson mixture (its likelihood is the one that describes counts; the
@@ -141,15 +149,51 @@ pub fn map_stack_with_progress(
     progress: &mut dyn FnMut(&str),
 ) -> Result<MapResult> {
     let p = opts.cluster.get();
-    if matches!(p.phases, PhaseCount::Auto { .. }) && p.method != Method::Poisson {
-        return map_counted_by_poisson(stack, opts, progress);
-    }
+    let by_poisson = matches!(p.phases, PhaseCount::Auto { .. }) && p.method != Method::Poisson;
+    let counting = if by_poisson {
+        MapOptions {
+            cluster: ClusterParams {
+                method: Method::Poisson,
+                ..*p
+            },
+            ..*opts.options()
+        }
+        .check()?
+    } else {
+        *opts
+    };
     progress("preparing features");
     let t = crate::profile::stage("prepare");
-    let f = prepare(stack, &opts.transform)?;
+    let f = prepare(stack, &counting.transform)?;
     drop(t);
-    let chosen = choose_phases(&f, opts, progress)?;
-    Ok(finish(f, chosen, opts, progress))
+    let chosen = choose_phases(&f, &counting, progress)?;
+    progress("estimating the X-ray yield");
+    let t = crate::profile::stage("yield");
+    let shading = crate::xray_yield::estimate(&f.counts, &chosen.seg.labels, chosen.clusters.k());
+    drop(t);
+    if !shading.applied && !by_poisson {
+        return Ok(finish(f, chosen, shading, opts, progress));
+    }
+    let mut counts = f.counts;
+    shading.correct(&mut counts);
+    progress("fitting the phase model");
+    let t = crate::profile::stage("prepare");
+    let f = prepare(counts, &opts.transform.unbinned())?;
+    drop(t);
+    let t = crate::profile::stage("fit");
+    let k = chosen.clusters.k();
+    let fit = select::fit_from_labels(&f, &chosen.seg.labels, k, &opts.cluster)?;
+    drop(t);
+    let t = crate::profile::stage("refine");
+    let seg = refine(&f, &fit.clusters, &opts.refine);
+    drop(t);
+    let chosen = Chosen {
+        clusters: fit.clusters,
+        seg,
+        fitted_pixels: fit.fitted_pixels,
+        ..chosen
+    };
+    Ok(finish(f, chosen, shading, opts, progress))
 }
 
 /// The phases of a field before the last labelling.
@@ -161,47 +205,6 @@ struct Chosen {
     seg: Segmentation,
     fitted_pixels: usize,
     counted_by: Method,
-}
-
-/// The count with the Poisson mixture, then the chosen method fitted from its phases.
-fn map_counted_by_poisson(
-    stack: MapStack,
-    opts: &ValidMapOptions,
-    progress: &mut dyn FnMut(&str),
-) -> Result<MapResult> {
-    let poisson = MapOptions {
-        cluster: ClusterParams {
-            method: Method::Poisson,
-            ..*opts.cluster.get()
-        },
-        ..*opts.options()
-    }
-    .check()?;
-    progress("counting the phases");
-    let t = crate::profile::stage("prepare");
-    let pf = prepare(stack.clone(), &poisson.transform)?;
-    drop(t);
-    let counted = choose_phases(&pf, &poisson, progress)?;
-    drop(pf);
-    progress("preparing features");
-    let t = crate::profile::stage("prepare");
-    let f = prepare(stack, &opts.transform)?;
-    drop(t);
-    progress("fitting the phase model");
-    let t = crate::profile::stage("fit");
-    let k = counted.clusters.k();
-    let fit = select::fit_from_labels(&f, &counted.seg.labels, k, &opts.cluster)?;
-    drop(t);
-    let t = crate::profile::stage("refine");
-    let seg = refine(&f, &fit.clusters, &opts.refine);
-    drop(t);
-    let chosen = Chosen {
-        clusters: fit.clusters,
-        seg,
-        fitted_pixels: fit.fitted_pixels,
-        ..counted
-    };
-    Ok(finish(f, chosen, opts, progress))
 }
 
 /// Fits the model (with spare components where the count is automatic, or fixed with the
@@ -331,6 +334,7 @@ fn bands_and_specks(
 fn finish(
     f: Features,
     chosen: Chosen,
+    xray_yield: YieldField,
     opts: &ValidMapOptions,
     progress: &mut dyn FnMut(&str),
 ) -> MapResult {
@@ -370,6 +374,7 @@ fn finish(
         min_counts_used: f.min_counts_used,
         fitted_pixels,
         counted_by,
+        xray_yield,
     }
 }
 
@@ -391,6 +396,18 @@ pub fn label_with_model(
         )));
     }
     let mut seg = refine(&f, clusters, &opts.refine);
+    // The yield of this field, from the model's first labelling; where it is uneven the
+    // corrected counts are labelled again.
+    let shading = crate::xray_yield::estimate(&f.counts, &seg.labels, clusters.k());
+    let f = if shading.applied {
+        let mut counts = f.counts;
+        shading.correct(&mut counts);
+        let f = prepare(counts, &opts.transform.unbinned())?;
+        seg = refine(&f, clusters, &opts.refine);
+        f
+    } else {
+        f
+    };
     let table = phase_table_in_order(&mut seg, &f.counts, clusters.k(), Some(order));
     Ok(MapResult {
         clusters: clusters.clone(),
@@ -402,6 +419,7 @@ pub fn label_with_model(
         min_counts_used: f.min_counts_used,
         fitted_pixels: 0,
         counted_by: clusters.method(),
+        xray_yield: shading,
     })
 }
 

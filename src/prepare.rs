@@ -215,6 +215,16 @@ impl FeatureTransform {
     pub fn params(&self) -> &PrepareParams {
         &self.params
     }
+
+    /// The same transform without binning, for counts already on the binned grid.
+    pub fn unbinned(&self) -> FeatureTransform {
+        FeatureTransform {
+            params: PrepareParams {
+                bin: 1,
+                ..self.params
+            },
+        }
+    }
 }
 
 /// What clustering sees.

@@ -264,6 +264,7 @@ pub fn process_field(
         min_counts_used: result.min_counts_used,
         fitted_pixels: result.fitted_pixels,
         counted_with: (result.counted_by != result.clusters.method()).then_some(result.counted_by),
+        xray_yield: &result.xray_yield,
         metadata: result.counts.metadata(),
         lines: &lines,
         counts: Some(&result.counts),
@@ -394,6 +395,9 @@ fn process_streamed(
     use_model_names(&mut table, model);
     let mut files = field.files.clone();
     add_composition_inputs(&mut files, job);
+    let not_estimated = crate::xray_yield::YieldField::not_estimated(
+        "not estimated when the field is labelled strip by strip (--stream)",
+    );
     let labelled = crate::report::Labelled {
         table: &table,
         segmentation: &segmentation,
@@ -402,6 +406,7 @@ fn process_streamed(
         min_counts_used,
         fitted_pixels: 0,
         counted_with: None,
+        xray_yield: &not_estimated,
         metadata: &field.metadata,
         lines: &field.lines,
         counts: None,

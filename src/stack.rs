@@ -98,6 +98,21 @@ pub struct MapStack {
 pub const MAX_MAPS: usize = crate::cluster::lanes::MAX_DIMS;
 
 impl MapStack {
+    /// Multiplies every count of pixel i, in every map, by `factor[i]` (one factor per
+    /// pixel, row-major).
+    pub fn scale_pixels(&mut self, factor: &[f32]) {
+        assert_eq!(
+            factor.len(),
+            self.width * self.height,
+            "one factor per pixel"
+        );
+        for m in &mut self.maps {
+            for (c, f) in m.counts.iter_mut().zip(factor) {
+                *c *= f;
+            }
+        }
+    }
+
     /// Checks the invariants and orders the maps by atomic number.
     ///
     /// `origin` is the input path used in error messages.

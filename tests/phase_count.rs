@@ -9,10 +9,9 @@
 
 mod support;
 
-use std::collections::BTreeMap;
 use std::path::Path;
 
-use support::scenarios::{eutectic_braze, read_labels, steel_with_inclusions};
+use support::scenarios::{eutectic_braze, read_labels, score, steel_with_inclusions};
 
 /// Maps the field with `phases` and returns the labels and report.json.
 fn map(field: &Path, out: &Path, phases: &str) -> (Vec<u16>, serde_json::Value) {
@@ -31,36 +30,6 @@ fn map_with(field: &Path, out: &Path, phases: &str, method: &str) -> (Vec<u16>, 
     assert!(r.status.success(), "{}", String::from_utf8_lossy(&r.stderr));
     let report = serde_json::from_slice(&std::fs::read(out.join("report.json")).unwrap()).unwrap();
     (read_labels(&out.join("labels.png")), report)
-}
-
-/// Per true phase, the found phase holding most of its pixels and that share; and the
-/// pixel agreement when each found phase stands for the true phase it overlaps most.
-fn score(truth: &[usize], k: usize, labels: &[u16]) -> (Vec<(u16, f64)>, f64) {
-    let mut table: BTreeMap<(usize, u16), usize> = BTreeMap::new();
-    for (&t, &l) in truth.iter().zip(labels) {
-        *table.entry((t, l)).or_default() += 1;
-    }
-    let best = (0..k)
-        .map(|t| {
-            let total: usize = table.iter().filter(|e| e.0 .0 == t).map(|e| e.1).sum();
-            let (l, n) = table
-                .iter()
-                .filter(|e| e.0 .0 == t && e.0 .1 > 0)
-                .map(|e| (e.0 .1, *e.1))
-                .max_by_key(|e| e.1)
-                .unwrap_or((0, 0));
-            (l, n as f64 / total as f64)
-        })
-        .collect();
-    let mut of_label: BTreeMap<u16, (usize, usize)> = BTreeMap::new();
-    for (&(t, l), &n) in &table {
-        let e = of_label.entry(l).or_insert((t, 0));
-        if n > e.1 {
-            *e = (t, n);
-        }
-    }
-    let agree: usize = of_label.iter().filter(|e| *e.0 > 0).map(|e| e.1 .1).sum();
-    (best, agree as f64 / truth.len() as f64)
 }
 
 #[test]

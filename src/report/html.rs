@@ -349,6 +349,60 @@ pub fn bic_curve(r: &Report) -> Option<String> {
     ))
 }
 
+/// The X-ray yield across the field as a heat map (from the fitted smooth field's
+/// coefficients), with its colour scale; None where no yield was applied.
+pub fn yield_map(r: &Report) -> Option<String> {
+    let y = r.xray_yield.as_ref().filter(|y| y.applied)?;
+    let (cols, rows) = if r.width >= r.height {
+        (48, (48 * r.height / r.width.max(1)).max(2))
+    } else {
+        ((48 * r.width / r.height.max(1)).max(2), 48)
+    };
+    let cell = 300.0 / cols.max(rows) as f64;
+    let (mw, mh) = (cols as f64 * cell, rows as f64 * cell);
+    let mut svg = Svg::new(mw + 150.0, mh.max(120.0) + 10.0);
+    let span = (y.max - 1.0)
+        .max(1.0 - y.min)
+        .max(crate::xray_yield::WARN_ABOVE);
+    let shade = |g: f64| -> String {
+        let t = ((g - 1.0) / span).clamp(-1.0, 1.0);
+        let (end, t) = if t < 0.0 {
+            ([0u8, 114, 178], -t)
+        } else {
+            ([213u8, 94, 0], t)
+        };
+        let mix = |e: u8| (255.0 + (f64::from(e) - 255.0) * t).round() as u8;
+        rgb([mix(end[0]), mix(end[1]), mix(end[2])])
+    };
+    for j in 0..rows {
+        for i in 0..cols {
+            let x = (i * 2 + 1) * r.width / (2 * cols);
+            let yy = (j * 2 + 1) * r.height / (2 * rows);
+            let g = y.at(x, yy, r.width, r.height);
+            svg.rect(
+                i as f64 * cell,
+                j as f64 * cell,
+                cell + 0.5,
+                cell + 0.5,
+                &shade(g),
+                "",
+            );
+        }
+    }
+    for (k, g) in [1.0 + span, 1.0, 1.0 - span].iter().enumerate() {
+        let top = 10.0 + k as f64 * 40.0;
+        svg.rect(mw + 15.0, top, 20.0, 20.0, &shade(*g), "stroke=\"#333\"");
+        svg.text(mw + 42.0, top + 15.0, &format!("{g:.2}"), "start", 12.0);
+    }
+    Some(svg.finish(
+        "X-ray yield across the field",
+        &format!(
+            "Relative X-ray yield, {:.2} to {:.2} of the field's mean (blue low, orange high), divided out of every count",
+            y.min, y.max
+        ),
+    ))
+}
+
 /// BSE check: measured mean grey level (± SE) of each phase against its predicted
 /// backscatter coefficient, with the linear fit; flagged phases outlined in red.
 pub fn bse_plot(r: &Report) -> Option<String> {
@@ -690,6 +744,34 @@ pub fn page(r: &Report, extras: &Extras) -> String {
             }
             h.push_str("</ul>");
         }
+    }
+    match &r.xray_yield {
+        Some(y) if y.applied => {
+            h.push_str("<h2>X-ray yield across the field</h2>");
+            if let Some(svg) = yield_map(r) {
+                h.push_str(&svg);
+            }
+            let _ = write!(
+                h,
+                "<p class=\"note\">A smooth factor on every count (quadratic in ln, fitted with the phases on {} interior pixels; ΔBIC {:.0}) ranges from {:.3} to {:.3}; the counts were divided by it before the last labelling and the compositions.</p>",
+                y.pixels, y.delta_bic, y.min, y.max
+            );
+        }
+        Some(y) => {
+            let why = match &y.not_estimated {
+                Some(reason) => reason.clone(),
+                None => format!(
+                    "flat: a smooth factor did not earn its terms (ΔBIC {:+.0} on {} interior pixels), so no correction was made",
+                    y.delta_bic, y.pixels
+                ),
+            };
+            let _ = write!(
+                h,
+                "<h2>X-ray yield across the field</h2><p class=\"note\">{}.</p>",
+                esc(&why)
+            );
+        }
+        None => {}
     }
     if let Some(svg) = bic_curve(r) {
         h.push_str("<h2>How many phases</h2>");

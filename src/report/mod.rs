@@ -200,6 +200,9 @@ pub struct Report {
     /// The saved model the field was labelled with (`apply`).
     #[serde(skip_serializing_if = "Option::is_none", default)]
     pub model: Option<crate::fields::ModelRef>,
+    /// The X-ray yield across the field (absent in reports of older versions).
+    #[serde(rename = "yield", skip_serializing_if = "Option::is_none", default)]
+    pub xray_yield: Option<crate::xray_yield::YieldField>,
 }
 
 /// SHA-256 of `bytes` as lowercase hex (FIPS 180-4).
@@ -255,6 +258,8 @@ pub struct Labelled<'a> {
     pub fitted_pixels: usize,
     /// The method that chose the count, where it is not the one that labelled the pixels.
     pub counted_with: Option<Method>,
+    /// The X-ray yield across the field.
+    pub xray_yield: &'a crate::xray_yield::YieldField,
     /// The field's metadata.
     pub metadata: &'a crate::stack::FieldMetadata,
     /// Mapped elements with the line named with each map.
@@ -380,6 +385,15 @@ pub fn build(
             ));
         }
     }
+    let y = result.xray_yield;
+    if y.uneven() {
+        warnings.push(format!(
+            "the X-ray yield varies across the field from {:.2} to {:.2} of its mean (more than ±{:.0} %), as from the detector's take-off angle, shadowing or a tilted specimen: a smooth factor fitted with the phases was divided out of every count before the last labelling and the compositions (see the yield map); check the specimen's flatness and the working distance, and prefer a higher magnification or a montage for quantitative work",
+            y.min,
+            y.max,
+            100.0 * crate::xray_yield::WARN_ABOVE
+        ));
+    }
     if let PhaseCount::Fixed(want) = options.cluster.phases {
         if t.phases.len() < want {
             warnings.push(format!(
@@ -463,6 +477,7 @@ pub fn build(
         composition: composition.clone(),
         advisor: advisor.clone(),
         model: model.cloned(),
+        xray_yield: Some(result.xray_yield.clone()),
     })
 }
 
@@ -626,6 +641,12 @@ pub fn summary(r: &Report) -> String {
                 r.phase_count.simplifications.len()
             ));
         }
+    }
+    if let Some(y) = r.xray_yield.as_ref().filter(|y| y.applied) {
+        s.push_str(&format!(
+            "\n  X-ray yield: {:.2} to {:.2} of the mean across the field; divided out of the counts\n",
+            y.min, y.max
+        ));
     }
     if let Some(b) = &r.bse {
         s.push_str(&format!(

@@ -12,8 +12,11 @@
 //!    mean the tool uses);
 //! 3. the beam's lateral spread: the expected counts blurred by a Gaussian core with a
 //!    wider tail (90 % σ = `blur_px`, 10 % σ = 3 · `blur_px`), not the tool's model;
-//! 4. dead time: every count of a pixel scaled by 1 / (1 + τ · total rate);
-//! 5. Poisson counting noise.
+//! 4. an uneven X-ray yield across the field, when asked for (`shading`): every count of
+//!    a pixel times 1 + a · (2x / (w − 1) − 1), a linear ramp of ±a from left to right,
+//!    as from the detector's take-off angle at low magnification;
+//! 5. dead time: every count of a pixel scaled by 1 / (1 + τ · total rate);
+//! 6. Poisson counting noise.
 //!
 //! **What it leaves out**: absorption and fluorescence beyond the ±3 % factors, peak
 //! overlaps, the continuum's energy dependence (each map has its own level), escape and
@@ -100,6 +103,8 @@ pub struct Scenario {
     pub blur_px: f64,
     /// Dead time per count rate (1 / counts per pixel).
     pub dead_time: f64,
+    /// Half the range of the yield's left-to-right ramp (0.2: ±20 %); 0 for none.
+    pub shading: f64,
     /// Seed of the matrix factors and the noise.
     pub seed: u64,
 }
@@ -124,6 +129,7 @@ impl Scenario {
             pixel_um: 0.5,
             blur_px: 0.6,
             dead_time: 0.002,
+            shading: 0.0,
             seed,
         }
     }
@@ -197,6 +203,9 @@ impl Scenario {
             })
             .collect();
         for i in 0..w * h {
+            let ramp = 2.0 * (i % w) as f64 / (w - 1).max(1) as f64 - 1.0;
+            let lit = 1.0 + self.shading * ramp;
+            planes.iter_mut().for_each(|p| p[i] *= lit);
             let total: f64 = planes.iter().map(|p| p[i]).sum();
             let live = 1.0 / (1.0 + self.dead_time * total);
             planes.iter_mut().for_each(|p| p[i] *= live);

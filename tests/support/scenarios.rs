@@ -1,6 +1,7 @@
 //! Invented test scenarios for the forward model ([`super::forward`]), and a reader for the
 //! label images the tool writes (the `png` crate).
 
+use std::collections::BTreeMap;
 use std::path::Path;
 
 use super::forward::{mass_fractions, Phase, Scenario};
@@ -324,4 +325,53 @@ pub fn eutectic_braze() -> Scenario {
         BRAZE_MAPS.to_vec(),
         22,
     )
+}
+
+/// A wide field of a felsic rock (an invented scenario): an albite matrix holding quartz
+/// and K-feldspar grains, with the X-ray yield falling from +`shading` on the right to
+/// −`shading` on the left (0.2: ±20 %).
+pub fn shaded_rock(shading: f64) -> Scenario {
+    let (w, h) = (200usize, 160usize);
+    let mut labels = vec![1usize; w * h];
+    let mut disc =
+        |cx: f64, cy: f64, r: f64, phase: usize| paint_disc(&mut labels, w, (cx, cy, r), phase);
+    for (cx, cy) in [(30.0, 30.0), (100.0, 120.0), (170.0, 40.0), (60.0, 110.0)] {
+        disc(cx, cy, 14.0, 0);
+    }
+    for (cx, cy) in [(100.0, 40.0), (165.0, 125.0), (25.0, 135.0)] {
+        disc(cx, cy, 12.0, 2);
+    }
+    let mut s = Scenario::at_15_kv((w, h), labels, felsic_phases(), rock_maps(false), 31);
+    s.shading = shading;
+    s
+}
+
+/// Per true phase, the found phase holding most of its pixels and that share; and the
+/// pixel agreement when each found phase stands for the true phase it overlaps most.
+pub fn score(truth: &[usize], k: usize, labels: &[u16]) -> (Vec<(u16, f64)>, f64) {
+    let mut table: BTreeMap<(usize, u16), usize> = BTreeMap::new();
+    for (&t, &l) in truth.iter().zip(labels) {
+        *table.entry((t, l)).or_default() += 1;
+    }
+    let best = (0..k)
+        .map(|t| {
+            let total: usize = table.iter().filter(|e| e.0 .0 == t).map(|e| e.1).sum();
+            let (l, n) = table
+                .iter()
+                .filter(|e| e.0 .0 == t && e.0 .1 > 0)
+                .map(|e| (e.0 .1, *e.1))
+                .max_by_key(|e| e.1)
+                .unwrap_or((0, 0));
+            (l, n as f64 / total as f64)
+        })
+        .collect();
+    let mut of_label: BTreeMap<u16, (usize, usize)> = BTreeMap::new();
+    for (&(t, l), &n) in &table {
+        let e = of_label.entry(l).or_insert((t, 0));
+        if n > e.1 {
+            *e = (t, n);
+        }
+    }
+    let agree: usize = of_label.iter().filter(|e| *e.0 > 0).map(|e| e.1 .1).sum();
+    (best, agree as f64 / truth.len() as f64)
 }
