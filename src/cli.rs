@@ -188,6 +188,10 @@ pub enum Command {
         /// Seed of the benchmark rock's microstructure and counts (2048).
         #[arg(long)]
         seed: Option<u64>,
+        /// Give the benchmark rock an X-ray yield rising from left to right by ±A about
+        /// its mean (0.2 for ±20 %), as at low magnification.
+        #[arg(long, value_name = "A")]
+        yield_ramp: Option<f64>,
         /// Replace the folder's contents if it holds files (never a field's maps).
         #[arg(long)]
         force: bool,
@@ -691,8 +695,15 @@ pub fn run(cli: Cli) -> Result<u8> {
             scenario,
             size,
             seed,
+            yield_ramp,
             force,
-        } => synth(&output, truth.as_deref(), scenario, size, seed, force),
+        } => synth(
+            &output,
+            truth.as_deref(),
+            scenario,
+            (size, seed, yield_ramp),
+            force,
+        ),
     }
 }
 
@@ -702,13 +713,12 @@ fn synth(
     output: &std::path::Path,
     truth: Option<&std::path::Path>,
     scenario: Scenario,
-    size: Option<usize>,
-    seed: Option<u64>,
+    (size, seed, ramp): (Option<usize>, Option<u64>, Option<f64>),
     force: bool,
 ) -> Result<u8> {
-    if scenario == Scenario::SolderJoint && (size.is_some() || seed.is_some()) {
+    if scenario == Scenario::SolderJoint && (size.is_some() || seed.is_some() || ramp.is_some()) {
         return Err(Error::options(
-            "--size and --seed set the benchmark rock; the solder joint is the bundled sample, always the same",
+            "--size, --seed and --yield-ramp set the benchmark rock; the solder joint is the bundled sample, always the same",
             "leave them out, or add --scenario benchmark-rock",
         ));
     }
@@ -738,12 +748,19 @@ fn synth(
             ));
         }
     }
+    if let Some(r) = ramp {
+        crate::synth::check_ramp(r)?;
+    }
     let dir = crate::report::prepare_output(output, force)?;
     let field = match scenario {
         Scenario::SolderJoint => crate::synth::sample_field()?,
         Scenario::BenchmarkRock => {
             let (micro, opts) = crate::synth::benchmark_rock(size, seed);
-            crate::synth::generate(&micro, &opts)?
+            let mut field = crate::synth::generate(&micro, &opts)?;
+            if let Some(r) = ramp {
+                crate::synth::shade(&mut field, r, seed)?;
+            }
+            field
         }
     };
     crate::synth::write_folder(&field, dir.folder())?;

@@ -174,7 +174,7 @@ pub fn map_stack_with_progress(
     if !shading.applied && !by_poisson {
         return Ok(finish(f, chosen, shading, opts, progress));
     }
-    let mut counts = f.counts;
+    let mut counts = into_counts(f);
     shading.correct(&mut counts);
     progress("fitting the phase model");
     let t = crate::profile::stage("prepare");
@@ -182,18 +182,33 @@ pub fn map_stack_with_progress(
     drop(t);
     let t = crate::profile::stage("fit");
     let k = chosen.clusters.k();
-    let fit = select::fit_from_labels(&f, &chosen.seg.labels, k, &opts.cluster)?;
+    let first = into_labels(chosen.seg);
+    let fit = select::fit_from_labels(&f, &first, k, &opts.cluster)?;
     drop(t);
     let t = crate::profile::stage("refine");
     let seg = refine(&f, &fit.clusters, &opts.refine);
     drop(t);
+    drop(first);
     let chosen = Chosen {
         clusters: fit.clusters,
+        curve: chosen.curve,
+        simplifications: chosen.simplifications,
         seg,
         fitted_pixels: fit.fitted_pixels,
-        ..chosen
+        counted_by: chosen.counted_by,
     };
     Ok(finish(f, chosen, shading, opts, progress))
+}
+
+/// The counts of prepared features; the features themselves are freed here, not at the
+/// end of the caller's scope.
+fn into_counts(f: Features) -> MapStack {
+    f.counts
+}
+
+/// The labels of a segmentation; the rest of it is freed here.
+fn into_labels(seg: Segmentation) -> Vec<u16> {
+    seg.labels
 }
 
 /// The phases of a field before the last labelling.
@@ -400,7 +415,7 @@ pub fn label_with_model(
     // corrected counts are labelled again.
     let shading = crate::xray_yield::estimate(&f.counts, &seg.labels, clusters.k());
     let f = if shading.applied {
-        let mut counts = f.counts;
+        let mut counts = into_counts(f);
         shading.correct(&mut counts);
         let f = prepare(counts, &opts.transform.unbinned())?;
         seg = refine(&f, clusters, &opts.refine);

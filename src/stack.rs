@@ -113,6 +113,11 @@ impl MapStack {
         }
     }
 
+    /// The counts of every map, to change in place (the maps' order and size stay).
+    pub fn counts_mut(&mut self) -> impl Iterator<Item = &mut [f32]> {
+        self.maps.iter_mut().map(|m| m.counts.as_mut_slice())
+    }
+
     /// Checks the invariants and orders the maps by atomic number.
     ///
     /// `origin` is the input path used in error messages.

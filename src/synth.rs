@@ -347,6 +347,43 @@ pub fn generate(micro: &Microstructure, opts: &SynthOptions) -> Result<SynthFiel
     })
 }
 
+/// Checks a yield ramp for [`shade`]: 0 to below 1.
+pub fn check_ramp(ramp: f64) -> Result<()> {
+    if (0.0..1.0).contains(&ramp) {
+        Ok(())
+    } else {
+        Err(Error::options(
+            format!("--yield-ramp {ramp} is out of range"),
+            "give a ramp from 0 to below 1, e.g. 0.2 for ±20 %",
+        ))
+    }
+}
+
+/// Gives a synthetic field an uneven X-ray yield that rises linearly from left to right,
+/// ±`ramp` about its mean (0.2: 0.8 to 1.2 relative to the middle): every count is kept
+/// with probability (1 + ramp · u) / (1 + ramp), u from −1 at the left edge to 1 at the
+/// right, so the counts stay Poisson (binomial thinning of a Poisson count is Poisson).
+pub fn shade(field: &mut SynthField, ramp: f64, seed: u64) -> Result<()> {
+    check_ramp(ramp)?;
+    let w = field.stack.width();
+    for (m, counts) in field.stack.counts_mut().enumerate() {
+        let mut rng = ChaCha8Rng::seed_from_u64(seed ^ 0x5348_4144_u64.wrapping_mul(m as u64 + 1));
+        for (i, c) in counts.iter_mut().enumerate() {
+            let u = if w < 2 {
+                0.0
+            } else {
+                2.0 * (i % w) as f64 / (w - 1) as f64 - 1.0
+            };
+            let keep = (1.0 + ramp * u) / (1.0 + ramp);
+            if *c > 0.0 {
+                *c = rand_distr::Binomial::new(*c as u64, keep)
+                    .map_or(*c, |b| b.sample(&mut rng) as f32);
+            }
+        }
+    }
+    Ok(())
+}
+
 fn render_bse(micro: &Microstructure, w: usize, h: usize, b: &BseOptions, seed: u64) -> Raster {
     let s = b.scale.max(1);
     let (bw, bh) = (w * s, h * s);

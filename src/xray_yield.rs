@@ -131,31 +131,33 @@ struct Sample {
 /// [`FIT_PIXELS`] of them at an even stride.
 fn interior_samples(counts: &MapStack, labels: &[u16], k: usize) -> Vec<Sample> {
     let (w, h) = (counts.width(), counts.height());
-    let interior: Vec<usize> = (1..h.saturating_sub(1))
-        .flat_map(|y| (1..w.saturating_sub(1)).map(move |x| y * w + x))
-        .filter(|&i| {
-            let l = labels[i];
-            l > 0
-                && usize::from(l) <= k
-                && [
-                    i - w - 1,
-                    i - w,
-                    i - w + 1,
-                    i - 1,
-                    i + 1,
-                    i + w - 1,
-                    i + w,
-                    i + w + 1,
-                ]
-                .iter()
-                .all(|&j| labels[j] == l)
-        })
-        .collect();
-    let stride = interior.len().div_ceil(FIT_PIXELS).max(1);
-    interior
-        .iter()
+    let inside = |i: usize| {
+        let l = labels[i];
+        l > 0
+            && usize::from(l) <= k
+            && [
+                i - w - 1,
+                i - w,
+                i - w + 1,
+                i - 1,
+                i + 1,
+                i + w - 1,
+                i + w,
+                i + w + 1,
+            ]
+            .iter()
+            .all(|&j| labels[j] == l)
+    };
+    let interior = || {
+        (1..h.saturating_sub(1))
+            .flat_map(move |y| (1..w.saturating_sub(1)).map(move |x| y * w + x))
+            .filter(move |&i| inside(i))
+    };
+    // Counted first, so that the interior of a large field is never held as a list.
+    let stride = interior().count().div_ceil(FIT_PIXELS).max(1);
+    interior()
         .step_by(stride)
-        .map(|&i| Sample {
+        .map(|i| Sample {
             phi: basis(scaled(i % w, w), scaled(i / w, h)),
             total: counts.maps().iter().map(|m| f64::from(m.counts[i])).sum(),
             phase: usize::from(labels[i]) - 1,
