@@ -465,8 +465,7 @@ impl MapArgs {
         let md = FieldMetadata {
             pixel_size_um: self.pixel_size.or(c.pixel_size),
             beam_kv: self.kv.or(c.kv),
-            live_time_s: None,
-            bse_pixel_size_um: None,
+            ..Default::default()
         };
         let bse_pixel_size = self.bse_pixel_size.or(c.bse_pixel_size);
         for (name, key, v) in [

@@ -314,6 +314,8 @@ pub fn bin_stack(stack: MapStack, bin: usize) -> Result<MapStack> {
         .collect();
     let mut md = stack.metadata().clone();
     md.pixel_size_um = md.pixel_size_um.map(|p| p * bin as f64);
+    md.tile_width_px = md.tile_width_px.map(|t| t / bin as f64);
+    md.tile_height_px = md.tile_height_px.map(|t| t / bin as f64);
     MapStack::new(std::path::Path::new("binned field"), w, h, maps, md)
 }
 

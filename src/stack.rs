@@ -21,16 +21,26 @@ pub struct FieldMetadata {
     /// Pixel size of the field's BSE image in micrometres, if it differs from the maps'.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub bse_pixel_size_um: Option<f64>,
+    /// Width of each acquisition tile of a montage, map pixels (tiles from the top-left
+    /// corner): the X-ray yield may step between tiles.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub tile_width_px: Option<f64>,
+    /// Height of each acquisition tile of a montage, map pixels.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub tile_height_px: Option<f64>,
 }
 
 /// The physically possible range of each metadata value, with its unit: an SEM beam from
 /// 0.1 to 400 kV (low-voltage imaging to the highest-voltage electron microscopes), pixels
 /// from 0.1 nm to 1 cm, live times from 1 ms to 10⁷ s (common practice, no source).
-pub const METADATA_RANGES: [(&str, f64, f64, &str); 4] = [
+/// Montage tiles from 8 to 10⁶ pixels on a side, whole numbers.
+pub const METADATA_RANGES: [(&str, f64, f64, &str); 6] = [
     ("pixel_size_um", 1e-4, 1e4, "µm"),
     ("beam_kv", 0.1, 400.0, "kV"),
     ("live_time_s", 1e-3, 1e7, "s"),
     ("bse_pixel_size_um", 1e-4, 1e4, "µm"),
+    ("tile_width_px", 8.0, 1e6, "px"),
+    ("tile_height_px", 8.0, 1e6, "px"),
 ];
 
 /// Checks one metadata value against [`METADATA_RANGES`]; the message names the range.
@@ -38,7 +48,9 @@ pub fn check_metadata_value(key: &str, v: f64) -> std::result::Result<(), String
     let Some(&(_, lo, hi, unit)) = METADATA_RANGES.iter().find(|r| r.0 == key) else {
         return Ok(());
     };
-    if v.is_finite() && (lo..=hi).contains(&v) {
+    if unit == "px" && v.fract() != 0.0 {
+        Err(format!("{v} {unit} is not a whole number of pixels"))
+    } else if v.is_finite() && (lo..=hi).contains(&v) {
         Ok(())
     } else {
         Err(format!(
@@ -56,6 +68,8 @@ impl FieldMetadata {
             ("beam_kv", self.beam_kv),
             ("live_time_s", self.live_time_s),
             ("bse_pixel_size_um", self.bse_pixel_size_um),
+            ("tile_width_px", self.tile_width_px),
+            ("tile_height_px", self.tile_height_px),
         ] {
             if let Some(v) = v {
                 check_metadata_value(key, v).map_err(|p| {
@@ -259,6 +273,16 @@ impl MapStack {
         &self.metadata
     }
 
+    /// The montage's tile size in this grid's pixels (width, height), when the metadata
+    /// give it; one side given means tiles of that side in both directions.
+    pub fn tile_px(&self) -> Option<(f64, f64)> {
+        let m = &self.metadata;
+        match (m.tile_width_px, m.tile_height_px) {
+            (None, None) => None,
+            (w, h) => Some((w.or(h)?, h.or(w)?)),
+        }
+    }
+
     /// Replaces metadata values with those given (command-line overrides).
     pub fn override_metadata(&mut self, m: &FieldMetadata) {
         self.metadata.override_with(m);
@@ -279,6 +303,12 @@ impl FieldMetadata {
         }
         if m.bse_pixel_size_um.is_some() {
             self.bse_pixel_size_um = m.bse_pixel_size_um;
+        }
+        if m.tile_width_px.is_some() {
+            self.tile_width_px = m.tile_width_px;
+        }
+        if m.tile_height_px.is_some() {
+            self.tile_height_px = m.tile_height_px;
         }
     }
 }

@@ -468,6 +468,8 @@ pub fn write_folder(field: &SynthField, dir: &Path) -> Result<()> {
         ("beam_kv", md.beam_kv),
         ("live_time_s", md.live_time_s),
         ("bse_pixel_size_um", md.bse_pixel_size_um),
+        ("tile_width_px", md.tile_width_px),
+        ("tile_height_px", md.tile_height_px),
     ] {
         if let Some(v) = v {
             toml.push_str(&format!("{k} = {v}\n"));
@@ -584,7 +586,7 @@ pub fn solder_joint() -> (Microstructure, SynthOptions) {
             pixel_size_um: Some(0.2),
             beam_kv: Some(15.0),
             live_time_s: Some(480.0),
-            bse_pixel_size_um: None,
+            ..Default::default()
         },
         bse: Some(BseOptions {
             scale: 2,
@@ -750,7 +752,7 @@ pub fn benchmark_rock(size: usize, seed: u64) -> (Microstructure, SynthOptions) 
             pixel_size_um: Some(0.5),
             beam_kv: Some(15.0),
             live_time_s: Some(1200.0),
-            bse_pixel_size_um: None,
+            ..Default::default()
         },
         bse: None,
     };

@@ -18,16 +18,20 @@
 //! freedom, at least 1: counts vary more than Poisson between pixels of one phase) falls.
 //! A field without a gradient keeps a yield of exactly 1.
 
-use nalgebra::{SMatrix, SVector};
+use nalgebra::{DMatrix, DVector};
 use serde::{Deserialize, Serialize};
 
 use crate::stack::MapStack;
 
-/// Number of terms of the smooth field.
+/// Number of smooth terms.
 pub const TERMS: usize = 5;
 
 /// Most interior pixels the fit uses (an even stride through them beyond that).
 const FIT_PIXELS: usize = 200_000;
+
+/// Most montage tiles that get a step of their own (beyond that, the smooth field alone,
+/// and the result says so).
+const MAX_TILES: usize = 1024;
 
 /// The yield is reported as uneven when it strays from 1 by more than this (common
 /// practice, no source).
@@ -36,18 +40,32 @@ pub const WARN_ABOVE: f64 = 0.05;
 /// An estimated X-ray yield across a field.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct YieldField {
-    /// Whether the counts were divided by the yield (the smooth field earned its terms).
+    /// Whether the counts were divided by the yield (the field earned its terms).
     pub applied: bool,
     /// Coefficients of ln g on u, v, P₂(u), uv, P₂(v) (u, v the coordinates scaled to
-    /// [−1, 1] left to right and top to bottom; P₂(t) = (3t² − 1)/2); all 0 when not applied.
+    /// [−1, 1] left to right and top to bottom, across the field or, in a montage with
+    /// known tiles, across each tile; P₂(t) = (3t² − 1)/2); all 0 when not applied.
     pub coefficients: [f64; TERMS],
     /// Standard errors of the coefficients (scaled by the dispersion).
     pub standard_errors: [f64; TERMS],
+    /// The montage's tile size on the label grid (width, height), when known.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub tile_size_px: Option<[f64; 2]>,
+    /// The montage's tiles across and down, when known.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub tiles: Option<[usize; 2]>,
+    /// The yield step of each tile (a factor, tiles across then down, their geometric mean
+    /// 1), when the tiles are known and the yield was applied.
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub tile_factors: Vec<f64>,
+    /// Standard error of the logarithm of each tile factor (tile 0 is the reference).
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub tile_factor_log_errors: Vec<f64>,
     /// Lowest yield over the field (1 when not applied).
     pub min: f64,
     /// Highest yield over the field (1 when not applied).
     pub max: f64,
-    /// BIC of the smooth field less BIC of a flat one; negative when applied.
+    /// BIC of the fitted field less BIC of a flat one; negative when applied.
     pub delta_bic: f64,
     /// Dispersion of the pixel totals about the fitted model (Pearson χ² per degree of
     /// freedom).
@@ -57,6 +75,66 @@ pub struct YieldField {
     /// Why there is no estimate, where there is none.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub not_estimated: Option<String>,
+    /// What the estimate leaves out, where it leaves something out.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub note: Option<String>,
+}
+
+/// Where a pixel lies: the field's size and its montage tiles, when known.
+#[derive(Debug, Clone, Copy, PartialEq)]
+struct Layout {
+    width: usize,
+    height: usize,
+    /// Tile size (width, height) and count (across, down).
+    tiles: Option<((f64, f64), (usize, usize))>,
+}
+
+impl Layout {
+    fn new(width: usize, height: usize, tile_px: Option<(f64, f64)>) -> Layout {
+        let tiles = tile_px.map(|(tw, th)| {
+            let across = ((width as f64 / tw).ceil() as usize).max(1);
+            let down = ((height as f64 / th).ceil() as usize).max(1);
+            ((tw, th), (across, down))
+        });
+        Layout {
+            width,
+            height,
+            tiles,
+        }
+    }
+
+    fn tile_count(&self) -> usize {
+        self.tiles.map_or(1, |(_, (a, d))| a * d)
+    }
+
+    /// The pixel's tile and its smooth terms (in the tile's coordinates when the tiles are
+    /// known).
+    fn locate(&self, x: usize, y: usize) -> (usize, [f64; TERMS]) {
+        match self.tiles {
+            None => (
+                0,
+                basis(
+                    scaled(x as f64, self.width as f64),
+                    scaled(y as f64, self.height as f64),
+                ),
+            ),
+            Some(((tw, th), (across, down))) => {
+                let (tx, ty) = (
+                    ((x as f64 / tw) as usize).min(across - 1),
+                    ((y as f64 / th) as usize).min(down - 1),
+                );
+                let (x0, y0) = (tx as f64 * tw, ty as f64 * th);
+                let (cw, ch) = (
+                    tw.min(self.width as f64 - x0),
+                    th.min(self.height as f64 - y0),
+                );
+                (
+                    ty * across + tx,
+                    basis(scaled(x as f64 - x0, cw), scaled(y as f64 - y0, ch)),
+                )
+            }
+        }
+    }
 }
 
 impl YieldField {
@@ -66,13 +144,22 @@ impl YieldField {
             applied: false,
             coefficients: [0.0; TERMS],
             standard_errors: [0.0; TERMS],
+            tile_size_px: None,
+            tiles: None,
+            tile_factors: Vec::new(),
+            tile_factor_log_errors: Vec::new(),
             min: 1.0,
             max: 1.0,
             delta_bic: 0.0,
             dispersion: 1.0,
             pixels: 0,
             not_estimated: Some(reason.to_string()),
+            note: None,
         }
+    }
+
+    fn layout(&self, width: usize, height: usize) -> Layout {
+        Layout::new(width, height, self.tile_size_px.map(|[w, h]| (w, h)))
     }
 
     /// The yield at pixel (x, y) of a `width × height` grid.
@@ -80,11 +167,13 @@ impl YieldField {
         if !self.applied {
             return 1.0;
         }
-        let phi = basis(scaled(x, width), scaled(y, height));
-        phi.iter()
+        let (tile, phi) = self.layout(width, height).locate(x, y);
+        let step = self.tile_factors.get(tile).map_or(0.0, |f| f.ln());
+        (phi.iter()
             .zip(&self.coefficients)
             .map(|(p, b)| p * b)
             .sum::<f64>()
+            + step)
             .exp()
     }
 
@@ -106,12 +195,12 @@ impl YieldField {
     }
 }
 
-/// A coordinate scaled to [−1, 1].
-fn scaled(x: usize, n: usize) -> f64 {
-    if n < 2 {
+/// A coordinate from 0 to `n` − 1 scaled to [−1, 1].
+fn scaled(x: f64, n: f64) -> f64 {
+    if n < 2.0 {
         0.0
     } else {
-        2.0 * x as f64 / (n - 1) as f64 - 1.0
+        2.0 * x / (n - 1.0) - 1.0
     }
 }
 
@@ -120,16 +209,17 @@ fn basis(u: f64, v: f64) -> [f64; TERMS] {
     [u, v, 1.5 * u * u - 0.5, u * v, 1.5 * v * v - 0.5]
 }
 
-/// A pixel of the fit: its terms, total counts and phase.
+/// A pixel of the fit: its smooth terms, tile, total counts and phase.
 struct Sample {
     phi: [f64; TERMS],
+    tile: usize,
     total: f64,
     phase: usize,
 }
 
 /// The interior pixels of the labelling (3 × 3 neighbourhood of one phase), at most
 /// [`FIT_PIXELS`] of them at an even stride.
-fn interior_samples(counts: &MapStack, labels: &[u16], k: usize) -> Vec<Sample> {
+fn interior_samples(counts: &MapStack, labels: &[u16], k: usize, layout: &Layout) -> Vec<Sample> {
     let (w, h) = (counts.width(), counts.height());
     let inside = |i: usize| {
         let l = labels[i];
@@ -157,10 +247,14 @@ fn interior_samples(counts: &MapStack, labels: &[u16], k: usize) -> Vec<Sample> 
     let stride = interior().count().div_ceil(FIT_PIXELS).max(1);
     interior()
         .step_by(stride)
-        .map(|i| Sample {
-            phi: basis(scaled(i % w, w), scaled(i / w, h)),
-            total: counts.maps().iter().map(|m| f64::from(m.counts[i])).sum(),
-            phase: usize::from(labels[i]) - 1,
+        .map(|i| {
+            let (tile, phi) = layout.locate(i % w, i / w);
+            Sample {
+                phi,
+                tile,
+                total: counts.maps().iter().map(|m| f64::from(m.counts[i])).sum(),
+                phase: usize::from(labels[i]) - 1,
+            }
         })
         .collect()
 }
@@ -194,51 +288,97 @@ fn totals_and_likelihood(samples: &[Sample], g: &[f64], k: usize) -> (Vec<f64>, 
     (lambda, ll)
 }
 
-fn yields(samples: &[Sample], beta: &SVector<f64, TERMS>) -> Vec<f64> {
-    samples
-        .iter()
-        .map(|s| SVector::<f64, TERMS>::from(s.phi).dot(beta).exp())
-        .collect()
+/// ln g of a sample: the smooth terms, then one step per tile after the first (the
+/// reference).
+fn log_yield(s: &Sample, beta: &DVector<f64>) -> f64 {
+    let smooth: f64 = s.phi.iter().zip(beta.iter()).map(|(p, b)| p * b).sum();
+    smooth
+        + if s.tile > 0 {
+            beta[TERMS + s.tile - 1]
+        } else {
+            0.0
+        }
+}
+
+/// The gradient and Hessian of the log-likelihood in β. The tile terms are one-hot, so
+/// each pixel adds to the smooth block, one smooth–tile column and one diagonal entry.
+fn gradient_and_hessian(
+    samples: &[Sample],
+    g: &[f64],
+    lambda: &[f64],
+    p: usize,
+) -> (DVector<f64>, DMatrix<f64>) {
+    let mut grad = DVector::zeros(p);
+    let mut h = DMatrix::zeros(p, p);
+    for (s, &gi) in samples.iter().zip(g) {
+        let mu = gi * lambda[s.phase];
+        let r = s.total - mu;
+        for a in 0..TERMS {
+            grad[a] += s.phi[a] * r;
+            for b in 0..TERMS {
+                h[(a, b)] += s.phi[a] * s.phi[b] * mu;
+            }
+        }
+        if s.tile > 0 {
+            let t = TERMS + s.tile - 1;
+            grad[t] += r;
+            h[(t, t)] += mu;
+            for a in 0..TERMS {
+                h[(a, t)] += s.phi[a] * mu;
+                h[(t, a)] += s.phi[a] * mu;
+            }
+        }
+    }
+    (grad, h)
 }
 
 /// Estimates the yield of a field from its counts and a first labelling (`labels`:
-/// 0 = none, c + 1 = phase c of `k`).
+/// 0 = none, c + 1 = phase c of `k`). With the montage's tile size known (field metadata
+/// `tile_width_px`, `tile_height_px`), each tile gets a step of its own and the smooth
+/// terms follow each tile's coordinates.
 pub fn estimate(counts: &MapStack, labels: &[u16], k: usize) -> YieldField {
-    let samples = interior_samples(counts, labels, k);
+    let (w, h) = (counts.width(), counts.height());
+    let mut layout = Layout::new(w, h, counts.tile_px());
+    let mut note = None;
+    if layout.tile_count() > MAX_TILES {
+        note = Some(format!(
+            "the montage has {} tiles, more than the {MAX_TILES} that get a yield step of their own: a smooth field across the whole montage was fitted instead",
+            layout.tile_count()
+        ));
+        layout = Layout::new(w, h, None);
+    }
+    let samples = interior_samples(counts, labels, k, &layout);
     let n = samples.len();
-    if n < 10 * TERMS {
+    let p = TERMS + layout.tile_count() - 1;
+    if n < 10 * p {
         return YieldField::not_estimated("too few interior pixels to estimate the yield");
     }
     let (_, ll0) = totals_and_likelihood(&samples, &vec![1.0; n], k);
-    let mut beta = SVector::<f64, TERMS>::zeros();
-    let mut hessian = SMatrix::<f64, TERMS, TERMS>::identity();
+    let mut beta = DVector::zeros(p);
+    let mut hessian = DMatrix::identity(p, p);
     for _ in 0..50 {
-        let g = yields(&samples, &beta);
+        let g: Vec<f64> = samples.iter().map(|s| log_yield(s, &beta).exp()).collect();
         let (lambda, _) = totals_and_likelihood(&samples, &g, k);
-        let mut grad = SVector::<f64, TERMS>::zeros();
-        let mut h = SMatrix::<f64, TERMS, TERMS>::zeros();
-        for (s, &gi) in samples.iter().zip(&g) {
-            let mu = gi * lambda[s.phase];
-            let phi = SVector::<f64, TERMS>::from(s.phi);
-            grad += phi * (s.total - mu);
-            h += phi * phi.transpose() * mu;
+        let (grad, mut h) = gradient_and_hessian(&samples, &g, &lambda, p);
+        // A weak ridge keeps a degenerate grid (one row or column, an empty tile) solvable.
+        let ridge = 1e-6 * h.trace().max(1.0) / p as f64;
+        for j in 0..p {
+            h[(j, j)] += ridge;
         }
-        // A weak ridge keeps a degenerate grid (one row or column) solvable.
-        h += SMatrix::<f64, TERMS, TERMS>::identity() * 1e-6 * h.trace().max(1.0);
-        hessian = h;
+        hessian = h.clone();
         let Some(chol) = h.cholesky() else {
             return YieldField::not_estimated("the yield's normal equations are singular");
         };
         let step = chol.solve(&grad);
-        beta += step;
+        beta += &step;
         if step.amax() < 1e-8 {
             break;
         }
     }
-    let g = yields(&samples, &beta);
+    let g: Vec<f64> = samples.iter().map(|s| log_yield(s, &beta).exp()).collect();
     let (lambda, ll) = totals_and_likelihood(&samples, &g, k);
     let phases_used = lambda.iter().filter(|l| **l > 0.0).count();
-    let dof = n.saturating_sub(TERMS + phases_used).max(1);
+    let dof = n.saturating_sub(p + phases_used).max(1);
     let chi2: f64 = samples
         .iter()
         .zip(&g)
@@ -252,25 +392,44 @@ pub fn estimate(counts: &MapStack, labels: &[u16], k: usize) -> YieldField {
         })
         .sum();
     let dispersion = (chi2 / dof as f64).max(1.0);
-    let delta_bic = -2.0 * (ll - ll0) / dispersion + TERMS as f64 * (n as f64).ln();
+    let delta_bic = -2.0 * (ll - ll0) / dispersion + p as f64 * (n as f64).ln();
     let covariance = hessian
         .cholesky()
         .map(|c| c.inverse() * dispersion)
-        .unwrap_or_else(SMatrix::zeros);
+        .unwrap_or_else(|| DMatrix::zeros(p, p));
+    let se = |j: usize| covariance[(j, j)].max(0.0).sqrt();
     let applied = delta_bic < 0.0;
+    let tiles = layout.tiles.map(|(_, (a, d))| [a, d]);
     let mut field = YieldField {
         applied,
-        coefficients: if applied { beta.into() } else { [0.0; TERMS] },
-        standard_errors: std::array::from_fn(|j| covariance[(j, j)].max(0.0).sqrt()),
+        coefficients: std::array::from_fn(|j| if applied { beta[j] } else { 0.0 }),
+        standard_errors: std::array::from_fn(se),
+        tile_size_px: layout.tiles.map(|((tw, th), _)| [tw, th]),
+        tiles,
+        tile_factors: Vec::new(),
+        tile_factor_log_errors: Vec::new(),
         min: 1.0,
         max: 1.0,
         delta_bic,
         dispersion,
         pixels: n,
         not_estimated: None,
+        note,
     };
+    if let Some([a, d]) = tiles {
+        field.tile_factor_log_errors = (0..a * d)
+            .map(|t| if t == 0 { 0.0 } else { se(TERMS + t - 1) })
+            .collect();
+        if applied {
+            // Steps centred so that their geometric mean is 1 (the phases keep the level).
+            let steps: Vec<f64> = (0..a * d)
+                .map(|t| if t == 0 { 0.0 } else { beta[TERMS + t - 1] })
+                .collect();
+            let mean = steps.iter().sum::<f64>() / steps.len() as f64;
+            field.tile_factors = steps.iter().map(|s| (s - mean).exp()).collect();
+        }
+    }
     if applied {
-        let (w, h) = (counts.width(), counts.height());
         let (lo, hi) = extremes(&field, w, h);
         field.min = lo;
         field.max = hi;
@@ -278,22 +437,38 @@ pub fn estimate(counts: &MapStack, labels: &[u16], k: usize) -> YieldField {
     field
 }
 
-/// Lowest and highest yield over a grid of at most 65 × 65 points spanning the field,
-/// corners included (the field is a quadratic in ln g, so this finds its range closely).
+/// Lowest and highest yield over the field: on a grid of up to 65 × 65 points spanning it,
+/// or of 9 × 9 points spanning each montage tile, corners included (ln g is a quadratic
+/// across each, so this finds the range closely).
 fn extremes(field: &YieldField, w: usize, h: usize) -> (f64, f64) {
-    let steps = |n: usize| -> Vec<usize> {
-        let m = n.min(65);
+    let spans: Vec<(usize, usize, usize, usize, usize)> = match field.layout(w, h).tiles {
+        None => vec![(0, 0, w, h, 65)],
+        Some(((tw, th), (across, down))) => (0..down)
+            .flat_map(|ty| {
+                (0..across).map(move |tx| {
+                    let (x0, y0) = ((tx as f64 * tw) as usize, (ty as f64 * th) as usize);
+                    let x1 = (((tx + 1) as f64 * tw) as usize).min(w);
+                    let y1 = (((ty + 1) as f64 * th) as usize).min(h);
+                    (x0, y0, x1 - x0, y1 - y0, 9)
+                })
+            })
+            .collect(),
+    };
+    let points = |n: usize, most: usize| -> Vec<usize> {
+        let m = n.min(most);
         (0..m)
             .map(|j| if m < 2 { 0 } else { j * (n - 1) / (m - 1) })
             .collect()
     };
     let mut lo = f64::INFINITY;
     let mut hi = f64::NEG_INFINITY;
-    for &y in &steps(h) {
-        for &x in &steps(w) {
-            let g = field.at(x, y, w, h);
-            lo = lo.min(g);
-            hi = hi.max(g);
+    for (x0, y0, sw, sh, most) in spans {
+        for &y in &points(sh, most) {
+            for &x in &points(sw, most) {
+                let g = field.at(x0 + x, y0 + y, w, h);
+                lo = lo.min(g);
+                hi = hi.max(g);
+            }
         }
     }
     (lo, hi)
@@ -320,7 +495,8 @@ mod tests {
                 line: None,
                 counts: (0..w * h)
                     .map(|i| {
-                        let mu = rates[usize::from(labels[i]) - 1][e] * ramp(scaled(i % w, w));
+                        let mu = rates[usize::from(labels[i]) - 1][e]
+                            * ramp(scaled((i % w) as f64, w as f64));
                         Poisson::new(mu).unwrap().sample(&mut rng) as f32
                     })
                     .collect(),

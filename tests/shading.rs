@@ -13,7 +13,7 @@ mod support;
 use std::path::Path;
 
 use support::forward::Scenario;
-use support::scenarios::{read_labels, score, shaded_rock};
+use support::scenarios::{read_labels, score, shaded_rock, tiled_rock};
 
 fn modalmap(args: &[&str]) -> std::process::Output {
     let r = std::process::Command::new(env!("CARGO_BIN_EXE_modalmap"))
@@ -141,6 +141,40 @@ fn a_flat_field_gets_no_yield_correction() {
     let r = map_checked(&s, &field, &tmp.path().join("out"), &[], "flat");
     assert_eq!(r["yield"]["applied"], false, "{:#}", r["yield"]);
     assert!(!r["warnings"].to_string().contains("X-ray yield varies"));
+}
+
+/// A montage whose tiles differ in yield by up to ±10 %, with the tile size in field.toml:
+/// the three phases and each tile's step, relative to their geometric mean, within 0.02
+/// of the truth (a fifth of the largest step).
+#[test]
+fn a_step_per_montage_tile_is_found() {
+    let s = tiled_rock();
+    let tmp = tempfile::tempdir().unwrap();
+    let field = tmp.path().join("field");
+    s.write(&field);
+    let r = map_checked(&s, &field, &tmp.path().join("out"), &[], "2 × 2 tiles");
+    let y = &r["yield"];
+    assert_eq!(y["applied"], true, "{y:#}");
+    assert_eq!(y["tiles"], serde_json::json!([2, 2]), "{y:#}");
+    let truth = &s.tiles.as_ref().unwrap().1;
+    let mean = (truth.iter().map(|f| f.ln()).sum::<f64>() / truth.len() as f64).exp();
+    let found: Vec<f64> = y["tile_factors"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|v| v.as_f64().unwrap())
+        .collect();
+    eprintln!(
+        "tile factors {found:?}, truth {:?}",
+        truth.iter().map(|t| t / mean).collect::<Vec<_>>()
+    );
+    assert_eq!(found.len(), 4);
+    for (f, t) in found.iter().zip(truth) {
+        assert!(
+            (f - t / mean).abs() <= 0.02,
+            "found {found:?} for {truth:?}"
+        );
+    }
 }
 
 /// A model fitted on a flat field labels a shaded one with the same phases: `apply`

@@ -89,6 +89,8 @@ fn metadata_from(
         ("beam_kv", &mut into.beam_kv),
         ("live_time_s", &mut into.live_time_s),
         ("bse_pixel_size_um", &mut into.bse_pixel_size_um),
+        ("tile_width_px", &mut into.tile_width_px),
+        ("tile_height_px", &mut into.tile_height_px),
     ] {
         if let Some(a) = attrs.get(key) {
             let v = attr_f64(a).ok_or_else(|| {

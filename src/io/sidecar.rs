@@ -32,6 +32,10 @@ pub struct FieldSidecar {
     pub live_time_s: Option<f64>,
     /// Pixel size of the BSE image, µm (when it is not the maps').
     pub bse_pixel_size_um: Option<f64>,
+    /// Width of each acquisition tile of a montage, map pixels.
+    pub tile_width_px: Option<f64>,
+    /// Height of each acquisition tile of a montage, map pixels.
+    pub tile_height_px: Option<f64>,
     /// X-ray line per element symbol.
     #[serde(default)]
     pub lines: BTreeMap<String, String>,
@@ -51,7 +55,8 @@ impl FieldSidecar {
             Error::input(
                 path,
                 format!("is not valid field metadata: {}", e.message()),
-                "allowed keys: pixel_size_um, beam_kv, live_time_s, bse_pixel_size_um and a [lines] table \
+                "allowed keys: pixel_size_um, beam_kv, live_time_s, bse_pixel_size_um, tile_width_px, \
+                 tile_height_px and a [lines] table \
                  (see notebooks-free-docs/input-formats.md)",
             )
         })?;
@@ -75,6 +80,8 @@ impl FieldSidecar {
             beam_kv: self.beam_kv,
             live_time_s: self.live_time_s,
             bse_pixel_size_um: self.bse_pixel_size_um,
+            tile_width_px: self.tile_width_px,
+            tile_height_px: self.tile_height_px,
         };
         m.check(path)?;
         Ok(m)

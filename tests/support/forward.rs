@@ -14,7 +14,9 @@
 //!    wider tail (90 % σ = `blur_px`, 10 % σ = 3 · `blur_px`), not the tool's model;
 //! 4. an uneven X-ray yield across the field, when asked for (`shading`): every count of
 //!    a pixel times 1 + a · (2x / (w − 1) − 1), a linear ramp of ±a from left to right,
-//!    as from the detector's take-off angle at low magnification;
+//!    as from the detector's take-off angle at low magnification; and, for a montage
+//!    (`tiles`), a factor per acquisition tile, as from beam-current drift between tiles
+//!    (the tile size is then written to field.toml);
 //! 5. dead time: every count of a pixel scaled by 1 / (1 + τ · total rate);
 //! 6. Poisson counting noise.
 //!
@@ -105,6 +107,9 @@ pub struct Scenario {
     pub dead_time: f64,
     /// Half the range of the yield's left-to-right ramp (0.2: ±20 %); 0 for none.
     pub shading: f64,
+    /// A montage: the tile size (width, height) and each tile's yield factor, tiles
+    /// across then down.
+    pub tiles: Option<((usize, usize), Vec<f64>)>,
     /// Seed of the matrix factors and the noise.
     pub seed: u64,
 }
@@ -130,6 +135,7 @@ impl Scenario {
             blur_px: 0.6,
             dead_time: 0.002,
             shading: 0.0,
+            tiles: None,
             seed,
         }
     }
@@ -204,7 +210,11 @@ impl Scenario {
             .collect();
         for i in 0..w * h {
             let ramp = 2.0 * (i % w) as f64 / (w - 1).max(1) as f64 - 1.0;
-            let lit = 1.0 + self.shading * ramp;
+            let step = self.tiles.as_ref().map_or(1.0, |((tw, th), f)| {
+                let across = w.div_ceil(*tw);
+                f[(i / w) / th * across + (i % w) / tw]
+            });
+            let lit = (1.0 + self.shading * ramp) * step;
             planes.iter_mut().for_each(|p| p[i] *= lit);
             let total: f64 = planes.iter().map(|p| p[i]).sum();
             let live = 1.0 / (1.0 + self.dead_time * total);
@@ -242,8 +252,14 @@ impl Scenario {
         std::fs::write(
             dir.join("field.toml"),
             format!(
-                "pixel_size_um = {}\nbeam_kv = {}\n",
-                self.pixel_um, self.beam_kv
+                "pixel_size_um = {}\nbeam_kv = {}\n{}",
+                self.pixel_um,
+                self.beam_kv,
+                self.tiles
+                    .as_ref()
+                    .map_or(String::new(), |((tw, th), _)| format!(
+                        "tile_width_px = {tw}\ntile_height_px = {th}\n"
+                    ))
             ),
         )
         .unwrap();

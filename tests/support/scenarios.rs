@@ -375,3 +375,11 @@ pub fn score(truth: &[usize], k: usize, labels: &[u16]) -> (Vec<(u16, f64)>, f64
     let agree: usize = of_label.iter().filter(|e| *e.0 > 0).map(|e| e.1 .1).sum();
     (best, agree as f64 / truth.len() as f64)
 }
+
+/// The felsic rock of [`shaded_rock`] without the ramp, acquired as a montage of 2 × 2
+/// tiles of 100 × 80 px whose yields differ by up to ±10 % (beam-current drift).
+pub fn tiled_rock() -> Scenario {
+    let mut s = shaded_rock(0.0);
+    s.tiles = Some(((100, 80), vec![1.0, 1.12, 0.9, 1.05]));
+    s
+}
