@@ -383,3 +383,43 @@ pub fn tiled_rock() -> Scenario {
     s.tiles = Some(((100, 80), vec![1.0, 1.12, 0.9, 1.05]));
     s
 }
+
+/// The population area fraction of the Boolean model of [`boolean_steel`]: a point lies in
+/// no disc with the probability that a Poisson process of `per_px` centres per pixel has
+/// none within `r`, exp(−per_px · π r²) (the Boolean model's coverage, Stoyan, Kendall &
+/// Mecke 1987, "Stochastic Geometry and its Applications", ch. 3, from memory).
+pub fn boolean_fraction(r: f64, per_px: f64) -> f64 {
+    1.0 - (-per_px * std::f64::consts::PI * r * r).exp()
+}
+
+/// A steel (an invented scenario) whose carbides are a Boolean model: discs of radius `r`
+/// px centred at the points of a seeded Poisson process of `per_px` centres per pixel
+/// (drawn over the field widened by `r` on every side, so that discs cut by the edge are
+/// there too), in an Fe–1Mn matrix; maps of C, Cr, Mn and Fe. Every field of a seed series
+/// is an independent sample of one material whose area fraction is
+/// [`boolean_fraction`]`(r, per_px)`.
+pub fn boolean_steel(size: usize, r: f64, per_px: f64, seed: u64) -> Scenario {
+    use rand::{Rng, SeedableRng};
+    use rand_distr::Distribution;
+    let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(seed ^ 0x626f_6f6c);
+    let span = size as f64 + 2.0 * r;
+    let n = rand_distr::Poisson::new(per_px * span * span)
+        .unwrap()
+        .sample(&mut rng) as usize;
+    let mut labels = vec![0usize; size * size];
+    for _ in 0..n {
+        let (cx, cy) = (
+            rng.random_range(-r..size as f64 + r),
+            rng.random_range(-r..size as f64 + r),
+        );
+        paint_disc(&mut labels, size, (cx, cy, r), 1);
+    }
+    let phases = steel_phases().into_iter().take(2).collect();
+    let maps = vec![
+        ("C", 12.0, 0.03),
+        ("Cr", 55.0, 0.04),
+        ("Mn", 55.0, 0.04),
+        ("Fe", 60.0, 0.04),
+    ];
+    Scenario::at_15_kv((size, size), labels, phases, maps, seed)
+}
