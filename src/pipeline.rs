@@ -138,18 +138,19 @@ pub fn map_stack(stack: MapStack, opts: &ValidMapOptions) -> Result<MapResult> {
 /// yield is uneven, or the method is not the one that counted, the model is fitted again
 /// from the first labelling on the (corrected) counts before the last labelling.
 ///
-/// With an automatic count and k-means or the Gaussian mixture, the phases are counted
-/// with the Poisson mixture (its likelihood is the one that describes counts; the
-/// Gaussian methods' own BIC splits a large phase along its counting noise) and the
-/// chosen method is then fitted from that partition, so that the count does not depend
-/// on the method.
+/// With k-means or the Gaussian mixture, the phases are counted (or, with a fixed count,
+/// found) with the Poisson mixture, whose likelihood is the one that describes counts, and
+/// the chosen method is then fitted from that partition: the Gaussian methods' own BIC
+/// splits a large phase along its counting noise, and fitted directly with N components
+/// they spend one on a band of boundary pixels or a split matrix and lose a small phase.
+/// So the phases do not depend on the method; the method draws the boundaries.
 pub fn map_stack_with_progress(
     stack: MapStack,
     opts: &ValidMapOptions,
     progress: &mut dyn FnMut(&str),
 ) -> Result<MapResult> {
     let p = opts.cluster.get();
-    let by_poisson = matches!(p.phases, PhaseCount::Auto { .. }) && p.method != Method::Poisson;
+    let by_poisson = p.method != Method::Poisson;
     let counting = if by_poisson {
         MapOptions {
             cluster: ClusterParams {

@@ -808,6 +808,33 @@ pub fn sample_field() -> Result<SynthField> {
 mod tests {
     use super::*;
 
+    /// `match_labels` on a hand-built confusion matrix (predicted × true, 0 = void):
+    ///   pred 1: 50 of true 2, 10 of true 1;  pred 2: 40 of true 1;  pred 3: 5 of true 2
+    ///   pred 0: 7 of true 0.
+    /// Greedy on the largest cells: (1, 2) 50 first, then (2, 1) 40; pred 3 has only true 2
+    /// left, which is taken, so it stays unmatched; 0 is always 0. Agreement is
+    /// (50 + 40 + 7) / 112.
+    #[test]
+    fn match_labels_on_a_hand_built_confusion_matrix() {
+        let mut pred = Vec::new();
+        let mut truth = Vec::new();
+        for (p, t, n) in [
+            (1u16, 2u16, 50),
+            (1, 1, 10),
+            (2, 1, 40),
+            (3, 2, 5),
+            (0, 0, 7),
+        ] {
+            pred.extend(std::iter::repeat_n(p, n));
+            truth.extend(std::iter::repeat_n(t, n));
+        }
+        assert_eq!(
+            match_labels(&pred, &truth),
+            vec![Some(0), Some(2), Some(1), None]
+        );
+        assert!((agreement(&pred, &truth) - 97.0 / 112.0).abs() < 1e-12);
+    }
+
     fn tiny() -> (Microstructure, SynthOptions) {
         let phases = vec![SynthPhase::formula("Fe"), SynthPhase::formula("SiO2")];
         let micro = Microstructure::new(phases, |x, _y| {

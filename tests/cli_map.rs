@@ -295,7 +295,8 @@ fn demo_maps_the_sample_and_checks_it_against_the_truth() {
         .unwrap()
         .parse()
         .unwrap();
-    assert!(pct >= 98.0, "{line}");
+    // The README says 99.5 % (the demo prints one decimal).
+    assert!(pct >= 99.5, "{line}");
     assert_eq!(report(&out)["phases"].as_array().unwrap().len(), 5);
 }
 

@@ -10,7 +10,8 @@ pub struct Score {
     /// Fraction of pixels whose matched label equals the truth.
     pub accuracy: f64,
     /// For each true phase (index = label − 1): (true area fraction, predicted area
-    /// fraction of its matched phase), or None if no predicted phase matched it.
+    /// fraction of its matched phase), or None if no predicted phase holds more than half
+    /// of its pixels (a phase is not "found" by a few overlapping pixels).
     pub phases: Vec<(f64, Option<f64>)>,
     /// Predicted phases with no true phase matched to them.
     pub extra_phases: usize,
@@ -34,9 +35,18 @@ pub fn score(pred: &[u16], truth: &[u16]) -> Score {
         .filter(|(&p, &t)| map_p[p as usize] == Some(t as usize))
         .count();
     let count = |v: &[u16], l: usize| v.iter().filter(|&&x| x as usize == l).count() as f64 / n;
+    let recall = |p: usize, t: usize| {
+        let of_t = truth.iter().filter(|&&x| x as usize == t).count();
+        let hit = pred
+            .iter()
+            .zip(truth)
+            .filter(|(&a, &b)| a as usize == p && b as usize == t)
+            .count();
+        hit as f64 / of_t.max(1) as f64
+    };
     let phases = (1..kt)
         .map(|t| {
-            let p = (1..kp).find(|&p| map_p[p] == Some(t));
+            let p = (1..kp).find(|&p| map_p[p] == Some(t) && recall(p, t) > 0.5);
             (count(truth, t), p.map(|p| count(pred, p)))
         })
         .collect();
