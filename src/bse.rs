@@ -16,6 +16,7 @@
 //!    correlation of the means with the predicted coefficients; a linear fit; and every
 //!    pair whose measured order contradicts the predicted one, with its likely causes.
 
+use rayon::prelude::*;
 use rustfft::num_complex::Complex;
 use rustfft::FftPlanner;
 use serde::{Deserialize, Serialize};
@@ -165,23 +166,26 @@ pub fn resample(bse: &BseImage, w: usize, h: usize, s: f64, (dx, dy): (f64, f64)
     let full = s * s;
     let valid = |v: f32| v.is_finite() && bse.saturation.is_none_or(|sat| v < sat);
     let mut out = vec![f32::NAN; w * h];
-    for (j, ys) in oy.iter().enumerate() {
-        for (i, xs) in ox.iter().enumerate() {
-            let (mut sum, mut wsum) = (0.0f64, 0.0f64);
-            for &(yy, wy) in ys {
-                for &(xx, wx) in xs {
-                    let v = bse.data[yy * bse.width + xx];
-                    if valid(v) {
-                        sum += f64::from(v) * wx * wy;
-                        wsum += wx * wy;
+    // Rows in parallel: each cell is summed alone, in the same order, whatever the threads.
+    out.par_chunks_mut(w.max(1))
+        .zip(oy.par_iter())
+        .for_each(|(row, ys)| {
+            for (cell, xs) in row.iter_mut().zip(&ox) {
+                let (mut sum, mut wsum) = (0.0f64, 0.0f64);
+                for &(yy, wy) in ys {
+                    for &(xx, wx) in xs {
+                        let v = bse.data[yy * bse.width + xx];
+                        if valid(v) {
+                            sum += f64::from(v) * wx * wy;
+                            wsum += wx * wy;
+                        }
                     }
                 }
+                if wsum >= 0.5 * full {
+                    *cell = (sum / wsum) as f32;
+                }
             }
-            if wsum >= 0.5 * full {
-                out[j * w + i] = (sum / wsum) as f32;
-            }
-        }
-    }
+        });
     out
 }
 
@@ -192,19 +196,23 @@ fn fft2(data: &mut [Complex<f64>], w: usize, h: usize, inverse: bool) {
     } else {
         (planner.plan_fft_forward(w), planner.plan_fft_forward(h))
     };
-    for row in data.chunks_exact_mut(w) {
-        fw.process(row);
-    }
-    let mut col = vec![Complex::new(0.0, 0.0); h];
-    for x in 0..w {
-        for y in 0..h {
-            col[y] = data[y * w + x];
+    // Rows, then columns through a transposed copy, each line in parallel: every line's
+    // transform is the same computation whatever the thread count.
+    data.par_chunks_exact_mut(w).for_each(|row| fw.process(row));
+    let mut t = vec![Complex::new(0.0, 0.0); w * h];
+    t.par_chunks_exact_mut(h).enumerate().for_each(|(x, col)| {
+        for (y, c) in col.iter_mut().enumerate() {
+            *c = data[y * w + x];
         }
-        fh.process(&mut col);
-        for y in 0..h {
-            data[y * w + x] = col[y];
-        }
-    }
+        fh.process(col);
+    });
+    data.par_chunks_exact_mut(w)
+        .enumerate()
+        .for_each(|(y, row)| {
+            for (x, v) in row.iter_mut().enumerate() {
+                *v = t[x * h + y];
+            }
+        });
 }
 
 /// Signed frequency of index k of an n-point DFT.
@@ -219,19 +227,23 @@ fn freq(k: usize, n: usize) -> f64 {
 /// Shift d such that `moving(x + d) ≈ reference(x)`, by phase correlation with sub-pixel
 /// refinement. NaN pixels are filled with the mean; both images are windowed (Hann).
 pub fn phase_correlate(reference: &[f32], moving: &[f32], w: usize, h: usize) -> Registration {
+    // The Hann window's factors along each axis, tabulated once.
+    let hann = |n: usize| -> Vec<f64> {
+        (0..n)
+            .map(|x| 0.5 - 0.5 * (2.0 * std::f64::consts::PI * (x as f64 + 0.5) / n as f64).cos())
+            .collect()
+    };
+    let (hx, hy) = (hann(w), hann(h));
     let prep = |img: &[f32]| -> Vec<Complex<f64>> {
-        let finite: Vec<f64> = img
+        let (sum, count) = img
             .iter()
             .filter(|v| v.is_finite())
-            .map(|&v| f64::from(v))
-            .collect();
-        let mean = finite.iter().sum::<f64>() / finite.len().max(1) as f64;
-        img.iter()
+            .fold((0.0f64, 0usize), |(s, n), &v| (s + f64::from(v), n + 1));
+        let mean = sum / count.max(1) as f64;
+        img.par_iter()
             .enumerate()
             .map(|(i, &v)| {
-                let (x, y) = ((i % w) as f64, (i / w) as f64);
-                let win = (0.5 - 0.5 * (2.0 * std::f64::consts::PI * (x + 0.5) / w as f64).cos())
-                    * (0.5 - 0.5 * (2.0 * std::f64::consts::PI * (y + 0.5) / h as f64).cos());
+                let win = hx[i % w] * hy[i / w];
                 let v = if v.is_finite() { f64::from(v) } else { mean };
                 Complex::new((v - mean) * win, 0.0)
             })
@@ -245,7 +257,7 @@ pub fn phase_correlate(reference: &[f32], moving: &[f32], w: usize, h: usize) ->
     // limit the two images differ most (pixel-centre sampling of the labels against the
     // detector's area integration, noise), which biases the sub-pixel peak.
     let mut cross: Vec<Complex<f64>> = fm
-        .iter()
+        .par_iter()
         .zip(&fr)
         .enumerate()
         .map(|(i, (m, r))| {
@@ -261,6 +273,7 @@ pub fn phase_correlate(reference: &[f32], moving: &[f32], w: usize, h: usize) ->
         })
         .collect();
     let spectrum = cross.clone();
+    let t = crate::profile::stage("  bse: inverse FFT and peak");
     fft2(&mut cross, w, h, true);
     let n = (w * h) as f64;
     let corr: Vec<f64> = cross.iter().map(|c| c.re / n).collect();
@@ -278,6 +291,8 @@ pub fn phase_correlate(reference: &[f32], moving: &[f32], w: usize, h: usize) ->
         })
         .map(|i| corr[i])
         .fold(f64::NEG_INFINITY, f64::max);
+    drop(t);
+    let _t = crate::profile::stage("  bse: upsampled DFT");
     // Upsampled DFT of the cross-power spectrum on a ±1.5-pixel grid around the peak.
     let (cx, cy) = (freq(px, w), freq(py, h));
     let up = 20.0;
@@ -285,18 +300,29 @@ pub fn phase_correlate(reference: &[f32], moving: &[f32], w: usize, h: usize) ->
     let kx: Vec<f64> = (0..w).map(|k| freq(k, w)).collect();
     let ky: Vec<f64> = (0..h).map(|k| freq(k, h)).collect();
     let tau = 2.0 * std::f64::consts::PI;
-    // a[l][u] = Σ_k R(k, l) e^{i2π k (cx + u)/w}
-    let mut a = vec![Complex::new(0.0, 0.0); h * offs.len()];
-    for l in 0..h {
-        for (ui, &u) in offs.iter().enumerate() {
+    // a[l][u] = Σ_k R(k, l) e^{i2π k (cx + u)/w}, the rotations tabulated once, the rows
+    // in parallel (each sum in the same order whatever the threads).
+    let twiddles: Vec<Vec<Complex<f64>>> = offs
+        .iter()
+        .map(|&u| {
             let t = tau * (cx + u) / w as f64;
-            let mut s = Complex::new(0.0, 0.0);
-            for k in 0..w {
-                s += spectrum[l * w + k] * Complex::from_polar(1.0, t * kx[k]);
+            kx.iter()
+                .map(|&f| Complex::from_polar(1.0, t * f))
+                .collect()
+        })
+        .collect();
+    let mut a = vec![Complex::new(0.0, 0.0); h * offs.len()];
+    a.par_chunks_mut(offs.len())
+        .zip(spectrum.par_chunks(w))
+        .for_each(|(out, row)| {
+            for (o, tw) in out.iter_mut().zip(&twiddles) {
+                let mut s = Complex::new(0.0, 0.0);
+                for (r, t) in row.iter().zip(tw) {
+                    s += r * t;
+                }
+                *o = s;
             }
-            a[l * offs.len() + ui] = s;
-        }
-    }
+        });
     let mut best_up = (f64::NEG_INFINITY, 0.0, 0.0);
     for &v in &offs {
         let t = tau * (cy + v) / h as f64;
@@ -440,8 +466,12 @@ pub fn check(
         }
     };
     let predicted: Vec<f32> = labels.iter().map(|&l| eta_of(l)).collect();
+    let t = crate::profile::stage("  bse: resample");
     let unshifted = resample(bse, w, h, scale, (0.0, 0.0));
+    drop(t);
+    let t = crate::profile::stage("  bse: register");
     let registration = phase_correlate(&predicted, &unshifted, w, h);
+    drop(t);
     let shift = if registration.trusted {
         registration.shift_px
     } else {
@@ -451,11 +481,13 @@ pub fn check(
         ));
         [0.0, 0.0]
     };
+    let t = crate::profile::stage("  bse: resample");
     let registered = if shift == [0.0, 0.0] {
         unshifted
     } else {
         resample(bse, w, h, scale, (shift[0], shift[1]))
     };
+    drop(t);
 
     // Interior pixels of each phase.
     let k = table.phases.len();
