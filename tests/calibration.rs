@@ -16,6 +16,8 @@
 
 mod support;
 
+use support::run_ok;
+
 use std::path::{Path, PathBuf};
 
 use support::scenarios::{boolean_fraction, boolean_steel};
@@ -25,18 +27,6 @@ use support::scenarios::{boolean_fraction, boolean_steel};
 const SIZE: usize = 128;
 const RADIUS: f64 = 5.0;
 const PER_PX: f64 = 0.00284;
-
-fn modalmap(args: &[&str]) {
-    let r = std::process::Command::new(env!("CARGO_BIN_EXE_modalmap"))
-        .args(args)
-        .output()
-        .unwrap();
-    assert!(
-        r.status.success(),
-        "{args:?}: {}",
-        String::from_utf8_lossy(&r.stderr)
-    );
-}
 
 fn json(path: &Path) -> serde_json::Value {
     serde_json::from_slice(&std::fs::read(path).unwrap()).unwrap()
@@ -55,7 +45,7 @@ fn labelled_fields(dir: &Path, n: usize) -> Vec<PathBuf> {
     let k = dir.join("k.toml");
     std::fs::write(&k, boolean_steel(SIZE, RADIUS, PER_PX, 1000).kfactors()).unwrap();
     let model = dir.join("model.json");
-    modalmap(&[
+    run_ok(&[
         "fit",
         fields[0].to_str().unwrap(),
         "-o",
@@ -73,7 +63,7 @@ fn labelled_fields(dir: &Path, n: usize) -> Vec<PathBuf> {
         "--no-bse",
         "--quiet",
     ]);
-    modalmap(&args);
+    run_ok(&args);
     (0..n).map(|i| out.join(format!("f{i:03}"))).collect()
 }
 
@@ -174,7 +164,7 @@ fn printed_uncertainties_are_calibrated() {
         let mut args = vec!["merge"];
         args.extend(outs[5 * b..5 * b + 5].iter().map(|o| o.to_str().unwrap()));
         args.extend(["-o", summary.to_str().unwrap(), "--quiet"]);
-        modalmap(&args);
+        run_ok(&args);
         let s = json(&summary.join("summary.json"));
         let p = s["phases"]
             .as_array()

@@ -4,22 +4,14 @@
 //! merge have run; and each command gives the same output when run again, whatever the
 //! thread count or the number of fields processed at once.
 
+mod support;
+
+use support::run_ok;
+
 use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
 
 use sha2::{Digest, Sha256};
-
-fn modalmap(args: &[&str]) {
-    let r = std::process::Command::new(env!("CARGO_BIN_EXE_modalmap"))
-        .args(args)
-        .output()
-        .unwrap();
-    assert!(
-        r.status.success(),
-        "{args:?}: {}",
-        String::from_utf8_lossy(&r.stderr)
-    );
-}
 
 /// SHA-256 of every file below `dir`, by path.
 fn hashes(dir: &Path) -> BTreeMap<PathBuf, String> {
@@ -88,7 +80,7 @@ fn successful_runs_leave_every_input_unchanged() {
     let out = tmp.path().join("out");
     std::fs::create_dir_all(&out).unwrap();
     let o = |name: &str| s(&out.join(name));
-    modalmap(&[
+    run_ok(&[
         "fit",
         &s(&a),
         "-o",
@@ -100,7 +92,7 @@ fn successful_runs_leave_every_input_unchanged() {
     let before = hashes(&inputs);
     assert!(before.len() >= 14, "{} input files", before.len());
 
-    modalmap(&[
+    run_ok(&[
         "map",
         &s(&a),
         "-o",
@@ -113,7 +105,7 @@ fn successful_runs_leave_every_input_unchanged() {
         "--library",
         &s(&lib),
     ]);
-    modalmap(&[
+    run_ok(&[
         "apply",
         &s(&model),
         &s(&a),
@@ -126,7 +118,7 @@ fn successful_runs_leave_every_input_unchanged() {
         "--library",
         &s(&lib),
     ]);
-    modalmap(&[
+    run_ok(&[
         "apply",
         &s(&model),
         &s(&a),
@@ -135,8 +127,8 @@ fn successful_runs_leave_every_input_unchanged() {
         "--quiet",
         "--stream",
     ]);
-    modalmap(&["merge", &o("apply"), "-o", &o("summary"), "--quiet"]);
-    modalmap(&["fit", &s(&a), &s(&b), "-o", &o("model2.json"), "--quiet"]);
+    run_ok(&["merge", &o("apply"), "-o", &o("summary"), "--quiet"]);
+    run_ok(&["fit", &s(&a), &s(&b), "-o", &o("model2.json"), "--quiet"]);
 
     let after = hashes(&inputs);
     assert_eq!(before, after, "an input file changed or appeared");
@@ -154,7 +146,7 @@ fn outputs_do_not_depend_on_threads_or_jobs() {
     let s = |p: &Path| p.display().to_string();
     let o = |name: &str| s(&tmp.path().join(name));
 
-    modalmap(&[
+    run_ok(&[
         "fit",
         &s(&a),
         "-o",
@@ -163,7 +155,7 @@ fn outputs_do_not_depend_on_threads_or_jobs() {
         "--threads",
         "1",
     ]);
-    modalmap(&[
+    run_ok(&[
         "fit",
         &s(&a),
         "-o",
@@ -179,7 +171,7 @@ fn outputs_do_not_depend_on_threads_or_jobs() {
     );
 
     let m = o("m1.json");
-    modalmap(&[
+    run_ok(&[
         "apply",
         &m,
         &s(&a),
@@ -190,7 +182,7 @@ fn outputs_do_not_depend_on_threads_or_jobs() {
         "--jobs",
         "1",
     ]);
-    modalmap(&[
+    run_ok(&[
         "apply",
         &m,
         &s(&a),
@@ -215,7 +207,7 @@ fn outputs_do_not_depend_on_threads_or_jobs() {
     assert!(j1 == j2, "apply --jobs 1 and --jobs 2 differ");
 
     for run in ["s1", "s2"] {
-        modalmap(&["apply", &m, &s(&a), "-o", &o(run), "--quiet", "--stream"]);
+        run_ok(&["apply", &m, &s(&a), "-o", &o(run), "--quiet", "--stream"]);
     }
     assert!(
         contents(&tmp.path().join("s1/a")) == contents(&tmp.path().join("s2/a")),
@@ -224,7 +216,7 @@ fn outputs_do_not_depend_on_threads_or_jobs() {
 
     for method in ["kmeans", "gmm"] {
         for t in ["1", "2"] {
-            modalmap(&[
+            run_ok(&[
                 "map",
                 &s(&a),
                 "-o",

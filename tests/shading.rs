@@ -10,19 +10,12 @@
 
 mod support;
 
+use support::run_ok;
+
 use std::path::Path;
 
 use support::forward::Scenario;
 use support::scenarios::{read_labels, score, shaded_rock, tiled_rock};
-
-fn modalmap(args: &[&str]) -> std::process::Output {
-    let r = std::process::Command::new(env!("CARGO_BIN_EXE_modalmap"))
-        .args(args)
-        .output()
-        .unwrap();
-    assert!(r.status.success(), "{}", String::from_utf8_lossy(&r.stderr));
-    r
-}
 
 fn report(out: &Path) -> serde_json::Value {
     serde_json::from_slice(&std::fs::read(out.join("report.json")).unwrap()).unwrap()
@@ -78,7 +71,7 @@ fn map_checked(
         "--no-bse",
     ];
     args.extend_from_slice(extra);
-    modalmap(&args);
+    run_ok(&args);
     let r = report(out);
     let labels = read_labels(&out.join("labels.png"));
     check_phases(
@@ -187,7 +180,7 @@ fn a_saved_model_labels_a_shaded_field() {
     let s = shaded_rock(0.2);
     s.write(&shaded);
     let model = tmp.path().join("model.json");
-    modalmap(&[
+    run_ok(&[
         "fit",
         flat.to_str().unwrap(),
         "-o",
@@ -195,7 +188,7 @@ fn a_saved_model_labels_a_shaded_field() {
         "--quiet",
     ]);
     let out = tmp.path().join("applied");
-    modalmap(&[
+    run_ok(&[
         "apply",
         model.to_str().unwrap(),
         shaded.to_str().unwrap(),
@@ -236,7 +229,7 @@ fn synth_gives_a_field_the_yield_ramp_asked_for() {
         if let Some(r) = ramp {
             args.extend(["--yield-ramp", r]);
         }
-        modalmap(&args);
+        run_ok(&args);
         let mut totals = vec![0.0f64; 96];
         for e in std::fs::read_dir(&out).unwrap() {
             let p = e.unwrap().path();

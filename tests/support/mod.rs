@@ -6,3 +6,18 @@
 
 pub mod forward;
 pub mod scenarios;
+
+/// Runs the built `modalmap` with `args` and panics with its standard error unless it
+/// succeeds.
+pub fn run_ok(args: &[&str]) -> std::process::Output {
+    let r = std::process::Command::new(env!("CARGO_BIN_EXE_modalmap"))
+        .args(args)
+        .output()
+        .unwrap();
+    assert!(
+        r.status.success(),
+        "{args:?}: {}",
+        String::from_utf8_lossy(&r.stderr)
+    );
+    r
+}
