@@ -118,8 +118,8 @@ pub struct MapResult {
     pub min_counts_used: f64,
     /// Pixels the model was fitted on.
     pub fitted_pixels: usize,
-    /// The method whose likelihood chose the phase count: the Poisson mixture for an
-    /// automatic count whatever the method, else the method itself.
+    /// The method whose likelihood chose the phases: the Poisson mixture whatever the
+    /// method, when the model was fitted here; the model's own with a saved model.
     pub counted_by: Method,
     /// The X-ray yield across the field, divided out of `counts` where applied.
     pub xray_yield: YieldField,

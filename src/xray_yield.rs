@@ -65,6 +65,11 @@ pub struct YieldField {
     pub min: f64,
     /// Highest yield over the field (1 when not applied).
     pub max: f64,
+    /// Standard errors of ln g where the yield is lowest and highest (about the relative
+    /// standard errors of `min` and `max`; relative to the field's mean level, or to the
+    /// first tile's in a montage); 0 when not applied.
+    #[serde(default)]
+    pub min_max_log_se: [f64; 2],
     /// BIC of the fitted field less BIC of a flat one; negative when applied.
     pub delta_bic: f64,
     /// Dispersion of the pixel totals about the fitted model (Pearson χ² per degree of
@@ -150,6 +155,7 @@ impl YieldField {
             tile_factor_log_errors: Vec::new(),
             min: 1.0,
             max: 1.0,
+            min_max_log_se: [0.0; 2],
             delta_bic: 0.0,
             dispersion: 1.0,
             pixels: 0,
@@ -410,6 +416,7 @@ pub fn estimate(counts: &MapStack, labels: &[u16], k: usize) -> YieldField {
         tile_factor_log_errors: Vec::new(),
         min: 1.0,
         max: 1.0,
+        min_max_log_se: [0.0; 2],
         delta_bic,
         dispersion,
         pixels: n,
@@ -431,8 +438,21 @@ pub fn estimate(counts: &MapStack, labels: &[u16], k: usize) -> YieldField {
     }
     if applied {
         let (lo, hi) = extremes(&field, w, h);
-        field.min = lo;
-        field.max = hi;
+        field.min = lo.0;
+        field.max = hi.0;
+        // var ln g(x) = φ(x)ᵀ C φ(x), φ the smooth terms and the tile's one-hot term.
+        let log_se = |(x, y): (usize, usize)| {
+            let (tile, phi) = layout.locate(x, y);
+            let mut v = DVector::zeros(p);
+            for (j, f) in phi.iter().enumerate() {
+                v[j] = *f;
+            }
+            if tile > 0 {
+                v[TERMS + tile - 1] = 1.0;
+            }
+            (v.transpose() * &covariance * &v)[(0, 0)].max(0.0).sqrt()
+        };
+        field.min_max_log_se = [log_se(lo.1), log_se(hi.1)];
     }
     field
 }
@@ -440,7 +460,10 @@ pub fn estimate(counts: &MapStack, labels: &[u16], k: usize) -> YieldField {
 /// Lowest and highest yield over the field: on a grid of up to 65 × 65 points spanning it,
 /// or of 9 × 9 points spanning each montage tile, corners included (ln g is a quadratic
 /// across each, so this finds the range closely).
-fn extremes(field: &YieldField, w: usize, h: usize) -> (f64, f64) {
+/// Returns (value, (x, y)) of the lowest and of the highest.
+type Extreme = (f64, (usize, usize));
+
+fn extremes(field: &YieldField, w: usize, h: usize) -> (Extreme, Extreme) {
     let spans: Vec<(usize, usize, usize, usize, usize)> = match field.layout(w, h).tiles {
         None => vec![(0, 0, w, h, 65)],
         Some(((tw, th), (across, down))) => (0..down)
@@ -460,14 +483,19 @@ fn extremes(field: &YieldField, w: usize, h: usize) -> (f64, f64) {
             .map(|j| if m < 2 { 0 } else { j * (n - 1) / (m - 1) })
             .collect()
     };
-    let mut lo = f64::INFINITY;
-    let mut hi = f64::NEG_INFINITY;
+    let mut lo = (f64::INFINITY, (0, 0));
+    let mut hi = (f64::NEG_INFINITY, (0, 0));
     for (x0, y0, sw, sh, most) in spans {
         for &y in &points(sh, most) {
             for &x in &points(sw, most) {
-                let g = field.at(x0 + x, y0 + y, w, h);
-                lo = lo.min(g);
-                hi = hi.max(g);
+                let at = (x0 + x, y0 + y);
+                let g = field.at(at.0, at.1, w, h);
+                if g < lo.0 {
+                    lo = (g, at);
+                }
+                if g > hi.0 {
+                    hi = (g, at);
+                }
             }
         }
     }

@@ -108,6 +108,11 @@ fn a_yield_ramp_does_not_split_a_phase() {
     let y = &r["yield"];
     assert_eq!(y["applied"], true, "{y:#}");
     let (lo, hi) = (y["min"].as_f64().unwrap(), y["max"].as_f64().unwrap());
+    // Each extreme carries a standard error, small beside the ramp but not zero.
+    for se in y["min_max_log_se"].as_array().unwrap() {
+        let se = se.as_f64().unwrap();
+        assert!(se > 0.0 && se < 0.05, "standard error of ln g {se}");
+    }
     eprintln!("yield {lo:.4}–{hi:.4}, ΔBIC {}", y["delta_bic"]);
     assert!(
         (lo - 0.8).abs() <= 0.05 && (hi - 1.2).abs() <= 0.05,

@@ -753,7 +753,7 @@ pub fn page(r: &Report, extras: &Extras) -> String {
             }
             let _ = write!(
                 h,
-                "<p class=\"note\">A smooth factor on every count (quadratic in ln{}, fitted with the phases on {} interior pixels; ΔBIC {:.0}) ranges from {:.3} to {:.3}; the counts were divided by it before the last labelling and the compositions.{}</p>",
+                "<p class=\"note\">A smooth factor on every count (quadratic in ln{}, fitted with the phases on {} interior pixels; ΔBIC {:.0}) ranges from {:.3} (± {:.3}) to {:.3} (± {:.3}); the counts were divided by it before the last labelling and the compositions.{}</p>",
                 match y.tiles {
                     Some([a, d]) => format!(" across each of the montage's {a} × {d} tiles, with a step per tile"),
                     None => String::new(),
@@ -761,7 +761,9 @@ pub fn page(r: &Report, extras: &Extras) -> String {
                 y.pixels,
                 y.delta_bic,
                 y.min,
+                y.min * y.min_max_log_se[0],
                 y.max,
+                y.max * y.min_max_log_se[1],
                 y.note.as_deref().map_or(String::new(), |n| format!(" Note: {}.", esc(n)))
             );
         }

@@ -125,8 +125,8 @@ pub struct PhaseCountReport {
     /// Components merged or dissolved after BIC.
     pub simplifications: Vec<Simplification>,
     /// The method whose likelihood and BIC chose the count, where it is not the method
-    /// that labelled the pixels (an automatic count with k-means or the Gaussian mixture
-    /// is chosen with the Poisson mixture, then the method is fitted from its phases).
+    /// that labelled the pixels (with k-means or the Gaussian mixture the phases are found
+    /// with the Poisson mixture, then the method is fitted from its phases).
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub counted_with: Option<Method>,
 }
@@ -644,8 +644,11 @@ pub fn summary(r: &Report) -> String {
     }
     if let Some(y) = r.xray_yield.as_ref().filter(|y| y.applied) {
         s.push_str(&format!(
-            "\n  X-ray yield: {:.2} to {:.2} of the mean across the field; divided out of the counts\n",
-            y.min, y.max
+            "\n  X-ray yield: {:.3} ± {:.3} to {:.3} ± {:.3} of the mean across the field; divided out of the counts\n",
+            y.min,
+            y.min * y.min_max_log_se[0],
+            y.max,
+            y.max * y.min_max_log_se[1]
         ));
     }
     if let Some(b) = &r.bse {
