@@ -227,6 +227,18 @@ fn freq(k: usize, n: usize) -> f64 {
 /// Shift d such that `moving(x + d) ≈ reference(x)`, by phase correlation with sub-pixel
 /// refinement. NaN pixels are filled with the mean; both images are windowed (Hann).
 pub fn phase_correlate(reference: &[f32], moving: &[f32], w: usize, h: usize) -> Registration {
+    correlate(reference, moving, w, h, (20, 30))
+}
+
+/// [`phase_correlate`] with the sub-pixel grid in steps of 1/`up` pixel, `reach` steps
+/// either side of the integer peak.
+fn correlate(
+    reference: &[f32],
+    moving: &[f32],
+    w: usize,
+    h: usize,
+    (up, reach): (usize, usize),
+) -> Registration {
     // The Hann window's factors along each axis, tabulated once.
     let hann = |n: usize| -> Vec<f64> {
         (0..n)
@@ -295,8 +307,8 @@ pub fn phase_correlate(reference: &[f32], moving: &[f32], w: usize, h: usize) ->
     let _t = crate::profile::stage("  bse: upsampled DFT");
     // Upsampled DFT of the cross-power spectrum on a ±1.5-pixel grid around the peak.
     let (cx, cy) = (freq(px, w), freq(py, h));
-    let up = 20.0;
-    let offs: Vec<f64> = (-30..=30).map(|i| i as f64 / up).collect();
+    let reach = reach as isize;
+    let offs: Vec<f64> = (-reach..=reach).map(|i| i as f64 / up as f64).collect();
     let kx: Vec<f64> = (0..w).map(|k| freq(k, w)).collect();
     let ky: Vec<f64> = (0..h).map(|k| freq(k, h)).collect();
     let tau = 2.0 * std::f64::consts::PI;
@@ -352,6 +364,59 @@ pub fn phase_correlate(reference: &[f32], moving: &[f32], w: usize, h: usize) ->
         peak_ratio,
         trusted: peak_ratio >= MIN_PEAK_RATIO,
     }
+}
+
+/// Fields with more map pixels than this are registered on a block-averaged pair (common
+/// practice, no source: 512² resolves the shift of grains a few pixels across to a few
+/// hundredths of a pixel, and its transforms take milliseconds).
+pub const REGISTER_PIXELS: usize = 512 * 512;
+
+/// Averages `f × f` blocks of a `w × h` image (a partial block at the right or bottom edge
+/// is left out); NaN pixels are skipped, a block of NaN only is NaN.
+fn block_mean(img: &[f32], w: usize, h: usize, f: usize) -> (Vec<f32>, usize, usize) {
+    let (bw, bh) = (w / f, h / f);
+    let mut out = vec![f32::NAN; bw * bh];
+    out.par_chunks_mut(bw.max(1))
+        .enumerate()
+        .for_each(|(by, row)| {
+            for (bx, cell) in row.iter_mut().enumerate() {
+                let (mut sum, mut n) = (0.0f64, 0usize);
+                for y in by * f..(by + 1) * f {
+                    for &v in &img[y * w + bx * f..y * w + (bx + 1) * f] {
+                        if v.is_finite() {
+                            sum += f64::from(v);
+                            n += 1;
+                        }
+                    }
+                }
+                if n > 0 {
+                    *cell = (sum / n as f64) as f32;
+                }
+            }
+        });
+    (out, bw, bh)
+}
+
+/// Phase correlation of `moving` against `reference` (see [`phase_correlate`]); a field
+/// of more than [`REGISTER_PIXELS`] map pixels is registered on block averages of both
+/// images (blocks of f × f pixels, f the smallest that brings it under the limit), and the
+/// shift scaled back by f: both images' blocks start at the same pixel, so the blocks'
+/// own offset cancels. The sub-pixel grid is made f times finer, so that its step stays
+/// 1/20 of a map pixel, and spans ±1 block around the integer peak.
+pub fn register(reference: &[f32], moving: &[f32], w: usize, h: usize) -> Registration {
+    let mut f = 1;
+    while (w / f) * (h / f) > REGISTER_PIXELS {
+        f += 1;
+    }
+    if f == 1 {
+        return phase_correlate(reference, moving, w, h);
+    }
+    let (r, bw, bh) = block_mean(reference, w, h, f);
+    let (m, _, _) = block_mean(moving, w, h, f);
+    // Steps of 1/20 map pixel over ±1 block: the integer peak is within half a block.
+    let mut reg = correlate(&r, &m, bw, bh, (20 * f, 20 * f));
+    reg.shift_px = [reg.shift_px[0] * f as f64, reg.shift_px[1] * f as f64];
+    reg
 }
 
 /// Frequency scale (cycles per pixel) of the Gaussian weight on the cross-power spectrum
@@ -470,7 +535,7 @@ pub fn check(
     let unshifted = resample(bse, w, h, scale, (0.0, 0.0));
     drop(t);
     let t = crate::profile::stage("  bse: register");
-    let registration = phase_correlate(&predicted, &unshifted, w, h);
+    let registration = register(&predicted, &unshifted, w, h);
     drop(t);
     let shift = if registration.trusted {
         registration.shift_px

@@ -7,7 +7,7 @@ use std::path::Path;
 
 use common::modalmap;
 
-use modalmap::bse::{check, phase_correlate, resample, BseImage, Geometry};
+use modalmap::bse::{check, phase_correlate, register, resample, BseImage, Geometry};
 use modalmap::cluster::select::{ClusterParams, PhaseCount};
 use modalmap::physics::eta_compound;
 use modalmap::pipeline::{map_stack, MapOptions};
@@ -19,7 +19,15 @@ use modalmap::synth::{
 use rand::SeedableRng;
 
 fn rock(shift: (f64, f64), scale: usize, noise: f64) -> (modalmap::synth::SynthField, Vec<f64>) {
-    let (w, h) = (160usize, 128usize);
+    rock_of_size((160, 128), shift, scale, noise)
+}
+
+fn rock_of_size(
+    (w, h): (usize, usize),
+    shift: (f64, f64),
+    scale: usize,
+    noise: f64,
+) -> (modalmap::synth::SynthField, Vec<f64>) {
     let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(9);
     let seeds = voronoi_seeds(&mut rng, 30, (w as f64, h as f64), &[0.4, 0.35, 0.25]);
     let grains = scatter_particles(
@@ -138,6 +146,47 @@ fn registration_recovers_known_shifts() {
             reg.shift_px
         );
         assert!(reg.trusted, "peak ratio {}", reg.peak_ratio);
+    }
+}
+
+/// A field of more than 512² map pixels is registered on block averages (`register`):
+/// within a quarter of a pixel of the true shift, as above, and within 0.1 px (two steps of
+/// the sub-pixel grid; common practice, no source) of the full-resolution registration.
+#[test]
+fn a_large_field_is_registered_on_block_averages() {
+    for shift in [(2.6, -1.4), (-1.15, -2.8)] {
+        let (f, etas) = rock_of_size((800, 720), shift, 2, 2500.0);
+        let (w, h) = (f.stack.width(), f.stack.height());
+        let predicted = predicted(&f, &etas);
+        let (r, _) = f.bse.as_ref().unwrap();
+        let img = BseImage {
+            width: r.width,
+            height: r.height,
+            data: r.data.clone(),
+            saturation: None,
+            source: "synthetic".into(),
+        };
+        let moving = resample(&img, w, h, 2.0, (0.0, 0.0));
+        let fast = register(&predicted, &moving, w, h);
+        let full = phase_correlate(&predicted, &moving, w, h);
+        let dist =
+            |a: [f64; 2], b: (f64, f64)| ((a[0] - b.0).powi(2) + (a[1] - b.1).powi(2)).sqrt();
+        println!(
+            "true {shift:?}: blocks {:?}, full {:?}",
+            fast.shift_px, full.shift_px
+        );
+        assert!(
+            dist(fast.shift_px, shift) <= 0.25,
+            "{:?} for {shift:?}",
+            fast.shift_px
+        );
+        assert!(
+            dist(fast.shift_px, (full.shift_px[0], full.shift_px[1])) <= 0.1,
+            "blocks {:?}, full {:?}",
+            fast.shift_px,
+            full.shift_px
+        );
+        assert!(fast.trusted, "peak ratio {}", fast.peak_ratio);
     }
 }
 
