@@ -318,6 +318,29 @@ mod tests {
     use super::*;
     use crate::chem::element;
 
+    /// Montage tile sizes: whole pixels from 8 to 10⁶; one side alone means square tiles.
+    #[test]
+    fn tile_sizes_are_whole_pixels_in_range() {
+        assert!(check_metadata_value("tile_width_px", 512.0).is_ok());
+        let half = check_metadata_value("tile_height_px", 100.5).unwrap_err();
+        assert!(half.contains("whole number"), "{half}");
+        let small = check_metadata_value("tile_width_px", 4.0).unwrap_err();
+        assert!(small.contains("8 to 1000000 px"), "{small}");
+        let md = FieldMetadata {
+            tile_width_px: Some(64.0),
+            ..Default::default()
+        };
+        let stack = MapStack::new(
+            Path::new("t"),
+            128,
+            96,
+            vec![map("Fe", vec![1.0; 128 * 96])],
+            md,
+        )
+        .unwrap();
+        assert_eq!(stack.tile_px(), Some((64.0, 64.0)));
+    }
+
     fn map(sym: &str, counts: Vec<f32>) -> ElementMap {
         ElementMap {
             element: element(sym).unwrap(),
