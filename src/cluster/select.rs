@@ -162,7 +162,8 @@ pub fn fitting_rows(f: &Features, max: usize, seed: u64) -> Vec<f32> {
 /// the starting partition come from elsewhere (the Poisson mixture's count, see
 /// [`crate::pipeline`]); the model is this method's own: k-means runs Lloyd's iterations
 /// from the phases' mean features, the Gaussian mixture runs EM from the partition. A
-/// phase that the sample misses is represented by its pixels in the whole field.
+/// phase with fewer than 2d + 2 rows in the sample gets that many of its pixels from the
+/// whole field (its centre and covariance need them).
 pub fn fit_from_labels(
     f: &Features,
     labels: &[u16],
