@@ -562,14 +562,7 @@ pub fn check(
             let i = y * w + x;
             let l = labels[i];
             let v = registered[i];
-            if l == 0 || !v.is_finite() {
-                continue;
-            }
-            if (y - 1..=y + 1).all(|yy| {
-                labels[yy * w + x - 1..=yy * w + x + 1]
-                    .iter()
-                    .all(|&m| m == l)
-            }) {
+            if v.is_finite() && crate::phases::interior_3x3(labels, w, x, y) {
                 let s = &mut stats[l as usize - 1];
                 s.0 += 1;
                 s.1 += f64::from(v);

@@ -491,6 +491,18 @@ impl ClearSums {
     }
 }
 
+/// Whether pixel (x, y) of a `width`-wide label image is interior: it and its eight
+/// neighbours hold the same non-zero label. The caller keeps (x, y) one pixel off the edge.
+pub fn interior_3x3(labels: &[u16], width: usize, x: usize, y: usize) -> bool {
+    let l = labels[y * width + x];
+    l != 0
+        && (y - 1..=y + 1).all(|yy| {
+            labels[yy * width + x - 1..=yy * width + x + 1]
+                .iter()
+                .all(|&m| m == l)
+        })
+}
+
 /// Chessboard distance of every pixel of a `width × height` label image to the nearest
 /// boundary pixel (one with another label among its 8 neighbours), capped at 255: a pixel
 /// at distance r has no other label within r pixels. `None` when the image holds one label.

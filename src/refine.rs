@@ -982,10 +982,7 @@ pub fn interior_means(f: &Features, seg: &Segmentation, k: usize) -> Vec<Option<
     for y in 1..h.saturating_sub(1) {
         for x in 1..w.saturating_sub(1) {
             let l = seg.labels[y * w + x];
-            if l == 0 {
-                continue;
-            }
-            if (y - 1..=y + 1).all(|yy| (x - 1..=x + 1).all(|xx| seg.labels[yy * w + xx] == l)) {
+            if crate::phases::interior_3x3(&seg.labels, w, x, y) {
                 let c = l as usize - 1;
                 count[c] += 1;
                 for (s, &v) in sum[c * d..(c + 1) * d].iter_mut().zip(f.row(y * w + x)) {
