@@ -223,8 +223,8 @@ struct Chosen {
     counted_by: Method,
 }
 
-/// Fits the model (with spare components where the count is automatic, or fixed with the
-/// Poisson mixture), removes bands of mixed boundary pixels, phases below the size floor
+/// Fits the Poisson mixture with spare components ([`select::fit`]; `opts` are the
+/// counting options), removes bands of mixed boundary pixels, phases below the size floor
 /// and duplicates, merges down to a fixed count, and labels the field once.
 fn choose_phases(
     f: &Features,
@@ -236,17 +236,8 @@ fn choose_phases(
     let fit = select::fit(f, &opts.cluster)?;
     drop(t);
     let st = opts.transform.params().stabilise;
-    // Simplified when fitted with spare components: an automatic count, or a fixed one
-    // with the Poisson mixture.
-    let spares = match opts.cluster.get().phases {
-        PhaseCount::Auto { .. } => true,
-        PhaseCount::Fixed(_) => select::spares_for(opts.cluster.get().method),
-    };
-    let (mut clusters, mut simplifications) = if spares {
-        simplify::merge_indistinguishable(fit.clusters, st)
-    } else {
-        (fit.clusters, Vec::new())
-    };
+    // Fitted with spare components: simplified.
+    let (mut clusters, mut simplifications) = simplify::merge_indistinguishable(fit.clusters, st);
     let min_px = (opts.min_phase_fraction * f.pixels() as f64)
         .ceil()
         .max(1.0) as usize;
@@ -256,7 +247,7 @@ fn choose_phases(
     drop(t);
     // Dissolve boundary bands and phases below the size floor, then label again.
     for _ in 0..8 {
-        if !spares || clusters.k() < 2 {
+        if clusters.k() < 2 {
             break;
         }
         let drop = bands_and_specks(f, &clusters, &seg, st, min_px);

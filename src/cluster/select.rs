@@ -280,52 +280,6 @@ fn distinct_rows(rows: &[f32], d: usize, at_least: usize) -> bool {
     false
 }
 
-fn fit_k(rows: &[f32], d: usize, k: usize, p: &ClusterParams) -> Result<Clusters> {
-    let n = rows.len() / d;
-    if p.method == Method::Poisson {
-        return Ok(Clusters::Poisson {
-            model: fit_poisson(rows, d, k, p),
-        });
-    }
-    let km = kmeans::fit(rows, d, &kmeans_params(k, p));
-    match p.method {
-        Method::Kmeans => {
-            let variance = km.inertia / (n * d) as f64;
-            Ok(Clusters::Kmeans {
-                model: km,
-                variance,
-            })
-        }
-        _ => {
-            let labels = km.predict(rows);
-            let model = gmm::fit(rows, d, &labels, &gmm_params(k)).map_err(|e| {
-                Error::options(
-                    format!("the Gaussian mixture with {k} phases failed: {e}"),
-                    "ask for fewer phases (--phases), or use another --method",
-                )
-            })?;
-            Ok(Clusters::Gmm { model })
-        }
-    }
-}
-
-/// Poisson mixture from `n_init` seeded k-means++ seedings (in √counts, where Poisson
-/// noise is even), each refined by EM; the highest likelihood wins. Seeds are used as they
-/// are, without Lloyd iterations, because Lloyd's rule splits a large phase before it
-/// separates two small ones; EM on the true likelihood does not.
-fn fit_poisson(rows: &[f32], d: usize, k: usize, p: &ClusterParams) -> PoissonMixture {
-    let root: Vec<f32> = rows.iter().map(|&x| x.max(0.0).sqrt()).collect();
-    let starts = (0..p.n_init).map(|run| {
-        let mut rng = ChaCha8Rng::seed_from_u64(
-            p.seed
-                .wrapping_add((run as u64).wrapping_mul(0x2545_F491_4F6C_DD1D)),
-        );
-        let seeds = kmeans::kmeans_plus_plus(&root, d, k, &mut rng);
-        start_from_centres(rows, &root, d, &seeds)
-    });
-    best_of(rows, d, starts)
-}
-
 /// Ranks candidate starting mixtures by a short EM; only the winner runs to convergence.
 fn best_of(rows: &[f32], d: usize, starts: impl Iterator<Item = PoissonMixture>) -> PoissonMixture {
     let best = starts
@@ -404,19 +358,12 @@ const SHORT_EM: PoissonParams = PoissonParams {
 /// along two or three kinds of boundary).
 pub const SPARE_COMPONENTS: usize = 3;
 
-/// Whether a fixed phase count is fitted with spare components that the simplification
-/// removes: for the Poisson mixture only. With k-means or the Gaussian mixture the spares
-/// split a phase along its counting noise into pieces without interior pixels, which the
-/// band rule would then dissolve (a ceramic's whole matrix, in a test): those methods fit
-/// N components directly.
-pub fn spares_for(method: Method) -> bool {
-    method == Method::Poisson
-}
-
 /// The largest count `auto` tries.
 pub const AUTO_MAX: usize = 10;
 
-/// Fits the model of a field.
+/// Finds the phases of a field with the Poisson mixture, whatever `params.method`: the
+/// BIC sweep of greedily grown mixtures. The other methods are fitted afterwards from the
+/// resulting partition with [`fit_from_labels`].
 pub fn fit(f: &Features, params: &ValidClusterParams) -> Result<Fit> {
     let p = params.get();
     let rows = fitting_rows(f, p.sample_size, p.seed);
@@ -461,70 +408,34 @@ pub fn fit(f: &Features, params: &ValidClusterParams) -> Result<Fit> {
     // chooses among N..=max(N + SPARE_COMPONENTS, the automatic count's largest)), so
     // that a band of mixed boundary pixels or a duplicate takes a spare one and is
     // removed afterwards instead of taking one of the N phases; where the automatic count
-    // finds N phases, N gives the same model. Only the Poisson mixture: the Gaussian
-    // methods split a phase along its noise when given spares (see [`spares_for`]).
+    // finds N phases, N gives the same model.
     let (lo, max) = match p.phases {
-        PhaseCount::Fixed(k) if !spares_for(p.method) => {
-            return Ok(Fit {
-                clusters: fit_k(&rows, d, k, p)?,
-                curve: Vec::new(),
-                fitted_pixels: n,
-            })
-        }
         PhaseCount::Fixed(k) => (k, (k + SPARE_COMPONENTS).max(AUTO_MAX)),
         PhaseCount::Auto { max } => (1, max),
     };
     let mut curve = Vec::new();
-    let mut best: Option<(f64, Clusters)> = None;
-    let mut consider = |c: Clusters, b: f64, curve: &mut Vec<CurvePoint>| {
-        curve.push(CurvePoint { k: c.k(), bic: b });
-        if c.k() >= lo && best.as_ref().is_none_or(|(bb, _)| b < *bb) {
-            best = Some((b, c));
-        }
-    };
-    if p.method == Method::Poisson {
-        let mut m = poisson::fit(
-            rows.as_slice(),
-            d,
-            poisson::from_labels(&rows, d, &vec![0; n], 1),
-            &EM,
-        );
-        for k in 1..=max.min(n) {
-            if k > 1 {
-                if !distinct_rows(&rows, d, k) {
-                    break;
-                }
-                m = grow_poisson(&rows, d, &m, p);
-            }
-            let b = m.bic(n);
-            consider(Clusters::Poisson { model: m.clone() }, b, &mut curve);
-        }
-    } else {
-        // The curve uses the Gaussian mixture's likelihood for both Gaussian methods.
-        for k in lo..=max.min(n) {
+    let mut best: Option<(f64, PoissonMixture)> = None;
+    let mut m = poisson::fit(
+        rows.as_slice(),
+        d,
+        poisson::from_labels(&rows, d, &vec![0; n], 1),
+        &EM,
+    );
+    for k in 1..=max.min(n) {
+        if k > 1 {
             if !distinct_rows(&rows, d, k) {
                 break;
             }
-            let cp = ClusterParams {
-                method: Method::Gmm,
-                ..*p
-            };
-            let Ok(c) = fit_k(&rows, d, k, &cp) else {
-                break;
-            };
-            let Clusters::Gmm { model } = &c else {
-                unreachable!("asked for a mixture")
-            };
-            let b = model.bic(n);
-            consider(c, b, &mut curve);
+            m = grow_poisson(&rows, d, &m, p);
+        }
+        let b = m.bic(n);
+        curve.push(CurvePoint { k, bic: b });
+        if k >= lo && best.as_ref().is_none_or(|(bb, _)| b < *bb) {
+            best = Some((b, m.clone()));
         }
     }
-    let (_, chosen) = best.ok_or_else(|| Error::internal("no phase count could be fitted"))?;
-    let clusters = if p.method == Method::Kmeans {
-        fit_k(&rows, d, chosen.k(), p)?
-    } else {
-        chosen
-    };
+    let (_, model) = best.ok_or_else(|| Error::internal("no phase count could be fitted"))?;
+    let clusters = Clusters::Poisson { model };
     Ok(Fit {
         clusters,
         curve,
