@@ -96,6 +96,18 @@ fn check_same_field(
     check(bse, &r.segmentation.labels, w, h, &r.table, geometry).unwrap()
 }
 
+/// The synthetic field's BSE image, unsaturated.
+fn bse_image(f: &modalmap::synth::SynthField) -> BseImage {
+    let (r, _) = f.bse.as_ref().unwrap();
+    BseImage {
+        width: r.width,
+        height: r.height,
+        data: r.data.clone(),
+        saturation: None,
+        source: "synthetic".into(),
+    }
+}
+
 /// The BSE image predicted from the true labels: each phase at its η, pores at 0.
 fn predicted(f: &modalmap::synth::SynthField, etas: &[f64]) -> Vec<f32> {
     f.truth
@@ -124,14 +136,7 @@ fn registration_recovers_known_shifts() {
         let (f, etas) = rock(shift, scale, 2500.0);
         let (w, h) = (f.stack.width(), f.stack.height());
         let predicted = predicted(&f, &etas);
-        let (r, _) = f.bse.as_ref().unwrap();
-        let img = BseImage {
-            width: r.width,
-            height: r.height,
-            data: r.data.clone(),
-            saturation: None,
-            source: "synthetic".into(),
-        };
+        let img = bse_image(&f);
         let moving = resample(&img, w, h, scale as f64, (0.0, 0.0));
         let reg = phase_correlate(&predicted, &moving, w, h);
         let err =
@@ -158,14 +163,7 @@ fn a_large_field_is_registered_on_block_averages() {
         let (f, etas) = rock_of_size((800, 720), shift, 2, 2500.0);
         let (w, h) = (f.stack.width(), f.stack.height());
         let predicted = predicted(&f, &etas);
-        let (r, _) = f.bse.as_ref().unwrap();
-        let img = BseImage {
-            width: r.width,
-            height: r.height,
-            data: r.data.clone(),
-            saturation: None,
-            source: "synthetic".into(),
-        };
+        let img = bse_image(&f);
         let moving = resample(&img, w, h, 2.0, (0.0, 0.0));
         let fast = register(&predicted, &moving, w, h);
         let full = phase_correlate(&predicted, &moving, w, h);

@@ -11,9 +11,12 @@
 //! and then fails, so that a blessing run never passes unseen: review `git diff
 //! tests/golden` and commit it.
 
+mod support;
+
 use std::path::{Path, PathBuf};
 
 use serde_json::Value;
+use support::run_ok_in;
 
 fn golden_dir() -> PathBuf {
     Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/golden")
@@ -26,16 +29,7 @@ fn blessing() -> bool {
 /// Runs the binary in the crate's folder (so that the sample's paths in the provenance
 /// are the same relative paths everywhere).
 fn modalmap(args: &[&str]) {
-    let r = std::process::Command::new(env!("CARGO_BIN_EXE_modalmap"))
-        .current_dir(env!("CARGO_MANIFEST_DIR"))
-        .args(args)
-        .output()
-        .unwrap();
-    assert!(
-        r.status.success(),
-        "{args:?}: {}",
-        String::from_utf8_lossy(&r.stderr)
-    );
+    run_ok_in(Path::new(env!("CARGO_MANIFEST_DIR")), args);
 }
 
 /// A JSON file with the temporary folder's path replaced by `$TMP`.

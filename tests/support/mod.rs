@@ -10,7 +10,13 @@ pub mod scenarios;
 /// Runs the built `modalmap` with `args` and panics with its standard error unless it
 /// succeeds.
 pub fn run_ok(args: &[&str]) -> std::process::Output {
+    run_ok_in(std::path::Path::new("."), args)
+}
+
+/// [`run_ok`] in the working folder `dir`.
+pub fn run_ok_in(dir: &std::path::Path, args: &[&str]) -> std::process::Output {
     let r = std::process::Command::new(env!("CARGO_BIN_EXE_modalmap"))
+        .current_dir(dir)
         .args(args)
         .output()
         .unwrap();
