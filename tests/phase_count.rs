@@ -11,7 +11,8 @@ mod support;
 
 use std::path::Path;
 
-use support::scenarios::{eutectic_braze, read_labels, score, steel_with_inclusions};
+use support::map_field;
+use support::scenarios::{eutectic_braze, score, steel_with_inclusions};
 
 /// Maps the field with `phases` and returns the labels and report.json.
 fn map(field: &Path, out: &Path, phases: &str) -> (Vec<u16>, serde_json::Value) {
@@ -20,16 +21,11 @@ fn map(field: &Path, out: &Path, phases: &str) -> (Vec<u16>, serde_json::Value) 
 
 /// Maps the field with `phases` and `method`.
 fn map_with(field: &Path, out: &Path, phases: &str, method: &str) -> (Vec<u16>, serde_json::Value) {
-    let r = std::process::Command::new(env!("CARGO_BIN_EXE_modalmap"))
-        .args(["map", field.to_str().unwrap(), "-o", out.to_str().unwrap()])
-        .args([
-            "--quiet", "--no-bse", "--phases", phases, "--method", method,
-        ])
-        .output()
-        .unwrap();
-    assert!(r.status.success(), "{}", String::from_utf8_lossy(&r.stderr));
-    let report = serde_json::from_slice(&std::fs::read(out.join("report.json")).unwrap()).unwrap();
-    (read_labels(&out.join("labels.png")), report)
+    map_field(
+        field,
+        out,
+        &["--no-bse", "--phases", phases, "--method", method],
+    )
 }
 
 #[test]

@@ -10,16 +10,12 @@
 
 mod support;
 
-use support::run_ok;
+use support::{map_field, report, run_ok};
 
 use std::path::Path;
 
 use support::forward::Scenario;
 use support::scenarios::{read_labels, score, shaded_rock, tiled_rock};
-
-fn report(out: &Path) -> serde_json::Value {
-    serde_json::from_slice(&std::fs::read(out.join("report.json")).unwrap()).unwrap()
-}
 
 /// Per true phase, (share of its pixels in its phase, area error in percentage points).
 fn areas(truth: &[usize], k: usize, labels: &[u16]) -> Vec<(f64, f64)> {
@@ -62,18 +58,7 @@ fn map_checked(
     extra: &[&str],
     what: &str,
 ) -> serde_json::Value {
-    let mut args = vec![
-        "map",
-        field.to_str().unwrap(),
-        "-o",
-        out.to_str().unwrap(),
-        "--quiet",
-        "--no-bse",
-    ];
-    args.extend_from_slice(extra);
-    run_ok(&args);
-    let r = report(out);
-    let labels = read_labels(&out.join("labels.png"));
+    let (labels, r) = map_field(field, out, &[extra, &["--no-bse"]].concat());
     check_phases(
         what,
         &s.labels,

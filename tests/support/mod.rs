@@ -27,3 +27,27 @@ pub fn run_ok_in(dir: &std::path::Path, args: &[&str]) -> std::process::Output {
     );
     r
 }
+
+/// Reads an output's report.json.
+pub fn report(out: &std::path::Path) -> serde_json::Value {
+    serde_json::from_slice(&std::fs::read(out.join("report.json")).unwrap()).unwrap()
+}
+
+/// Runs `modalmap map FIELD -o OUT --quiet` with `extra` options (it must succeed) and
+/// returns the labels and report.json it wrote.
+pub fn map_field(
+    field: &std::path::Path,
+    out: &std::path::Path,
+    extra: &[&str],
+) -> (Vec<u16>, serde_json::Value) {
+    let mut args = vec![
+        "map",
+        field.to_str().unwrap(),
+        "-o",
+        out.to_str().unwrap(),
+        "--quiet",
+    ];
+    args.extend_from_slice(extra);
+    run_ok(&args);
+    (scenarios::read_labels(&out.join("labels.png")), report(out))
+}
