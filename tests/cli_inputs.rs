@@ -72,6 +72,40 @@ fn low_counts_are_warned_with_poisson_reasoning() {
     );
 }
 
+/// Every warning of `inspect` fires when its condition holds and stays quiet when it does
+/// not: a weak one-map field with holes and no metadata gets all six (thresholds in
+/// src/inspect.rs: 5 counts at the 99th percentile, 20 counts per pixel on average, 0.1 %
+/// empty pixels; common practice, no source); the sample field, whose pores are 0.4 % of
+/// its pixels, only the one about empty pixels.
+#[test]
+fn inspect_warnings_fire_exactly_when_their_condition_holds() {
+    let dir = tempfile::tempdir().unwrap();
+    let counts: Vec<u8> = (0..100).map(|i| if i % 20 == 0 { 0 } else { 3 }).collect();
+    write_png_u8(&dir.path().join("Fe.png"), 10, 10, &counts).unwrap();
+    let warnings = |p: &Path| -> Vec<String> {
+        let r = modalmap(&["inspect", "--json", p.to_str().unwrap()]);
+        assert_eq!(r.code, 0, "{}", r.stderr);
+        let v: serde_json::Value = serde_json::from_str(&r.stdout).unwrap();
+        let w = v["warnings"].as_array().unwrap();
+        w.iter().map(|s| s.as_str().unwrap().to_string()).collect()
+    };
+    let weak = warnings(dir.path()).join("\n");
+    for key in [
+        "Fe reaches only 3 counts",
+        "average 2.9 counts per pixel",
+        "5.00 % of pixels have no counts",
+        "pixel size unknown",
+        "beam energy unknown",
+        "only one element map",
+    ] {
+        assert!(weak.contains(key), "`{key}` not warned: {weak}");
+    }
+    let sample = Path::new(env!("CARGO_MANIFEST_DIR")).join("sample-maps");
+    let w = warnings(&sample);
+    assert_eq!(w.len(), 1, "{w:?}");
+    assert!(w[0].starts_with("0.40 % of pixels have no counts"), "{w:?}");
+}
+
 #[test]
 fn missing_and_wrong_kind_of_input() {
     let dir = tempfile::tempdir().unwrap();
