@@ -236,6 +236,470 @@ const NEIGHBOURS: [(isize, isize, f64); 8] = [
     (1, 1, std::f64::consts::FRAC_1_SQRT_2),
 ];
 
+/// The labels of a pixel's eight neighbours (in [`NEIGHBOURS`] order, those inside the
+/// grid and not `skip`), each with its Potts weight.
+struct Votes {
+    votes: [(u16, f64); 8],
+    n: usize,
+}
+
+impl Votes {
+    /// The votes of the neighbours of pixel (x, y) of a `w × h` label image.
+    #[inline]
+    fn of(labels: &[u16], (w, h): (usize, usize), (x, y): (usize, usize), skip: u16) -> Votes {
+        let mut v = Votes {
+            votes: [(0, 0.0); 8],
+            n: 0,
+        };
+        for (dx, dy, wt) in NEIGHBOURS {
+            let (xx, yy) = (x as isize + dx, y as isize + dy);
+            if xx < 0 || yy < 0 || xx >= w as isize || yy >= h as isize {
+                continue;
+            }
+            let l = labels[yy as usize * w + xx as usize];
+            if l != skip {
+                v.votes[v.n] = (l, wt);
+                v.n += 1;
+            }
+        }
+        v
+    }
+
+    /// The votes, in neighbour order.
+    #[inline]
+    fn all(&self) -> &[(u16, f64)] {
+        &self.votes[..self.n]
+    }
+
+    /// The summed weight of the neighbours labelled `c`.
+    #[inline]
+    fn weight(&self, c: u16) -> f64 {
+        self.all().iter().filter(|v| v.0 == c).map(|v| v.1).sum()
+    }
+
+    /// The distinct labels among the votes, in order of first appearance.
+    #[inline]
+    fn distinct(&self) -> ([u16; 8], usize) {
+        let (mut out, mut n) = ([u16::MAX; 8], 0);
+        for &(l, _) in self.all() {
+            if !out[..n].contains(&l) {
+                out[n] = l;
+                n += 1;
+            }
+        }
+        (out, n)
+    }
+}
+
+/// Marks pixel `i` of a `w × h` grid and its eight neighbours.
+#[inline]
+fn mark_neighbourhood(marks: &mut [bool], i: usize, (w, h): (usize, usize)) {
+    let (x, y) = (i % w, i / w);
+    for yy in y.saturating_sub(1)..=(y + 1).min(h - 1) {
+        for xx in x.saturating_sub(1)..=(x + 1).min(w - 1) {
+            marks[yy * w + xx] = true;
+        }
+    }
+}
+
+/// Sweeps a `w × h` label image in the four colour classes of a 2 × 2 checkerboard (no
+/// two 8-neighbours share a class, so each class is decided in parallel and the result
+/// does not depend on the thread count). In a sweep, `choose(i, x, y, labels)` gives the
+/// new label of every pixel still to be looked at (`None` to keep it); the pixels around a
+/// change are looked at again in the next sweep. Stops when a sweep changes nothing or
+/// after `max_sweeps`; returns the changes per sweep.
+fn sweep_colour_classes<F>(
+    labels: &mut [u16],
+    (w, h): (usize, usize),
+    max_sweeps: usize,
+    choose: F,
+) -> Vec<usize>
+where
+    F: Fn(usize, usize, usize, &[u16]) -> Option<u16> + Sync,
+{
+    let mut dirty = vec![true; w * h];
+    let mut changes = Vec::new();
+    for _ in 0..max_sweeps {
+        let mut next_dirty = vec![false; w * h];
+        let mut changed = 0;
+        for colour in 0..4usize {
+            let (cx, cy) = (colour % 2, colour / 2);
+            let current: &[u16] = labels;
+            let (dirty, choose) = (&dirty, &choose);
+            let updates: Vec<(usize, u16)> = (cy..h)
+                .into_par_iter()
+                .step_by(2)
+                .flat_map_iter(|y| {
+                    (cx..w).step_by(2).filter_map(move |x| {
+                        let i = y * w + x;
+                        if !dirty[i] {
+                            return None;
+                        }
+                        choose(i, x, y, current).map(|l| (i, l))
+                    })
+                })
+                .collect();
+            for &(i, l) in &updates {
+                labels[i] = l;
+                mark_neighbourhood(&mut next_dirty, i, (w, h));
+            }
+            changed += updates.len();
+        }
+        changes.push(changed);
+        dirty = next_dirty;
+        if changed == 0 {
+            break;
+        }
+    }
+    changes
+}
+
+/// What every step of the refine stage shares: the scorer of the phases and the empty
+/// pseudo-phase, their expected counts (the endpoints of mixtures), and the labels that
+/// stand for "empty" (k) and "unlike every phase" (k + 1) while the stage runs.
+struct Model<'a> {
+    fs: FullScorer<'a>,
+    /// Expected counts of the phases and, last, of the empty pseudo-phase.
+    ends: Vec<Vec<f64>>,
+    /// Points along the mixing curves of every pair of endpoints.
+    curves: Vec<Vec<f64>>,
+    /// Which pairs of endpoints are far enough apart to be unmixed ([`far_pairs`]).
+    far: Vec<bool>,
+    /// Discrepancy above which a pixel is unlike its best phase.
+    outlier_threshold: f64,
+    /// Number of phases.
+    k: usize,
+    /// Whether a pixel next to a clearly different phase is judged by its best mixture
+    /// (rows are counts and scores are on the Poisson scale).
+    partial_volume: bool,
+}
+
+impl<'a> Model<'a> {
+    /// The scorer and endpoints of `clusters` for features `f`.
+    fn new(f: &Features, clusters: &'a Clusters, p: &RefineParams) -> Model<'a> {
+        let (d, k) = (f.dims, clusters.k());
+        let st = f.transform.params().stabilise;
+        let empty_fraction = f.empty_fraction;
+        let (space, empty_counts, empty_log_norm) = match clusters {
+            Clusters::Poisson { .. } => (
+                Space::Counts,
+                // A pore still picks up a little: stray and scattered X-rays (common
+                // practice, no source: 0.05 counts per pixel and element).
+                vec![0.05; d],
+                if p.smoothing == 0.0 {
+                    empty_fraction.ln()
+                } else {
+                    0.0
+                },
+            ),
+            _ => {
+                let var = clusters.noise_variance().max(1e-6);
+                (
+                    Space::Transformed(st, var),
+                    vec![0.0; d],
+                    if p.smoothing == 0.0 {
+                        empty_fraction.ln()
+                    } else {
+                        0.0
+                    } - 0.5 * d as f64 * (2.0 * std::f64::consts::PI * var).ln(),
+                )
+            }
+        };
+        let fs = FullScorer {
+            inner: clusters.scorer(p.smoothing == 0.0),
+            k,
+            space,
+            empty_point: empty_counts.iter().map(|&c| st.apply(c as f32)).collect(),
+            empty_ln_counts: empty_counts.iter().map(|&c: &f64| c.ln()).collect(),
+            empty_counts,
+            empty_log_norm,
+        };
+        let outlier_threshold = if p.outlier_tail > 0.0 {
+            ChiSquared::new(d as f64).map_or(f64::INFINITY, |c| c.inverse_cdf(1.0 - p.outlier_tail))
+        } else {
+            f64::INFINITY
+        };
+        let mut ends: Vec<Vec<f64>> = (0..k)
+            .map(|c| match space {
+                Space::Counts => clusters.mean(c).to_vec(),
+                Space::Transformed(st, _) => clusters
+                    .mean(c)
+                    .iter()
+                    .map(|&m| st.invert(m).max(0.0))
+                    .collect(),
+            })
+            .collect();
+        ends.push(fs.empty_counts.clone());
+        Model {
+            curves: mixing_points(&ends),
+            far: far_pairs(&ends),
+            ends,
+            fs,
+            outlier_threshold,
+            k,
+            partial_volume: matches!(space, Space::Counts),
+        }
+    }
+
+    /// The label of the empty pseudo-phase while the stage runs.
+    fn empty_label(&self) -> u16 {
+        self.k as u16
+    }
+
+    /// The label of pixels unlike every phase while the stage runs.
+    fn outlier_label(&self) -> u16 {
+        (self.k + 1) as u16
+    }
+
+    /// The most likely label of pixel `i` (features `row`) from its scores `lp` (phases
+    /// and the empty pseudo-phase), and its posterior; an empty pixel is empty, and a pixel
+    /// unlike its best phase and off every mixing curve is an outlier.
+    fn first_label(
+        &self,
+        f: &Features,
+        i: usize,
+        row: &[f32],
+        lp: &[f32],
+        scratch: &mut Vec<f32>,
+    ) -> (u16, f32) {
+        if !f.mask[i] {
+            return (self.empty_label(), 0.0);
+        }
+        let mut best = 0;
+        for c in 1..=self.k {
+            if lp[c] > lp[best] {
+                best = c;
+            }
+        }
+        let max = lp[best];
+        let z: f32 = lp.iter().map(|&v| (v - max).exp()).sum();
+        if best < self.k && self.fs.inner.discrepancy(best, row) > self.outlier_threshold {
+            let mixed = self.curves.iter().any(|pt| {
+                self.fs.discrepancy_to_counts(row, pt, scratch) <= self.outlier_threshold
+            });
+            if !mixed {
+                return (self.outlier_label(), 0.0);
+            }
+        }
+        (best as u16, 1.0 / z)
+    }
+
+    /// Scores every pixel: its most likely label, that label's posterior, and the first
+    /// labels of the spatial prior. With `smooth_start`, a pixel starts from the label that
+    /// best explains it *and* its 3 × 3 neighbourhood (noise-free enough that ICM does not
+    /// freeze in islands of wrong labels); without, from its most likely label.
+    ///
+    /// Rows are processed in bands; a band scores its rows plus one halo row on each side,
+    /// so the 3 × 3 start never needs the scores of the whole field at once (they would
+    /// take n × (k + 1) floats).
+    fn score_pass(&self, f: &Features, smooth_start: bool) -> FirstPass {
+        const BAND: usize = 32;
+        let (w, h, d, kk) = (f.width, f.height, f.dims, self.k + 1);
+        let n = w * h;
+        let outlier_label = self.outlier_label();
+        let mut pass = FirstPass {
+            ml: vec![0u16; n],
+            confidence: vec![0f32; n],
+            start: vec![0u16; n],
+        };
+        pass.ml
+            .par_chunks_mut(BAND * w)
+            .zip(pass.confidence.par_chunks_mut(BAND * w))
+            .zip(pass.start.par_chunks_mut(BAND * w))
+            .enumerate()
+            .for_each_init(
+                Vec::new,
+                |scratch, (band, ((ml_out, conf_out), start_out))| {
+                    let (y0, y1) = (band * BAND, ((band + 1) * BAND).min(h));
+                    let (ya, yb) = (y0.saturating_sub(1), (y1 + 1).min(h));
+                    let mut local =
+                        vec![0.0f32; if smooth_start { (yb - ya) * w * kk } else { kk }];
+                    let mut first = Vec::with_capacity((yb - ya) * w);
+                    let mut out = vec![[0f64; LANES]; kk];
+                    for y in ya..yb {
+                        let mut x = 0;
+                        let rows = &f.data[y * w * d..(y + 1) * w * d];
+                        lanes::for_each_block(rows, d, |block, xt| {
+                            self.fs.score_block(block, xt, &mut out);
+                            for (l, row) in block.chunks_exact(d).enumerate() {
+                                let off = if smooth_start {
+                                    ((y - ya) * w + x) * kk
+                                } else {
+                                    0
+                                };
+                                let lp = &mut local[off..off + kk];
+                                for (p, o) in lp.iter_mut().zip(&out) {
+                                    *p = o[l] as f32;
+                                }
+                                first.push(self.first_label(f, y * w + x, row, lp, scratch));
+                                x += 1;
+                            }
+                        });
+                    }
+                    let fixed_at = |y: usize, x: usize| {
+                        let (l, _) = first[(y - ya) * w + x];
+                        !f.mask[y * w + x] || l == outlier_label
+                    };
+                    let mut acc = vec![0.0f32; kk];
+                    let pixels = (y0..y1).flat_map(|y| (0..w).map(move |x| (y, x)));
+                    for (j, (y, x)) in pixels.enumerate() {
+                        let (l, post) = first[(y - ya) * w + x];
+                        ml_out[j] = l;
+                        conf_out[j] = post;
+                        start_out[j] = l;
+                        if smooth_start && !fixed_at(y, x) {
+                            acc.iter_mut().for_each(|a| *a = 0.0);
+                            for yy in y.saturating_sub(1)..=(y + 1).min(h - 1) {
+                                for xx in x.saturating_sub(1)..=(x + 1).min(w - 1) {
+                                    if !fixed_at(yy, xx) {
+                                        let off = ((yy - ya) * w + xx) * kk;
+                                        acc.iter_mut()
+                                            .zip(&local[off..off + kk])
+                                            .for_each(|(a, s)| *a += s);
+                                    }
+                                }
+                            }
+                            start_out[j] =
+                                (0..kk).fold(0, |b, c| if acc[c] > acc[b] { c } else { b }) as u16;
+                        }
+                    }
+                },
+            );
+        pass
+    }
+
+    /// The energy (score plus β × the Potts prior) of label `c` for a pixel with features
+    /// `row`, neighbour votes `votes` and distinct neighbour labels `nbrs`. Next to a
+    /// clearly different phase b, a pixel of phase c may hold some of b: on the Poisson
+    /// scale c is judged by its best such mixture.
+    fn energy(&self, c: u16, row: &[f32], votes: &Votes, nbrs: &[u16], beta: f64) -> f64 {
+        let mut s = self.fs.score(c as usize, row);
+        if self.partial_volume {
+            let kk = self.k + 1;
+            for &b in nbrs {
+                if b != c && self.far[c as usize * kk + b as usize] {
+                    if let Some(m) = mix_score(row, &self.ends[c as usize], &self.ends[b as usize])
+                    {
+                        s = s.max(m);
+                    }
+                }
+            }
+        }
+        s + beta * votes.weight(c)
+    }
+
+    /// One ICM decision for pixel `i` at (x, y): among its most likely label `ml` and its
+    /// neighbours' labels, the one of highest [`Self::energy`] (ties to the lower label), if
+    /// it is not the current one.
+    fn icm_choice(
+        &self,
+        f: &Features,
+        labels: &[u16],
+        (i, x, y): (usize, usize, usize),
+        ml: u16,
+        beta: f64,
+    ) -> Option<u16> {
+        let votes = Votes::of(labels, (f.width, f.height), (x, y), self.outlier_label());
+        let (nbrs, nb) = votes.distinct();
+        let mut cands = [u16::MAX; 9];
+        cands[0] = ml;
+        let mut nc = 1;
+        for &l in &nbrs[..nb] {
+            if !cands[..nc].contains(&l) {
+                cands[nc] = l;
+                nc += 1;
+            }
+        }
+        let cur = labels[i];
+        if nc == 1 && cands[0] == cur {
+            return None;
+        }
+        let row = f.row(i);
+        let mut best = (cur, self.energy(cur, row, &votes, &nbrs[..nb], beta));
+        for &c in &cands[..nc] {
+            if c == cur {
+                continue;
+            }
+            let e = self.energy(c, row, &votes, &nbrs[..nb], beta);
+            if e > best.1 || (e == best.1 && c < best.0) {
+                best = (c, e);
+            }
+        }
+        (best.0 != cur).then_some(best.0)
+    }
+
+    /// Iterated conditional modes on the Potts model (Besag 1986): sweeps until nothing
+    /// changes or `max_sweeps`; returns the changes per sweep.
+    fn icm(
+        &self,
+        f: &Features,
+        labels: &mut [u16],
+        fixed: &[bool],
+        ml: &[u16],
+        p: &RefineParams,
+    ) -> Vec<usize> {
+        sweep_colour_classes(
+            labels,
+            (f.width, f.height),
+            p.max_sweeps,
+            |i, x, y, current| {
+                if fixed[i] {
+                    return None;
+                }
+                self.icm_choice(f, current, (i, x, y), ml[i], p.smoothing)
+            },
+        )
+    }
+
+    /// The posterior of the final label, where smoothing changed it from the most likely.
+    fn posteriors(&self, f: &Features, labels: &[u16], ml: &[u16], confidence: &mut [f32]) {
+        let k = self.k;
+        labels
+            .par_iter()
+            .zip(ml.par_iter())
+            .zip(confidence.par_iter_mut())
+            .enumerate()
+            .for_each_init(Vec::new, |s, (i, ((&l, &m), conf))| {
+                if l != m && (l as usize) <= k && f.mask[i] {
+                    let row = f.row(i);
+                    s.clear();
+                    s.extend((0..=k).map(|c| self.fs.score(c, row)));
+                    let max = s.iter().cloned().fold(f64::NEG_INFINITY, f64::max);
+                    let z: f64 = s.iter().map(|v| (v - max).exp()).sum();
+                    *conf = ((s[l as usize] - max).exp() / z) as f32;
+                }
+            });
+    }
+
+    /// The stage's labels (0..k phases, k empty, k + 1 outlier) as the output's (0
+    /// unassigned, c + 1 phase c).
+    fn output_label(&self, l: u16) -> u16 {
+        if l == self.empty_label() || l == self.outlier_label() {
+            0
+        } else {
+            l + 1
+        }
+    }
+}
+
+/// The per-pixel results of the scoring pass.
+struct FirstPass {
+    /// The most likely label.
+    ml: Vec<u16>,
+    /// Its posterior.
+    confidence: Vec<f32>,
+    /// Where the spatial prior starts.
+    start: Vec<u16>,
+}
+
+/// What the refine stage did, beyond the labels.
+struct Steps {
+    sweep_changes: Vec<usize>,
+    small_feature_pixels: usize,
+    unmixed_pixels: usize,
+    before_unmixing: Vec<u16>,
+}
+
 /// Runs the refine stage.
 pub fn refine(f: &Features, clusters: &Clusters, params: &ValidRefineParams) -> Segmentation {
     refine_from(f, clusters, params, None)
@@ -251,182 +715,28 @@ pub fn refine_from(
     start: Option<&Segmentation>,
 ) -> Segmentation {
     let p = params.get();
-    let (w, h, d, k) = (f.width, f.height, f.dims, clusters.k());
-    let n = w * h;
-    let st = f.transform.params().stabilise;
-    let empty_fraction = f.empty_fraction;
-    let (space, empty_counts, empty_log_norm) = match clusters {
-        Clusters::Poisson { .. } => (
-            Space::Counts,
-            // A pore still picks up a little: stray and scattered X-rays (common practice,
-            // no source: 0.05 counts per pixel and element).
-            vec![0.05; d],
-            if p.smoothing == 0.0 {
-                empty_fraction.ln()
-            } else {
-                0.0
-            },
-        ),
-        _ => {
-            let var = clusters.noise_variance().max(1e-6);
-            (
-                Space::Transformed(st, var),
-                vec![0.0; d],
-                if p.smoothing == 0.0 {
-                    empty_fraction.ln()
-                } else {
-                    0.0
-                } - 0.5 * d as f64 * (2.0 * std::f64::consts::PI * var).ln(),
-            )
-        }
-    };
-    let fs = FullScorer {
-        inner: clusters.scorer(p.smoothing == 0.0),
-        k,
-        space,
-        empty_point: empty_counts.iter().map(|&c| st.apply(c as f32)).collect(),
-        empty_ln_counts: empty_counts.iter().map(|&c: &f64| c.ln()).collect(),
-        empty_counts,
-        empty_log_norm,
-    };
-    let outlier_threshold = if p.outlier_tail > 0.0 {
-        ChiSquared::new(d as f64).map_or(f64::INFINITY, |c| c.inverse_cdf(1.0 - p.outlier_tail))
-    } else {
-        f64::INFINITY
-    };
-    let mut ends: Vec<Vec<f64>> = (0..k)
-        .map(|c| match space {
-            Space::Counts => clusters.mean(c).to_vec(),
-            Space::Transformed(st, _) => clusters
-                .mean(c)
-                .iter()
-                .map(|&m| st.invert(m).max(0.0))
-                .collect(),
-        })
-        .collect();
-    ends.push(fs.empty_counts.clone());
-    let curves = mixing_points(&ends);
-    let kk = k + 1;
-    let far = far_pairs(&ends);
-    // The partial-volume score needs counts as rows and scores on the Poisson scale.
-    let partial_volume = matches!(space, Space::Counts);
-    let empty_label = k as u16;
-    let outlier_label = (k + 1) as u16;
-
-    // Most likely label, its posterior, and which pixels are fixed.
-    // Per pixel: the scores of every phase and the empty pseudo-phase, the most likely
-    // label, its posterior, and whether the pixel is unlike every phase.
-    let t = crate::profile::stage("  refine: scores");
+    let n = f.width * f.height;
+    let m = Model::new(f, clusters, p);
     let start =
-        start.filter(|s| s.labels.len() == n && s.labels.iter().all(|&l| (l as usize) <= k));
-    // Scores are kept (band by band) only to build the first labels.
-    let keep_scores = p.smoothing > 0.0 && start.is_none();
-    // The label of pixel `i` (features `row`) from its scores `lp` (phases and the empty
-    // pseudo-phase), and its posterior.
-    let compute = |i: usize, row: &[f32], lp: &[f32], scratch: &mut Vec<f32>| -> (u16, f32) {
-        if !f.mask[i] {
-            return (empty_label, 0.0);
-        }
-        let mut best = 0;
-        for c in 1..kk {
-            if lp[c] > lp[best] {
-                best = c;
-            }
-        }
-        let max = lp[best];
-        let z: f32 = lp.iter().map(|&v| (v - max).exp()).sum();
-        if best < k && fs.inner.discrepancy(best, row) > outlier_threshold {
-            let mixed = curves
-                .iter()
-                .any(|pt| fs.discrepancy_to_counts(row, pt, scratch) <= outlier_threshold);
-            if !mixed {
-                return (outlier_label, 0.0);
-            }
-        }
-        (best as u16, 1.0 / z)
-    };
-    // Rows are processed in bands; a band scores its rows plus one halo row on each side,
-    // so the 3 × 3 start below never needs the scores of the whole field at once (they
-    // would take n × (k + 1) floats).
-    const BAND: usize = 32;
-    // Written band by band straight into the three per-pixel outputs.
-    let mut ml = vec![0u16; n];
-    let mut confidence = vec![0f32; n];
-    let mut first_labels = vec![0u16; n];
-    ml.par_chunks_mut(BAND * w)
-        .zip(confidence.par_chunks_mut(BAND * w))
-        .zip(first_labels.par_chunks_mut(BAND * w))
-        .enumerate()
-        .for_each_init(
-            Vec::new,
-            |scratch, (band, ((ml_out, conf_out), start_out))| {
-                let (y0, y1) = (band * BAND, ((band + 1) * BAND).min(h));
-                let (ya, yb) = (y0.saturating_sub(1), (y1 + 1).min(h));
-                let mut local = vec![0.0f32; if keep_scores { (yb - ya) * w * kk } else { kk }];
-                let mut first = Vec::with_capacity((yb - ya) * w);
-                let mut out = vec![[0f64; LANES]; kk];
-                for y in ya..yb {
-                    let mut x = 0;
-                    let rows = &f.data[y * w * d..(y + 1) * w * d];
-                    lanes::for_each_block(rows, d, |block, xt| {
-                        fs.score_block(block, xt, &mut out);
-                        for (l, row) in block.chunks_exact(d).enumerate() {
-                            let off = if keep_scores {
-                                ((y - ya) * w + x) * kk
-                            } else {
-                                0
-                            };
-                            let lp = &mut local[off..off + kk];
-                            for (p, o) in lp.iter_mut().zip(&out) {
-                                *p = o[l] as f32;
-                            }
-                            first.push(compute(y * w + x, row, lp, scratch));
-                            x += 1;
-                        }
-                    });
-                }
-                let fixed_at = |y: usize, x: usize| {
-                    let (l, _) = first[(y - ya) * w + x];
-                    !f.mask[y * w + x] || l == outlier_label
-                };
-                let mut acc = vec![0.0f32; kk];
-                let pixels = (y0..y1).flat_map(|y| (0..w).map(move |x| (y, x)));
-                for (j, (y, x)) in pixels.enumerate() {
-                    let (l, post) = first[(y - ya) * w + x];
-                    ml_out[j] = l;
-                    conf_out[j] = post;
-                    start_out[j] = l;
-                    if keep_scores && !fixed_at(y, x) {
-                        // The label that best explains the pixel and its 3 × 3 neighbourhood.
-                        acc.iter_mut().for_each(|a| *a = 0.0);
-                        for yy in y.saturating_sub(1)..=(y + 1).min(h - 1) {
-                            for xx in x.saturating_sub(1)..=(x + 1).min(w - 1) {
-                                if !fixed_at(yy, xx) {
-                                    let off = ((yy - ya) * w + xx) * kk;
-                                    acc.iter_mut()
-                                        .zip(&local[off..off + kk])
-                                        .for_each(|(a, s)| *a += s);
-                                }
-                            }
-                        }
-                        start_out[j] =
-                            (0..kk).fold(0, |b, c| if acc[c] > acc[b] { c } else { b }) as u16;
-                    }
-                }
-            },
-        );
+        start.filter(|s| s.labels.len() == n && s.labels.iter().all(|&l| (l as usize) <= m.k));
+
+    let t = crate::profile::stage("  refine: scores");
+    // The 3 × 3 start is needed only with the prior on and no earlier labels.
+    let pass = m.score_pass(f, p.smoothing > 0.0 && start.is_none());
     drop(t);
     let t = crate::profile::stage("  refine: init");
     let fixed: Vec<bool> = (0..n)
-        .map(|i| !f.mask[i] || ml[i] == outlier_label)
+        .map(|i| !f.mask[i] || pass.ml[i] == m.outlier_label())
         .collect();
-    // With the spatial prior on, start from the label that best explains the pixel *and*
-    // its 3 × 3 neighbourhood: noise-free enough that ICM does not freeze in islands of
-    // wrong labels; the pixel's own best label stays a candidate in every sweep.
+    let FirstPass {
+        ml,
+        mut confidence,
+        start: first_start,
+    } = pass;
     let mut labels: Vec<u16> = match start {
         // Earlier labels (1..=k) where the pixel is still a phase pixel.
         Some(st) => {
-            drop(first_labels);
+            drop(first_start);
             (0..n)
                 .map(|i| {
                     if fixed[i] || st.labels[i] == 0 {
@@ -437,121 +747,16 @@ pub fn refine_from(
                 })
                 .collect()
         }
-        None => first_labels,
+        None => first_start,
     };
-
     drop(t);
-    let t = crate::profile::stage("  refine: icm");
-    let mut sweep_changes = Vec::new();
-    if p.smoothing > 0.0 {
-        let beta = p.smoothing;
-        let mut dirty = vec![true; n];
-        for _ in 0..p.max_sweeps {
-            let mut changed_total = 0;
-            let mut next_dirty = vec![false; n];
-            for colour in 0..4usize {
-                let (cx, cy) = (colour % 2, colour / 2);
-                let updates: Vec<(usize, u16)> = (cy..h)
-                    .into_par_iter()
-                    .step_by(2)
-                    .flat_map_iter(|y| {
-                        let labels = &labels;
-                        let dirty = &dirty;
-                        let fixed = &fixed;
-                        let ml = &ml;
-                        let fs = &fs;
-                        let far = &far;
-                        let ends = &ends;
-                        (cx..w).step_by(2).filter_map(move |x| {
-                            let i = y * w + x;
-                            if fixed[i] || !dirty[i] {
-                                return None;
-                            }
-                            let mut cands = [u16::MAX; 9];
-                            cands[0] = ml[i];
-                            let mut nc = 1;
-                            let mut votes = [(0u16, 0.0f64); 8];
-                            let mut nv = 0;
-                            // Distinct neighbour labels: the possible partners of a mixture.
-                            let mut nbrs = [u16::MAX; 8];
-                            let mut nb = 0;
-                            for (dx, dy, wt) in NEIGHBOURS {
-                                let (xx, yy) = (x as isize + dx, y as isize + dy);
-                                if xx < 0 || yy < 0 || xx >= w as isize || yy >= h as isize {
-                                    continue;
-                                }
-                                let l = labels[yy as usize * w + xx as usize];
-                                if l == outlier_label {
-                                    continue;
-                                }
-                                votes[nv] = (l, wt);
-                                nv += 1;
-                                if !nbrs[..nb].contains(&l) {
-                                    nbrs[nb] = l;
-                                    nb += 1;
-                                }
-                                if !cands[..nc].contains(&l) {
-                                    cands[nc] = l;
-                                    nc += 1;
-                                }
-                            }
-                            let cur = labels[i];
-                            if nc == 1 && cands[0] == cur {
-                                return None;
-                            }
-                            let row = f.row(i);
-                            let energy = |c: u16| {
-                                let prior: f64 =
-                                    votes[..nv].iter().filter(|v| v.0 == c).map(|v| v.1).sum();
-                                let mut s = fs.score(c as usize, row);
-                                if partial_volume {
-                                    // Next to a clearly different phase b, a pixel of phase c
-                                    // may hold some of b: judge c by its best such mixture.
-                                    for &b in &nbrs[..nb] {
-                                        if b != c && far[c as usize * kk + b as usize] {
-                                            if let Some(m) =
-                                                mix_score(row, &ends[c as usize], &ends[b as usize])
-                                            {
-                                                s = s.max(m);
-                                            }
-                                        }
-                                    }
-                                }
-                                s + beta * prior
-                            };
-                            let mut best = (cur, energy(cur));
-                            for &c in &cands[..nc] {
-                                if c == cur {
-                                    continue;
-                                }
-                                let e = energy(c);
-                                if e > best.1 || (e == best.1 && c < best.0) {
-                                    best = (c, e);
-                                }
-                            }
-                            (best.0 != cur).then_some((i, best.0))
-                        })
-                    })
-                    .collect();
-                for &(i, l) in &updates {
-                    labels[i] = l;
-                    let (x, y) = (i % w, i / w);
-                    for yy in y.saturating_sub(1)..=(y + 1).min(h - 1) {
-                        for xx in x.saturating_sub(1)..=(x + 1).min(w - 1) {
-                            next_dirty[yy * w + xx] = true;
-                        }
-                    }
-                }
-                changed_total += updates.len();
-            }
-            sweep_changes.push(changed_total);
-            dirty = next_dirty;
-            if changed_total == 0 {
-                break;
-            }
-        }
-    }
 
+    let t = crate::profile::stage("  refine: icm");
+    let sweep_changes = if p.smoothing > 0.0 {
+        m.icm(f, &mut labels, &fixed, &ml, p)
+    } else {
+        Vec::new()
+    };
     drop(t);
     let t = crate::profile::stage("  refine: unmix");
     // The labels before unmixing decide which components are bands of mixed pixels
@@ -561,9 +766,9 @@ pub fn refine_from(
         unmix_boundaries(
             f,
             &mut labels,
-            &ends,
+            &m.ends,
             &fixed,
-            outlier_label,
+            m.outlier_label(),
             p.smoothing * 0.25,
         )
     } else {
@@ -572,69 +777,57 @@ pub fn refine_from(
     drop(t);
     let _t = crate::profile::stage("  refine: finish");
     let small_feature_pixels = if p.min_feature_px > 1 {
-        remove_small_features(&mut labels, w, h, &fixed, p.min_feature_px, outlier_label)
+        let (w, h) = (f.width, f.height);
+        remove_small_features(
+            &mut labels,
+            w,
+            h,
+            &fixed,
+            p.min_feature_px,
+            m.outlier_label(),
+        )
     } else {
         0
     };
+    m.posteriors(f, &labels, &ml, &mut confidence);
+    let steps = Steps {
+        sweep_changes,
+        small_feature_pixels,
+        unmixed_pixels,
+        before_unmixing,
+    };
+    segmentation(&m, f, &labels, confidence, steps)
+}
 
-    // Posterior of the final label where smoothing changed it.
-    labels
-        .par_iter()
-        .zip(ml.par_iter())
-        .zip(confidence.par_iter_mut())
-        .enumerate()
-        .for_each_init(Vec::new, |s, (i, ((&l, &m), conf))| {
-            if l != m && (l as usize) <= k && f.mask[i] {
-                let row = f.row(i);
-                s.clear();
-                s.extend((0..=k).map(|c| fs.score(c, row)));
-                let max = s.iter().cloned().fold(f64::NEG_INFINITY, f64::max);
-                let z: f64 = s.iter().map(|v| (v - max).exp()).sum();
-                *conf = ((s[l as usize] - max).exp() / z) as f32;
-            }
-        });
-
-    let mut empty_pixels = 0;
-    let mut outlier_pixels = 0;
-    let out: Vec<u16> = labels
-        .iter()
-        .map(|&l| {
-            if l == empty_label {
-                empty_pixels += 1;
-                0
-            } else if l == outlier_label {
-                outlier_pixels += 1;
-                0
-            } else {
-                l + 1
-            }
-        })
-        .collect();
+/// The [`Segmentation`] of the stage's final `labels`.
+fn segmentation(
+    m: &Model,
+    f: &Features,
+    labels: &[u16],
+    mut confidence: Vec<f32>,
+    steps: Steps,
+) -> Segmentation {
+    let out: Vec<u16> = labels.iter().map(|&l| m.output_label(l)).collect();
     for (c, &l) in confidence.iter_mut().zip(&out) {
         if l == 0 {
             *c = 0.0;
         }
     }
     Segmentation {
-        width: w,
-        height: h,
-        outliers: labels.iter().map(|&l| l == outlier_label).collect(),
+        width: f.width,
+        height: f.height,
+        outliers: labels.iter().map(|&l| l == m.outlier_label()).collect(),
+        empty_pixels: labels.iter().filter(|&&l| l == m.empty_label()).count(),
+        outlier_pixels: labels.iter().filter(|&&l| l == m.outlier_label()).count(),
         labels: out,
         confidence,
-        empty_pixels,
-        outlier_pixels,
-        sweep_changes,
-        small_feature_pixels,
-        unmixed_pixels,
-        smoothed_labels: before_unmixing
+        sweep_changes: steps.sweep_changes,
+        small_feature_pixels: steps.small_feature_pixels,
+        unmixed_pixels: steps.unmixed_pixels,
+        smoothed_labels: steps
+            .before_unmixing
             .iter()
-            .map(|&l| {
-                if l == empty_label || l == outlier_label {
-                    0
-                } else {
-                    l + 1
-                }
-            })
+            .map(|&l| m.output_label(l))
             .collect(),
     }
 }
@@ -734,130 +927,86 @@ fn unmix_boundaries(
         .collect();
     let kk = ends.len();
     let far = far_pairs(ends);
-    let mut dirty = vec![true; w * h];
-    let mut moved = 0;
-    for _ in 0..UNMIX_PASSES {
-        let mut next_dirty = vec![false; w * h];
-        let mut changed = 0;
-        for colour in 0..4usize {
-            let (cx, cy) = (colour % 2, colour / 2);
-            let current: &[u16] = labels;
-            let dirty_now = &dirty;
-            let updates: Vec<(usize, u16)> = (cy..h)
-                .into_par_iter()
-                .step_by(2)
-                .flat_map_iter(|y| {
-                    let planes = &planes;
-                    let far = &far;
-                    (cx..w).step_by(2).filter_map(move |x| {
-                        let i = y * w + x;
-                        let a = current[i];
-                        if fixed[i] || a == outlier || !dirty_now[i] {
-                            return None;
-                        }
-                        let mut votes = [(0u16, 0.0f64); 8];
-                        let mut nv = 0;
-                        for (dx, dy, wt) in NEIGHBOURS {
-                            let (xx, yy) = (x as isize + dx, y as isize + dy);
-                            if xx < 0 || yy < 0 || xx >= w as isize || yy >= h as isize {
-                                continue;
-                            }
-                            let l = current[yy as usize * w + xx as usize];
-                            if l != outlier {
-                                votes[nv] = (l, wt);
-                                nv += 1;
-                            }
-                        }
-                        if !votes[..nv]
-                            .iter()
-                            .any(|v| v.0 != a && far[a as usize * kk + v.0 as usize])
-                        {
-                            return None;
-                        }
-                        let vote = |c: u16| -> f64 {
-                            votes[..nv].iter().filter(|v| v.0 == c).map(|v| v.1).sum()
-                        };
-                        let mut x_e = [0f64; lanes::MAX_DIMS];
-                        for (x, p) in x_e.iter_mut().zip(planes) {
-                            *x = f64::from(p[i]);
-                        }
-                        let mut best: Option<(f64, u16)> = None;
-                        let mut seen = [u16::MAX; 8];
-                        for (n, &(b, _)) in votes[..nv].iter().enumerate() {
-                            if b == a
-                                || !far[a as usize * kk + b as usize]
-                                || seen[..n].contains(&b)
-                            {
-                                continue;
-                            }
-                            seen[n] = b;
-                            let (pa, pb) = (&ends[a as usize], &ends[b as usize]);
-                            let mix = |t: f64, e: usize| (t * pa[e] + (1.0 - t) * pb[e]).max(1e-3);
-                            let slope = |t: f64| -> f64 {
-                                (0..d)
-                                    .map(|e| (x_e[e] / mix(t, e) - 1.0) * (pa[e] - pb[e]))
-                                    .sum()
-                            };
-                            let g = |t: f64| -> f64 {
-                                (0..d).map(|e| x_e[e] * mix(t, e).ln() - mix(t, e)).sum()
-                            };
-                            let argmax = |lo: f64, hi: f64| -> f64 {
-                                if slope(hi) >= 0.0 {
-                                    return hi;
-                                }
-                                if slope(lo) <= 0.0 {
-                                    return lo;
-                                }
-                                let (mut l, mut r) = (lo, hi);
-                                for _ in 0..12 {
-                                    let m = 0.5 * (l + r);
-                                    if slope(m) > 0.0 {
-                                        l = m;
-                                    } else {
-                                        r = m;
-                                    }
-                                }
-                                0.5 * (l + r)
-                            };
-                            let (la, lb) = if slope(0.5) < 0.0 {
-                                (g(0.5), g(argmax(0.0, 0.5)))
-                            } else {
-                                (g(argmax(0.5, 1.0)), g(0.5))
-                            };
-                            // No prior across the rim of a pore: the Potts prior shrinks small
-                            // convex regions, and pores are often only a few pixels across.
-                            let prior = if a as usize == kk - 1 || b as usize == kk - 1 {
-                                0.0
-                            } else {
-                                beta * (vote(b) - vote(a))
-                            };
-                            let delta = lb - la + prior;
-                            if delta > 0.0 && best.is_none_or(|bb| delta > bb.0) {
-                                best = Some((delta, b));
-                            }
-                        }
-                        best.map(|(_, b)| (i, b))
-                    })
-                })
-                .collect();
-            for &(i, b) in &updates {
-                labels[i] = b;
-                let (x, y) = (i % w, i / w);
-                for yy in y.saturating_sub(1)..=(y + 1).min(h - 1) {
-                    for xx in x.saturating_sub(1)..=(x + 1).min(w - 1) {
-                        next_dirty[yy * w + xx] = true;
-                    }
-                }
+    let changes = sweep_colour_classes(labels, (w, h), UNMIX_PASSES, |i, x, y, current| {
+        let a = current[i];
+        if fixed[i] || a == outlier {
+            return None;
+        }
+        let votes = Votes::of(current, (w, h), (x, y), outlier);
+        if !votes
+            .all()
+            .iter()
+            .any(|v| v.0 != a && far[a as usize * kk + v.0 as usize])
+        {
+            return None;
+        }
+        let mut x_e = [0f64; lanes::MAX_DIMS];
+        for (x, p) in x_e.iter_mut().zip(&planes) {
+            *x = f64::from(p[i]);
+        }
+        let mut best: Option<(f64, u16)> = None;
+        let (partners, np) = votes.distinct();
+        for &b in &partners[..np] {
+            if b == a || !far[a as usize * kk + b as usize] {
+                continue;
             }
-            changed += updates.len();
+            let (la, lb) = majority_scores(&x_e[..d], &ends[a as usize], &ends[b as usize]);
+            // No prior across the rim of a pore: the Potts prior shrinks small convex
+            // regions, and pores are often only a few pixels across.
+            let prior = if a as usize == kk - 1 || b as usize == kk - 1 {
+                0.0
+            } else {
+                beta * (votes.weight(b) - votes.weight(a))
+            };
+            let delta = lb - la + prior;
+            if delta > 0.0 && best.is_none_or(|bb| delta > bb.0) {
+                best = Some((delta, b));
+            }
         }
-        moved += changed;
-        dirty = next_dirty;
-        if changed == 0 {
-            break;
+        best.map(|(_, b)| b)
+    });
+    changes.iter().sum()
+}
+
+/// The Poisson log-likelihoods (without the Σ ln x! term) of counts `x` under the best
+/// mixture t·a + (1 − t)·b with a in the majority (t ∈ [½, 1]) and with b in the majority
+/// (t ∈ [0, ½]). The log-likelihood is concave in t; its maximum on each side is found by
+/// bisection on its slope.
+fn majority_scores(x: &[f64], pa: &[f64], pb: &[f64]) -> (f64, f64) {
+    let mix = |t: f64, e: usize| (t * pa[e] + (1.0 - t) * pb[e]).max(1e-3);
+    let slope = |t: f64| -> f64 {
+        (0..x.len())
+            .map(|e| (x[e] / mix(t, e) - 1.0) * (pa[e] - pb[e]))
+            .sum()
+    };
+    let g = |t: f64| -> f64 {
+        (0..x.len())
+            .map(|e| x[e] * mix(t, e).ln() - mix(t, e))
+            .sum()
+    };
+    let argmax = |lo: f64, hi: f64| -> f64 {
+        if slope(hi) >= 0.0 {
+            return hi;
         }
+        if slope(lo) <= 0.0 {
+            return lo;
+        }
+        let (mut l, mut r) = (lo, hi);
+        for _ in 0..12 {
+            let m = 0.5 * (l + r);
+            if slope(m) > 0.0 {
+                l = m;
+            } else {
+                r = m;
+            }
+        }
+        0.5 * (l + r)
+    };
+    if slope(0.5) < 0.0 {
+        (g(0.5), g(argmax(0.0, 0.5)))
+    } else {
+        (g(argmax(0.5, 1.0)), g(0.5))
     }
-    moved
 }
 
 /// Gives connected features (8-connected) smaller than `min_px` to the label that borders
@@ -1001,4 +1150,109 @@ pub fn interior_means(f: &Features, seg: &Segmentation, k: usize) -> Vec<Option<
             })
         })
         .collect()
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn votes_leave_out_the_edge_and_the_skipped_label() {
+        let labels: Vec<u16> = (1..=9).collect();
+        let centre = Votes::of(&labels, (3, 3), (1, 1), u16::MAX);
+        let got: Vec<u16> = centre.all().iter().map(|v| v.0).collect();
+        assert_eq!(got, vec![4, 6, 2, 8, 1, 3, 7, 9], "NEIGHBOURS order");
+        let corner = Votes::of(&labels, (3, 3), (0, 0), 5);
+        assert_eq!(corner.all(), &[(2, 1.0), (4, 1.0)]);
+        let same = [7u16, 7, 3, 7, 0, 3, 3, 7, 7];
+        let v = Votes::of(&same, (3, 3), (1, 1), u16::MAX);
+        let (distinct, n) = v.distinct();
+        assert_eq!(&distinct[..n], &[7, 3]);
+        let diag = std::f64::consts::FRAC_1_SQRT_2;
+        // 7 left, top, bottom and at two corners; 3 right and at two corners.
+        assert!((v.weight(7) - (3.0 + 2.0 * diag)).abs() < 1e-12);
+        assert!((v.weight(3) - (1.0 + 2.0 * diag)).abs() < 1e-12);
+        assert_eq!(v.weight(9), 0.0);
+    }
+
+    #[test]
+    fn mark_neighbourhood_stops_at_the_edges() {
+        let mut marks = vec![false; 12];
+        mark_neighbourhood(&mut marks, 0, (4, 3));
+        let on: Vec<usize> = (0..12).filter(|&i| marks[i]).collect();
+        assert_eq!(on, vec![0, 1, 4, 5]);
+        let mut marks = vec![false; 12];
+        mark_neighbourhood(&mut marks, 6, (4, 3));
+        assert_eq!(marks.iter().filter(|&&m| m).count(), 9);
+    }
+
+    /// A majority filter as the choice: a one-pixel island and a notch go in the first
+    /// sweep, the second changes nothing and ends the run, and the result is the same on
+    /// one thread and on two.
+    #[test]
+    fn colour_class_sweeps_stop_when_nothing_changes_and_ignore_threads() {
+        let (w, h) = (7, 6);
+        let mut start = vec![1u16; w * h];
+        start[2 * w + 3] = 2;
+        start[w - 1] = 2;
+        let run = |threads: usize| {
+            let pool = rayon::ThreadPoolBuilder::new()
+                .num_threads(threads)
+                .build()
+                .unwrap();
+            let mut labels = start.clone();
+            let changes = pool.install(|| {
+                sweep_colour_classes(&mut labels, (w, h), 10, |i, x, y, current| {
+                    let v = Votes::of(current, (w, h), (x, y), u16::MAX);
+                    let (d, n) = v.distinct();
+                    let best = d[..n]
+                        .iter()
+                        .copied()
+                        .max_by(|a, b| v.weight(*a).total_cmp(&v.weight(*b)))?;
+                    (best != current[i]).then_some(best)
+                })
+            });
+            (labels, changes)
+        };
+        let (labels, changes) = run(1);
+        assert!(labels.iter().all(|&l| l == 1), "{labels:?}");
+        assert_eq!(changes, vec![2, 0]);
+        assert_eq!(run(2), (labels, changes));
+    }
+
+    /// The bisection of [`majority_scores`] and [`mix_score`] against a brute-force search
+    /// over t on a grid of 10⁻⁴.
+    #[test]
+    fn mixture_scores_match_a_grid_search() {
+        let (a, b) = ([60.0, 2.0, 10.0], [3.0, 45.0, 10.0]);
+        let g = |x: &[f64], t: f64| -> f64 {
+            (0..3)
+                .map(|e| {
+                    let m = (t * a[e] + (1.0 - t) * b[e]).max(1e-3);
+                    x[e] * m.ln() - m
+                })
+                .sum()
+        };
+        let best = |x: &[f64], lo: f64, hi: f64| -> f64 {
+            (0..=10_000)
+                .map(|s| g(x, lo + (hi - lo) * f64::from(s) / 1e4))
+                .fold(f64::NEG_INFINITY, f64::max)
+        };
+        for x in [[50.0, 10.0, 9.0], [20.0, 30.0, 12.0], [2.0, 47.0, 8.0]] {
+            let (la, lb) = majority_scores(&x, &a, &b);
+            assert!((la - best(&x, 0.5, 1.0)).abs() < 1e-3, "{x:?}: a side {la}");
+            assert!((lb - best(&x, 0.0, 0.5)).abs() < 1e-3, "{x:?}: b side {lb}");
+            let row: Vec<f32> = x.iter().map(|&v| v as f32).collect();
+            match mix_score(&row, &a, &b) {
+                Some(m) => assert!((m - best(&x, 0.5, 1.0)).abs() < 1e-3, "{x:?}: {m}"),
+                // Pure a is the best a-majority mixture.
+                None => assert!((g(&x, 1.0) - best(&x, 0.5, 1.0)).abs() < 1e-9),
+            }
+        }
+        // Mostly a: a in the majority explains it better; mostly b: the other way.
+        let (la, lb) = majority_scores(&[50.0, 10.0, 9.0], &a, &b);
+        assert!(la > lb);
+        let (la, lb) = majority_scores(&[2.0, 47.0, 8.0], &a, &b);
+        assert!(lb > la);
+    }
 }
