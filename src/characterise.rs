@@ -474,25 +474,13 @@ pub fn characterise(
     )
 }
 
-/// The composition stage given the mapped elements with their lines, the field's
-/// metadata, and the phases' summed counts for a clearance in pixels (each with whether
-/// it came from interior pixels): a field streamed in strips provides the sums itself.
-pub fn characterise_with(
-    table: &mut PhaseTable,
-    lines: &[(ElementInfo, Option<String>)],
-    md: &crate::stack::FieldMetadata,
-    sums_at: &dyn Fn(usize) -> Vec<(PhaseCounts, bool)>,
-    unmix: UnmixSource,
-    opts: &ValidCompositionOptions,
-) -> Result<(CompositionReport, Advice)> {
-    let lines = lines.to_vec();
-    let infos: Vec<ElementInfo> = lines.iter().map(|l| l.0).collect();
-    let mut notes = Vec::new();
-    let oxygen = match opts.given.oxygen {
+/// The oxygen rule of the options for the mapped elements `infos`.
+fn oxygen_rule(infos: &[ElementInfo], opts: &ValidCompositionOptions) -> Result<Oxygen> {
+    Ok(match opts.given.oxygen {
         OxygenMode::Measured => Oxygen::Measured,
         OxygenMode::Stoichiometry => {
             let mut v = Vec::new();
-            for e in &infos {
+            for e in infos {
                 match opts.valences.get(e.symbol) {
                     Some(x) => v.push(*x),
                     None if e.symbol == "O" => v.push(-2.0),
@@ -509,230 +497,248 @@ pub fn characterise_with(
             }
             Oxygen::Stoichiometry { valences: v }
         }
-    };
-    let quantified: Vec<bool> = infos.iter().map(|e| from_counts(e, &oxygen)).collect();
-    let calibrated_basis = opts.kfile.is_some() || !opts.calibrations.is_empty();
+    })
+}
 
-    // Sums over interior pixels; widen the clearance to half the X-ray range when known.
-    let run = |sums: &[PhaseCounts], eligible: &[bool], kf: &KFactors| -> Quantification {
-        let background = match opts.given.background {
+/// Quantifies summed counts and names the result, with the options' rules.
+struct Quantifier<'a> {
+    infos: Vec<ElementInfo>,
+    oxygen: Oxygen,
+    opts: &'a ValidCompositionOptions,
+}
+
+impl Quantifier<'_> {
+    /// Compositions of the phases' `sums` with factors `kf`; the continuum fitted on the
+    /// `eligible` phases (those whose sums come from interior or unmixed pixels).
+    fn run(&self, sums: &[PhaseCounts], eligible: &[bool], kf: &KFactors) -> Quantification {
+        let background = match self.opts.given.background {
             BackgroundMode::PoorestPhase => BackgroundRule::Fit {
                 eligible: eligible.to_vec(),
             },
             BackgroundMode::None => BackgroundRule::None,
         };
-        quantify(
-            &infos,
-            sums,
-            &Rules {
-                k: kf.clone(),
-                oxygen: oxygen.clone(),
-                background,
-            },
-        )
-    };
-    // A phase with too few counts is compared with no reference: its composition is
-    // too uncertain for a name to mean anything.
-    let match_all = |q: &Quantification, calibrated: bool, sums: &[PhaseCounts]| {
+        let rules = Rules {
+            k: kf.clone(),
+            oxygen: self.oxygen.clone(),
+            background,
+        };
+        quantify(&self.infos, sums, &rules)
+    }
+
+    /// The closest reference phase of each phase. A phase with too few counts is compared
+    /// with no reference: its composition is too uncertain for a name to mean anything.
+    fn matches(
+        &self,
+        q: &Quantification,
+        calibrated: bool,
+        sums: &[PhaseCounts],
+    ) -> Vec<Option<Match>> {
         q.phases
             .iter()
             .zip(sums)
             .map(|(p, s)| {
                 (s.sums.iter().sum::<f64>() >= MIN_MATCH_COUNTS)
-                    .then(|| best_match(&opts.library, &q.elements, &p.wt, &p.wt_sd, calibrated))
+                    .then(|| {
+                        best_match(&self.opts.library, &q.elements, &p.wt, &p.wt_sd, calibrated)
+                    })
                     .flatten()
             })
-            .collect::<Vec<Option<Match>>>()
-    };
-    let mut clearance = DEFAULT_CLEARANCE_PX;
-    let mut xray_range_um = None;
-    let mut sums = sums_at(clearance);
-    let plain: Vec<PhaseCounts> = sums.iter().map(|s| s.0.clone()).collect();
-    let eligible: Vec<bool> = sums.iter().map(|s| s.1).collect();
-    let first = run(&plain, &eligible, &KFactors::unit(infos.len()));
-    let first_matches = match_all(&first, false, &plain);
-    if let (Some(_), Some(px)) = (md.beam_kv, md.pixel_size_um) {
-        let inputs: Vec<_> = table
-            .phases
-            .iter()
-            .zip(&first.phases)
-            .zip(&first_matches)
-            .map(|((p, c), m)| {
-                let rd = m
-                    .as_ref()
-                    .and_then(|m| m.density.map(|d| (d, m.closest.clone())));
-                advisor::phase_input(p.id, &p.name, &first.elements, &c.wt, rd)
-            })
-            .collect();
-        let a = advisor::advise(&lines, md.beam_kv, md.pixel_size_um, &inputs);
-        xray_range_um = a.largest_xray_range_um();
-        if let Some(r) = xray_range_um {
-            let want = (r / (2.0 * px)).ceil() as usize;
-            clearance = want.clamp(DEFAULT_CLEARANCE_PX, MAX_CLEARANCE_PX);
-            if clearance != DEFAULT_CLEARANCE_PX {
-                sums = sums_at(clearance);
-            }
-        }
+            .collect()
     }
-    let mut plain: Vec<PhaseCounts> = sums.iter().map(|s| s.0.clone()).collect();
-    let eligible: Vec<bool> = sums.iter().map(|s| s.1).collect();
-    let symbols: Vec<&str> = infos.iter().map(|e| e.symbol).collect();
-    let unmixing = unmix_thin(
-        &mut plain,
-        &eligible,
-        unmix,
-        &Around {
-            table,
-            pixel_um: md.pixel_size_um,
-            xray_range_um,
-            clearance,
-            symbols: &symbols,
-        },
-    );
-    notes.extend(unmixing.1.iter().cloned());
-    let (unmixing, unmixed) = (unmixing.0, unmixing.2);
-    // Unmixed phases can show the continuum too.
-    let eligible: Vec<bool> = eligible
-        .iter()
-        .zip(&unmixed)
-        .map(|(a, b)| *a || *b)
-        .collect();
-    // Net counts with unit factors on the final sums: what a calibration is fitted to.
-    let unit = run(&plain, &eligible, &KFactors::unit(infos.len()));
+}
 
-    // k-factors.
-    let mut calibration_used = Vec::new();
-    let mut forced_names: BTreeMap<usize, String> = BTreeMap::new();
-    let (kf, basis, method) = if let Some(f) = &opts.kfile {
-        let mut k = vec![f64::NAN; infos.len()];
-        for (i, e) in infos.iter().enumerate() {
-            if !quantified[i] {
-                continue;
-            }
-            k[i] = *f.k.get(e.symbol).ok_or_else(|| {
-                Error::options_in(
-                    &f.path,
-                    format!("has no k-factor for {}, which is mapped", e.symbol),
-                    format!("add {} = factor under [k]", e.symbol),
-                )
-            })?;
-        }
-        for e in f.k.keys() {
-            if !infos.iter().any(|i| i.symbol == e) {
-                notes.push(format!(
-                    "the k-factor file lists {e}, which is not mapped; ignored"
-                ));
-            }
-        }
-        if let (Some(a), Some(b)) = (f.beam_kv, md.beam_kv) {
-            if (a - b).abs() > 0.5 {
-                notes.push(format!(
-                    "the k-factors were measured at {a} kV but the maps at {b} kV: k-factors change with the beam energy; measure them at the mapping conditions"
-                ));
-            }
-        }
-        let reference = f
-            .reference
-            .as_deref()
-            .and_then(|r| infos.iter().position(|e| e.symbol == r))
-            .filter(|&i| quantified[i])
-            .unwrap_or_else(|| quantified.iter().position(|&q| q).unwrap_or(0));
-        let scale = k[reference];
-        k.iter_mut().for_each(|x| *x /= scale);
-        (
-            KFactors {
-                k,
-                rel_sd: vec![0.0; infos.len()],
-                reference,
-            },
-            "k-factors",
-            format!("k-factors from {}", f.path.display()),
-        )
-    } else if !opts.calibrations.is_empty() {
-        let mut standards = Vec::new();
-        for c in &opts.calibrations {
-            let idx = resolve(&c.selector, table, &first_matches)
-                .map_err(|(p, fix)| Error::options(format!("--calibrate {}: {p}", c.spec), fix))?;
-            if forced_names.contains_key(&idx) {
-                return Err(Error::options(
-                    format!(
-                        "--calibrate {}: phase {} is already a calibration phase",
-                        c.spec,
-                        idx + 1
-                    ),
-                    "name each calibration phase once",
-                ));
-            }
-            let net = &unit.phases[idx];
-            // Net rates and variances with the current background, unit factors.
-            standards.push(Standard {
-                net: net.net_rate.clone(),
-                var: net.net_var.clone(),
-                known: infos
-                    .iter()
-                    .map(|e| c.composition.mass_fraction_of(e.symbol))
-                    .collect(),
-            });
-            forced_names.insert(idx, c.name.clone());
-            calibration_used.push(CalibrationUsed {
-                id: table.phases[idx].id,
-                name: c.name.clone(),
-                spec: c.spec.clone(),
-            });
-        }
-        let kf = calibrate(&standards, &quantified).map_err(|e| match e {
-            CalibrationError::NotReached(els) => {
-                let names: Vec<&str> = els.iter().map(|&i| infos[i].symbol).collect();
-                Error::options(
-                    format!(
-                        "the calibration phases give no k-factor for {} (no calibration phase contains it, or none shares an element with the others)",
-                        names.join(", ")
-                    ),
-                    "add a calibration phase that contains it (repeat --calibrate ID=FORMULA), or give every factor in a --kfactors file",
-                )
-            }
-            CalibrationError::NoCounts(s, e) => Error::options(
-                format!(
-                    "--calibrate {}: the phase should contain {} but shows no net counts of it",
-                    opts.calibrations[s].spec, infos[e].symbol
-                ),
-                "check the phase id and formula, and that the line of this element is excited",
-            ),
-        })?;
-        let desc: Vec<String> = calibration_used
-            .iter()
-            .map(|c| format!("phase {} = {}", c.id, c.name))
-            .collect();
-        (
-            kf,
-            "calibrated",
-            format!("k-factors calibrated on {}", desc.join(" and ")),
-        )
-    } else {
-        (
-            KFactors::unit(infos.len()),
-            "uncalibrated",
-            "uncalibrated: every k-factor 1, so the numbers are shares of the net counts, not concentrations".to_string(),
-        )
+/// The clearance (pixels) that keeps the sums half the largest X-ray range away from other
+/// phases, within [`DEFAULT_CLEARANCE_PX`]..=[`MAX_CLEARANCE_PX`], and that range; the
+/// default and `None` without the beam energy and the pixel size.
+fn clearance_for(
+    table: &PhaseTable,
+    first: &Quantification,
+    first_matches: &[Option<Match>],
+    lines: &[(ElementInfo, Option<String>)],
+    md: &crate::stack::FieldMetadata,
+) -> (usize, Option<f64>) {
+    let (Some(_), Some(px)) = (md.beam_kv, md.pixel_size_um) else {
+        return (DEFAULT_CLEARANCE_PX, None);
     };
-    // Recompute with the (possibly widened) sums and the factors.
-    let q = run(&plain, &eligible, &kf);
-    let matches = match_all(&q, calibrated_basis, &plain);
-    for (p, s) in table.phases.iter().zip(&plain) {
-        let total: f64 = s.sums.iter().sum();
-        if total < MIN_MATCH_COUNTS {
+    // The closest reference's density, even when it is no match: a first estimate.
+    let inputs = advisor_inputs(table, first, first_matches, |m| {
+        m.density.map(|d| (d, m.closest.clone()))
+    });
+    let a = advisor::advise(lines, md.beam_kv, md.pixel_size_um, &inputs);
+    let range = a.largest_xray_range_um();
+    let clearance = range.map_or(DEFAULT_CLEARANCE_PX, |r| {
+        ((r / (2.0 * px)).ceil() as usize).clamp(DEFAULT_CLEARANCE_PX, MAX_CLEARANCE_PX)
+    });
+    (clearance, range)
+}
+
+/// Where the k-factors came from, for the report.
+struct KSource {
+    kf: KFactors,
+    /// `uncalibrated`, `k-factors` or `calibrated`.
+    basis: &'static str,
+    method: String,
+    calibration_used: Vec<CalibrationUsed>,
+    /// Calibration phases (table index) and the names they were given.
+    forced_names: BTreeMap<usize, String>,
+}
+
+/// The k-factors of a k-factor file for the `quantified` elements of `infos`, scaled to
+/// its reference element; notes on unmapped entries and a beam energy that differs.
+fn kfactors_from_file(
+    f: &KFactorFile,
+    infos: &[ElementInfo],
+    quantified: &[bool],
+    md: &crate::stack::FieldMetadata,
+    notes: &mut Vec<String>,
+) -> Result<KSource> {
+    let mut k = vec![f64::NAN; infos.len()];
+    for (i, e) in infos.iter().enumerate() {
+        if !quantified[i] {
+            continue;
+        }
+        k[i] = *f.k.get(e.symbol).ok_or_else(|| {
+            Error::options_in(
+                &f.path,
+                format!("has no k-factor for {}, which is mapped", e.symbol),
+                format!("add {} = factor under [k]", e.symbol),
+            )
+        })?;
+    }
+    for e in f.k.keys() {
+        if !infos.iter().any(|i| i.symbol == e) {
             notes.push(format!(
-                "phase {} ({}): {total:.0} counts in all, too few to compare with the reference phases (at least {MIN_MATCH_COUNTS:.0}); it is named by its major elements",
-                p.id, p.name
+                "the k-factor file lists {e}, which is not mapped; ignored"
             ));
         }
     }
-    let background = &q.background;
+    if let (Some(a), Some(b)) = (f.beam_kv, md.beam_kv) {
+        if (a - b).abs() > 0.5 {
+            notes.push(format!(
+                "the k-factors were measured at {a} kV but the maps at {b} kV: k-factors change with the beam energy; measure them at the mapping conditions"
+            ));
+        }
+    }
+    let reference = f
+        .reference
+        .as_deref()
+        .and_then(|r| infos.iter().position(|e| e.symbol == r))
+        .filter(|&i| quantified[i])
+        .unwrap_or_else(|| quantified.iter().position(|&q| q).unwrap_or(0));
+    let scale = k[reference];
+    k.iter_mut().for_each(|x| *x /= scale);
+    Ok(KSource {
+        kf: KFactors {
+            k,
+            rel_sd: vec![0.0; infos.len()],
+            reference,
+        },
+        basis: "k-factors",
+        method: format!("k-factors from {}", f.path.display()),
+        calibration_used: Vec::new(),
+        forced_names: BTreeMap::new(),
+    })
+}
 
-    // Names: calibration phases keep the name they were given; others take their match,
-    // unless their composition is mixed with their neighbours'.
+/// The k-factors calibrated on the phases the options name (`--calibrate`), from the net
+/// counts `unit` quantified with unit factors.
+fn kfactors_calibrated(
+    opts: &ValidCompositionOptions,
+    table: &PhaseTable,
+    first_matches: &[Option<Match>],
+    unit: &Quantification,
+    infos: &[ElementInfo],
+    quantified: &[bool],
+) -> Result<KSource> {
+    let mut calibration_used = Vec::new();
+    let mut forced_names: BTreeMap<usize, String> = BTreeMap::new();
+    let mut standards = Vec::new();
+    for c in &opts.calibrations {
+        let idx = resolve(&c.selector, table, first_matches)
+            .map_err(|(p, fix)| Error::options(format!("--calibrate {}: {p}", c.spec), fix))?;
+        if forced_names.contains_key(&idx) {
+            return Err(Error::options(
+                format!(
+                    "--calibrate {}: phase {} is already a calibration phase",
+                    c.spec,
+                    idx + 1
+                ),
+                "name each calibration phase once",
+            ));
+        }
+        let net = &unit.phases[idx];
+        // Net rates and variances with the current background, unit factors.
+        standards.push(Standard {
+            net: net.net_rate.clone(),
+            var: net.net_var.clone(),
+            known: infos
+                .iter()
+                .map(|e| c.composition.mass_fraction_of(e.symbol))
+                .collect(),
+        });
+        forced_names.insert(idx, c.name.clone());
+        calibration_used.push(CalibrationUsed {
+            id: table.phases[idx].id,
+            name: c.name.clone(),
+            spec: c.spec.clone(),
+        });
+    }
+    let kf = calibrate(&standards, quantified).map_err(|e| match e {
+        CalibrationError::NotReached(els) => {
+            let names: Vec<&str> = els.iter().map(|&i| infos[i].symbol).collect();
+            Error::options(
+                format!(
+                    "the calibration phases give no k-factor for {} (no calibration phase contains it, or none shares an element with the others)",
+                    names.join(", ")
+                ),
+                "add a calibration phase that contains it (repeat --calibrate ID=FORMULA), or give every factor in a --kfactors file",
+            )
+        }
+        CalibrationError::NoCounts(s, e) => Error::options(
+            format!(
+                "--calibrate {}: the phase should contain {} but shows no net counts of it",
+                opts.calibrations[s].spec, infos[e].symbol
+            ),
+            "check the phase id and formula, and that the line of this element is excited",
+        ),
+    })?;
+    let desc: Vec<String> = calibration_used
+        .iter()
+        .map(|c| format!("phase {} = {}", c.id, c.name))
+        .collect();
+    Ok(KSource {
+        kf,
+        basis: "calibrated",
+        method: format!("k-factors calibrated on {}", desc.join(" and ")),
+        calibration_used,
+        forced_names,
+    })
+}
+
+/// Unit k-factors: the numbers are shares of the net counts.
+fn kfactors_unit(n: usize) -> KSource {
+    KSource {
+        kf: KFactors::unit(n),
+        basis: "uncalibrated",
+        method: "uncalibrated: every k-factor 1, so the numbers are shares of the net counts, not concentrations".to_string(),
+        calibration_used: Vec::new(),
+        forced_names: BTreeMap::new(),
+    }
+}
+
+/// The name of each phase: a calibration phase keeps the name it was given; others take
+/// their match, unless their composition is mixed with their neighbours'; without a
+/// reference name, the major elements of the final composition (continuum out, unmixed),
+/// not of the raw counts the phase was first named by.
+fn phase_names(
+    table: &PhaseTable,
+    forced_names: &BTreeMap<usize, String>,
+    matches: &[Option<Match>],
+    clean: &[bool],
+    q: &Quantification,
+) -> Vec<String> {
     let out_symbols: Vec<String> = q.elements.iter().map(|e| e.symbol.to_string()).collect();
-    let names: Vec<String> = table
+    let names = table
         .phases
         .iter()
         .enumerate()
@@ -743,13 +749,11 @@ pub fn characterise_with(
                 .or_else(|| {
                     matches[i]
                         .as_ref()
-                        .filter(|_| sums[i].1 || unmixed[i])
+                        .filter(|_| clean[i])
                         .and_then(|m| m.name.clone())
                 })
                 .unwrap_or_else(|| {
-                    // No reference name: the major elements of the final composition
-                    // (continuum out, unmixed), not of the raw counts it was first named by.
-                    if sums[i].1 || unmixed[i] {
+                    if clean[i] {
                         crate::phases::name_of(&out_symbols, &q.phases[i].wt)
                     } else {
                         p.name.clone()
@@ -757,25 +761,19 @@ pub fn characterise_with(
                 })
         })
         .collect();
-    let names = unique_names(names);
-    for (i, p) in table.phases.iter_mut().enumerate() {
-        p.name = names[i].clone();
-        p.composition = q.phases[i].clone();
-        p.composition_pixels = sums[i].0.pixels;
-        p.composition_from_interior = sums[i].1;
-        p.composition_unmixed = unmixed[i];
-        p.reference = matches[i].clone();
-        if !sums[i].1 && !unmixed[i] {
-            notes.push(format!(
-                "phase {} ({}): no pixel lies {clearance} px clear of other phases, so its composition comes from all its pixels and is mixed with its neighbours",
-                p.id, p.name
-            ));
-        }
-    }
-    table.composition_elements = q.elements.iter().map(|e| e.symbol.to_string()).collect();
-    table.composition_method = method.clone();
+    unique_names(names)
+}
 
-    let background_notes: BTreeMap<String, String> = infos
+/// How the continuum was handled for each mapped element, in words; a note for each
+/// element no phase is free of.
+fn background_notes(
+    infos: &[ElementInfo],
+    background: &crate::chem::quant::Background,
+    table: &PhaseTable,
+    mode: BackgroundMode,
+    notes: &mut Vec<String>,
+) -> BTreeMap<String, String> {
+    infos
         .iter()
         .enumerate()
         .map(|(i, e)| {
@@ -783,7 +781,7 @@ pub fn characterise_with(
                 .iter()
                 .map(|&b| format!("{} ({})", table.phases[b].id, table.phases[b].name))
                 .collect();
-            let s = match (opts.given.background, background.per_z[i]) {
+            let s = match (mode, background.per_z[i]) {
                 (BackgroundMode::None, _) => "none subtracted (--background none)".to_string(),
                 (_, Some(c)) => format!(
                     "continuum {c:.4} counts per pixel per unit mean Z (Kramers: proportional to Z), fitted on phase{} {} judged free of {}; elements below Currie's critical level are reported as not detected",
@@ -812,11 +810,12 @@ pub fn characterise_with(
             };
             (e.symbol.to_string(), s)
         })
-        .collect();
-    if !infos.iter().any(|e| e.symbol == "O") && opts.given.oxygen == OxygenMode::Measured {
-        notes.push("oxygen is not mapped: compositions cover the mapped elements only; for oxides and silicates use --oxygen stoichiometry".into());
-    }
-    let oxygen_text = match &oxygen {
+        .collect()
+}
+
+/// The oxygen rule in words.
+fn oxygen_text(oxygen: &Oxygen, infos: &[ElementInfo]) -> String {
+    match oxygen {
         Oxygen::Measured => "from its map, like every other element (when mapped)".to_string(),
         Oxygen::Stoichiometry { valences } => {
             let v: Vec<String> = infos
@@ -827,12 +826,159 @@ pub fn characterise_with(
                 .collect();
             format!("by stoichiometry from the valences {}", v.join(", "))
         }
+    }
+}
+
+/// The advisor's input for each phase of `table` with compositions `q`, the density (and
+/// where it came from) of each phase's match given by `density`.
+fn advisor_inputs(
+    table: &PhaseTable,
+    q: &Quantification,
+    matches: &[Option<Match>],
+    density: impl Fn(&Match) -> Option<(f64, String)>,
+) -> Vec<advisor::PhaseInput> {
+    table
+        .phases
+        .iter()
+        .zip(&q.phases)
+        .zip(matches)
+        .map(|((p, c), m)| {
+            let rd = m.as_ref().and_then(&density);
+            advisor::phase_input(p.id, &p.name, &q.elements, &c.wt, rd)
+        })
+        .collect()
+}
+
+/// The beam-physics advice for the final compositions, with each phase's density from its
+/// reference phase when it has one.
+fn advice_for(
+    table: &PhaseTable,
+    q: &Quantification,
+    matches: &[Option<Match>],
+    lines: &[(ElementInfo, Option<String>)],
+    md: &crate::stack::FieldMetadata,
+) -> Advice {
+    let inputs = advisor_inputs(table, q, matches, |m| {
+        m.reference.as_ref()?;
+        m.density
+            .map(|d| (d, format!("reference phase {}", m.closest)))
+    });
+    advisor::advise(lines, md.beam_kv, md.pixel_size_um, &inputs)
+}
+
+/// The composition stage given the mapped elements with their lines, the field's
+/// metadata, and the phases' summed counts for a clearance in pixels (each with whether
+/// it came from interior pixels): a field streamed in strips provides the sums itself.
+pub fn characterise_with(
+    table: &mut PhaseTable,
+    lines: &[(ElementInfo, Option<String>)],
+    md: &crate::stack::FieldMetadata,
+    sums_at: &dyn Fn(usize) -> Vec<(PhaseCounts, bool)>,
+    unmix: UnmixSource,
+    opts: &ValidCompositionOptions,
+) -> Result<(CompositionReport, Advice)> {
+    let infos: Vec<ElementInfo> = lines.iter().map(|l| l.0).collect();
+    let mut notes = Vec::new();
+    let oxygen = oxygen_rule(&infos, opts)?;
+    let quantified: Vec<bool> = infos.iter().map(|e| from_counts(e, &oxygen)).collect();
+    let calibrated_basis = opts.kfile.is_some() || !opts.calibrations.is_empty();
+    let qf = Quantifier {
+        infos: infos.clone(),
+        oxygen,
+        opts,
     };
-    let reference_element =
-        (basis != "uncalibrated").then(|| infos[kf.reference].symbol.to_string());
+
+    // Sums over interior pixels; widen the clearance to half the X-ray range when known.
+    let split = |sums: &[(PhaseCounts, bool)]| -> (Vec<PhaseCounts>, Vec<bool>) {
+        (
+            sums.iter().map(|s| s.0.clone()).collect(),
+            sums.iter().map(|s| s.1).collect(),
+        )
+    };
+    let mut sums = sums_at(DEFAULT_CLEARANCE_PX);
+    let (plain, eligible) = split(&sums);
+    let first = qf.run(&plain, &eligible, &KFactors::unit(infos.len()));
+    let first_matches = qf.matches(&first, false, &plain);
+    let (clearance, xray_range_um) = clearance_for(table, &first, &first_matches, lines, md);
+    if clearance != DEFAULT_CLEARANCE_PX {
+        sums = sums_at(clearance);
+    }
+    let (mut plain, eligible) = split(&sums);
+    let symbols: Vec<&str> = infos.iter().map(|e| e.symbol).collect();
+    let (unmixing, unmix_notes, unmixed) = unmix_thin(
+        &mut plain,
+        &eligible,
+        unmix,
+        &Around {
+            table,
+            pixel_um: md.pixel_size_um,
+            xray_range_um,
+            clearance,
+            symbols: &symbols,
+        },
+    );
+    notes.extend(unmix_notes);
+    // Unmixed phases can show the continuum too.
+    let clean: Vec<bool> = eligible
+        .iter()
+        .zip(&unmixed)
+        .map(|(a, b)| *a || *b)
+        .collect();
+
+    let source = if let Some(f) = &opts.kfile {
+        kfactors_from_file(f, &infos, &quantified, md, &mut notes)?
+    } else if !opts.calibrations.is_empty() {
+        // Net counts with unit factors on the final sums: what a calibration is fitted to.
+        let unit = qf.run(&plain, &clean, &KFactors::unit(infos.len()));
+        kfactors_calibrated(opts, table, &first_matches, &unit, &infos, &quantified)?
+    } else {
+        kfactors_unit(infos.len())
+    };
+    // Recompute with the (possibly widened) sums and the factors.
+    let q = qf.run(&plain, &clean, &source.kf);
+    let matches = qf.matches(&q, calibrated_basis, &plain);
+    for (p, s) in table.phases.iter().zip(&plain) {
+        let total: f64 = s.sums.iter().sum();
+        if total < MIN_MATCH_COUNTS {
+            notes.push(format!(
+                "phase {} ({}): {total:.0} counts in all, too few to compare with the reference phases (at least {MIN_MATCH_COUNTS:.0}); it is named by its major elements",
+                p.id, p.name
+            ));
+        }
+    }
+
+    let names = phase_names(table, &source.forced_names, &matches, &clean, &q);
+    for (i, p) in table.phases.iter_mut().enumerate() {
+        p.name = names[i].clone();
+        p.composition = q.phases[i].clone();
+        p.composition_pixels = sums[i].0.pixels;
+        p.composition_from_interior = sums[i].1;
+        p.composition_unmixed = unmixed[i];
+        p.reference = matches[i].clone();
+        if !clean[i] {
+            notes.push(format!(
+                "phase {} ({}): no pixel lies {clearance} px clear of other phases, so its composition comes from all its pixels and is mixed with its neighbours",
+                p.id, p.name
+            ));
+        }
+    }
+    table.composition_elements = q.elements.iter().map(|e| e.symbol.to_string()).collect();
+    table.composition_method = source.method.clone();
+
+    let background = background_notes(
+        &infos,
+        &q.background,
+        table,
+        opts.given.background,
+        &mut notes,
+    );
+    if !infos.iter().any(|e| e.symbol == "O") && opts.given.oxygen == OxygenMode::Measured {
+        notes.push("oxygen is not mapped: compositions cover the mapped elements only; for oxides and silicates use --oxygen stoichiometry".into());
+    }
+    let kf = &source.kf;
     let report = CompositionReport {
-        basis: basis.into(),
-        method,
+        basis: source.basis.into(),
+        method: source.method,
         elements: table.composition_elements.clone(),
         k_factors: infos
             .iter()
@@ -847,31 +993,18 @@ pub fn characterise_with(
             .filter(|((_, k), _)| k.is_finite())
             .map(|((e, _), s)| (e.symbol.to_string(), *s))
             .collect(),
-        reference_element,
-        calibration: calibration_used,
-        background: background_notes,
-        oxygen: oxygen_text,
+        reference_element: (source.basis != "uncalibrated")
+            .then(|| infos[kf.reference].symbol.to_string()),
+        calibration: source.calibration_used,
+        background,
+        oxygen: oxygen_text(&qf.oxygen, &infos),
         clearance_px: clearance,
         unmixing,
         uncertainty: "± is one standard deviation from counting statistics (Poisson) of the summed counts, the background and the calibration; it leaves out the error of the ratio method itself".into(),
         notes,
         options: opts.given.clone(),
     };
-
-    let inputs: Vec<_> = table
-        .phases
-        .iter()
-        .zip(&q.phases)
-        .zip(&matches)
-        .map(|((p, c), m)| {
-            let rd = m.as_ref().filter(|m| m.reference.is_some()).and_then(|m| {
-                m.density
-                    .map(|d| (d, format!("reference phase {}", m.closest)))
-            });
-            advisor::phase_input(p.id, &p.name, &q.elements, &c.wt, rd)
-        })
-        .collect();
-    let advice = advisor::advise(&lines, md.beam_kv, md.pixel_size_um, &inputs);
+    let advice = advice_for(table, &q, &matches, lines, md);
     Ok((report, advice))
 }
 
@@ -1060,5 +1193,85 @@ fn resolve(
                 )),
             }
         }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn infos(symbols: &[&str]) -> Vec<ElementInfo> {
+        symbols.iter().map(|s| element(s).unwrap()).collect()
+    }
+
+    #[test]
+    fn oxygen_by_stoichiometry_takes_the_valences_and_refuses_a_missing_one() {
+        let opts = CompositionOptions {
+            oxygen: OxygenMode::Stoichiometry,
+            valences: vec!["Fe=3".into()],
+            ..Default::default()
+        }
+        .check()
+        .unwrap();
+        let rule = oxygen_rule(&infos(&["Si", "Fe", "O"]), &opts).unwrap();
+        assert_eq!(
+            rule,
+            Oxygen::Stoichiometry {
+                valences: vec![4.0, 3.0, -2.0]
+            }
+        );
+        assert_eq!(
+            oxygen_text(&rule, &infos(&["Si", "Fe", "O"])),
+            "by stoichiometry from the valences Si +4, Fe +3"
+        );
+        // Gold has no default valence.
+        let err = oxygen_rule(&infos(&["Au", "O"]), &opts).unwrap_err();
+        assert!(err.to_string().contains("valence for Au"), "{err}");
+        let measured = CompositionOptions::default().check().unwrap();
+        assert_eq!(
+            oxygen_rule(&infos(&["Au"]), &measured).unwrap(),
+            Oxygen::Measured
+        );
+    }
+
+    #[test]
+    fn a_kfactor_file_is_scaled_to_its_reference_and_checked() {
+        let file = KFactorFile {
+            path: PathBuf::from("k.toml"),
+            reference: Some("Fe".into()),
+            beam_kv: Some(20.0),
+            k: [("Fe", 2.0), ("Si", 3.0), ("Cu", 1.0)]
+                .iter()
+                .map(|(e, k)| (e.to_string(), *k))
+                .collect(),
+        };
+        let md = crate::stack::FieldMetadata {
+            beam_kv: Some(15.0),
+            ..Default::default()
+        };
+        let mut notes = Vec::new();
+        let els = infos(&["Si", "Fe", "O"]);
+        // Oxygen by stoichiometry: not quantified from counts, so it needs no factor.
+        let s = kfactors_from_file(&file, &els, &[true, true, false], &md, &mut notes).unwrap();
+        assert_eq!(s.kf.reference, 1);
+        assert_eq!(s.kf.k[..2], [1.5, 1.0]);
+        assert!(s.kf.k[2].is_nan());
+        assert_eq!(s.basis, "k-factors");
+        assert!(notes
+            .iter()
+            .any(|n| n.contains("lists Cu, which is not mapped")));
+        assert!(notes
+            .iter()
+            .any(|n| n.contains("measured at 20 kV but the maps at 15 kV")));
+        let err = kfactors_from_file(&file, &els, &[true, true, true], &md, &mut notes)
+            .err()
+            .unwrap();
+        assert!(err.to_string().contains("no k-factor for O"), "{err}");
+    }
+
+    #[test]
+    fn repeated_names_are_numbered() {
+        let names = unique_names(vec!["a".into(), "b".into(), "a".into(), "a".into()]);
+        assert_eq!(names, vec!["a", "b", "a (2)", "a (3)"]);
     }
 }
