@@ -798,55 +798,20 @@ fn fit(inputs: &[PathBuf], output: &std::path::Path, args: &MapArgs) -> Result<u
             "fit learns the phases from the element maps; check the BSE contrast with map or apply",
         ));
     }
-    if output.is_dir() {
-        return Err(Error::output(
-            output,
-            "is a folder",
-            "give the model a file name, e.g. -o model.json",
-        ));
-    }
-    if output.exists() && !args.force {
-        return Err(Error::output(
-            output,
-            "already exists",
-            "choose another file name, or add --force to replace it",
-        ));
-    }
-    let mut reads: Vec<crate::guard::Input> = inputs
-        .iter()
-        .map(|p| crate::guard::Input {
-            what: "field",
-            path: p,
-        })
-        .collect();
-    reads.extend(args.config.iter().map(|p| crate::guard::Input {
-        what: "configuration file",
-        path: p,
-    }));
-    reads.extend(
-        composition
-            .input_files()
-            .map(|(what, path)| crate::guard::Input { what, path }),
-    );
-    crate::guard::check_file_output(output, &reads)?;
-    let limits = args.limits.checked()?;
-    let mut fields = Vec::new();
-    for input in inputs {
-        let mut f = load_field(input, &limits)?;
-        f.stack.override_metadata(&metadata);
-        fields.push(f);
-    }
-    let named: Vec<(String, &crate::stack::MapStack)> = fields
-        .iter()
-        .map(|f| (f.input.display().to_string(), &f.stack))
-        .collect();
-    let (training, windows) = crate::fields::training_stack(
-        &named,
-        valid.options().prepare.bin,
-        valid.options().cluster.seed,
-    )?;
+    let job = crate::run::FitJob {
+        map: &valid,
+        composition: &composition,
+        metadata,
+        max_pixels: args.limits.checked()?.max_pixels,
+        force: args.force,
+        also_reads: args
+            .config
+            .iter()
+            .map(|p| ("configuration file", p.clone()))
+            .collect(),
+    };
     let spinner = spinner(args.quiet);
-    let result = crate::pipeline::map_stack_with_progress(training, &valid, &mut |stage| {
+    let fitted = crate::run::fit_model(inputs, output, &job, &mut |stage| {
         if let Some(s) = &spinner {
             s.set_message(stage.to_string());
         }
@@ -854,62 +819,12 @@ fn fit(inputs: &[PathBuf], output: &std::path::Path, args: &MapArgs) -> Result<u
     if let Some(s) = spinner {
         s.finish_and_clear();
     }
-    let mut result = result?;
-    crate::pipeline::characterise(&mut result, &composition)?;
-    let live: Vec<Option<f64>> = fields
-        .iter()
-        .map(|f| f.stack.metadata().live_time_s)
-        .collect();
-    let live_time_s = live[0].filter(|a| live.iter().all(|b| *b == Some(*a)));
-    let training = fields
-        .iter()
-        .zip(&windows)
-        .map(|(f, w)| {
-            let inputs = f
-                .files
-                .iter()
-                .map(|p| {
-                    Ok(crate::report::InputFile {
-                        path: p.display().to_string(),
-                        sha256: crate::report::hash_file(p)?,
-                    })
-                })
-                .collect::<Result<Vec<_>>>()?;
-            Ok(crate::fields::TrainingField {
-                field: f.name.clone(),
-                window: *w,
-                inputs,
-            })
-        })
-        .collect::<Result<Vec<_>>>()?;
-    let model = PhaseModel {
-        schema: crate::fields::MODEL_SCHEMA.into(),
-        tool_version: env!("CARGO_PKG_VERSION").into(),
-        elements: result.table.elements.clone(),
-        options: *valid.options(),
-        clusters: result.clusters.clone(),
-        phases: result
-            .table
-            .phases
-            .iter()
-            .map(|p| crate::fields::ModelPhase {
-                id: p.id,
-                name: p.name.clone(),
-                model_index: p.model_index,
-                training_area_fraction: p.area_fraction,
-            })
-            .collect(),
-        live_time_s,
-        training,
-    };
-    let json = serde_json::to_string_pretty(&model)
-        .map_err(|e| Error::internal(format!("model encoding failed: {e}")))?;
-    crate::report::write_file_atomically(output, json.as_bytes())?;
+    let crate::run::Fitted { model, windows } = fitted?;
     if !args.quiet {
         println!(
             "fitted {} phases on {} fields ({} × {} pixel windows):",
             model.phases.len(),
-            fields.len(),
+            inputs.len(),
             windows[0][2],
             windows[0][3]
         );
@@ -993,27 +908,6 @@ fn apply(
             "give 1 to 256 fields at a time",
         ));
     }
-    if out.is_file() {
-        return Err(Error::output(
-            out,
-            "is a file, not a folder",
-            "give a folder for the outputs (-o DIR)",
-        ));
-    }
-    std::fs::create_dir_all(out).map_err(|e| {
-        Error::output(
-            out,
-            format!("cannot be created: {e}"),
-            "check that its parent folder exists and is writable",
-        )
-    })?;
-    let names = crate::run::output_names(inputs);
-    let all: Vec<(PathBuf, String)> = inputs.iter().cloned().zip(names).collect();
-    let mine = crate::fields::shard(&all, i, n);
-    // Fields done by an earlier (interrupted) run with this model are kept.
-    let (mine, kept): (Vec<_>, Vec<_>) = mine.into_iter().partition(|(input, name)| {
-        args.force || !crate::run::done_earlier(&out.join(name), input, &reference)
-    });
     let job = FieldJob {
         labelling: Labelling::Model {
             model: &model,
@@ -1030,52 +924,40 @@ fn apply(
         stream,
         also_reads: vec![("model file", model_path.to_path_buf())],
     };
-    // Before any work: no field's output may replace an input of the batch.
-    let fields: Vec<&std::path::Path> = all.iter().map(|(p, _)| p.as_path()).collect();
-    let targets: Vec<PathBuf> = mine.iter().map(|(_, name)| out.join(name)).collect();
-    job.check_outputs(&fields, &targets)?;
-    let bar = progress_bar(args.quiet, mine.len());
-    let outcomes = crate::run::run_batch(
-        &mine,
+    let bar = progress_bar(args.quiet);
+    let batch = crate::run::apply_batch(
+        inputs,
         out,
-        &job,
+        (i, n),
         jobs,
-        &|field, stage| {
-            if let Some(b) = &bar {
-                b.set_message(format!("{field}: {stage}"));
-            }
-        },
-        &|o| {
-            if let Some(b) = &bar {
-                b.set_message(o.field.clone());
-                b.inc(1);
-            }
+        &job,
+        &crate::run::BatchProgress {
+            start: &|fields| {
+                if let Some(b) = &bar {
+                    b.set_length(fields as u64);
+                }
+            },
+            stage: &|field, stage| {
+                if let Some(b) = &bar {
+                    b.set_message(format!("{field}: {stage}"));
+                }
+            },
+            done: &|o| {
+                if let Some(b) = &bar {
+                    b.set_message(o.field.clone());
+                    b.inc(1);
+                }
+            },
         },
     );
     if let Some(b) = bar {
         b.finish_and_clear();
     }
-    let summary_name = if n > 1 {
-        format!("apply-{i}-of-{n}.json")
-    } else {
-        "apply.json".into()
-    };
-    let summary = serde_json::json!({
-        "model": reference,
-        "shard": [i, n],
-        "fields": outcomes,
-        "kept": kept
-            .iter()
-            .map(|(input, name)| serde_json::json!({
-                "field": name,
-                "input": input.display().to_string(),
-                "output": out.join(name).display().to_string(),
-            }))
-            .collect::<Vec<_>>(),
-    });
-    let text = serde_json::to_string_pretty(&summary)
-        .map_err(|e| Error::internal(format!("summary encoding failed: {e}")))?;
-    crate::report::write_file_atomically(&out.join(&summary_name), text.as_bytes())?;
+    let crate::run::BatchResult {
+        outcomes,
+        kept,
+        summary,
+    } = batch?;
     let failed: Vec<&crate::run::FieldOutcome> =
         outcomes.iter().filter(|o| o.status != "ok").collect();
     if !args.quiet {
@@ -1107,19 +989,19 @@ fn apply(
             "{} of {} fields failed; the others are done (listed in {})",
             failed.len(),
             outcomes.len(),
-            out.join(summary_name).display()
+            summary.display()
         );
         Ok(crate::error::PARTIAL_FAILURE_EXIT)
     }
 }
 
 /// A progress bar over fields with an ETA, on a terminal only.
-fn progress_bar(quiet: bool, n: usize) -> Option<indicatif::ProgressBar> {
+fn progress_bar(quiet: bool) -> Option<indicatif::ProgressBar> {
     use std::io::IsTerminal;
     if quiet || !std::io::stderr().is_terminal() {
         return None;
     }
-    let b = indicatif::ProgressBar::new(n as u64);
+    let b = indicatif::ProgressBar::new(0);
     if let Ok(style) = indicatif::ProgressStyle::with_template(
         "{bar:30} {pos}/{len} fields, {elapsed} elapsed, ETA {eta}  {msg}",
     ) {
@@ -1128,92 +1010,9 @@ fn progress_bar(quiet: bool, n: usize) -> Option<indicatif::ProgressBar> {
     Some(b)
 }
 
-/// Every report.json below `root` (temporary and hidden folders skipped), sorted. A folder
-/// reached twice (through a symbolic link) is read once.
-fn find_reports(
-    root: &std::path::Path,
-    visited: &mut std::collections::BTreeSet<PathBuf>,
-    found: &mut Vec<PathBuf>,
-) -> Result<()> {
-    let real = std::fs::canonicalize(root).unwrap_or_else(|_| root.to_path_buf());
-    if !visited.insert(real) {
-        return Ok(());
-    }
-    let entries = std::fs::read_dir(root).map_err(|e| {
-        Error::input(
-            root,
-            format!("cannot be read: {e}"),
-            "give the output folders of `modalmap apply`",
-        )
-    })?;
-    let mut paths: Vec<PathBuf> = entries.flatten().map(|e| e.path()).collect();
-    paths.sort();
-    for p in paths {
-        let hidden = p
-            .file_name()
-            .is_some_and(|n| n.to_string_lossy().starts_with('.'));
-        if hidden {
-            continue;
-        }
-        if p.is_dir() {
-            find_reports(&p, visited, found)?;
-        } else if p.file_name().is_some_and(|n| n == "report.json") {
-            found.push(p);
-        }
-    }
-    Ok(())
-}
-
 /// `merge`: pool reports made with one model.
 fn merge(folders: &[PathBuf], out: &std::path::Path, force: bool, quiet: bool) -> Result<u8> {
-    let mut paths = Vec::new();
-    let mut visited = std::collections::BTreeSet::new();
-    for f in folders {
-        if f.is_file() && f.file_name().is_some_and(|n| n == "report.json") {
-            paths.push(f.clone());
-        } else {
-            find_reports(f, &mut visited, &mut paths)?;
-        }
-    }
-    let mut seen = std::collections::BTreeSet::new();
-    paths.retain(|p| seen.insert(std::fs::canonicalize(p).unwrap_or_else(|_| p.clone())));
-    let reads: Vec<crate::guard::Input> = folders
-        .iter()
-        .chain(&paths)
-        .map(|p| crate::guard::Input {
-            what: "report",
-            path: p,
-        })
-        .collect();
-    crate::guard::check_no_overlap(&[out.to_path_buf()], &reads)?;
-    let dir = crate::report::prepare_output(out, force)?;
-    let reports = paths
-        .iter()
-        .map(|p| {
-            let bytes = crate::guard::read_regular(p, "report", crate::guard::MAX_JSON_BYTES)?;
-            let r: crate::report::Report = serde_json::from_slice(&bytes).map_err(|e| {
-                Error::input(
-                    p,
-                    format!("is not a modalmap report of this version: {e}"),
-                    "merge reports written by this version of `modalmap apply`",
-                )
-            })?;
-            Ok((p.clone(), r))
-        })
-        .collect::<Result<Vec<_>>>()?;
-    let summary = crate::fields::merge(&reports)?;
-    let json = serde_json::to_string_pretty(&summary)
-        .map_err(|e| Error::internal(format!("summary encoding failed: {e}")))?;
-    dir.write("summary.json", json.as_bytes())?;
-    dir.write(
-        "summary.csv",
-        crate::fields::summary_csv(&summary).as_bytes(),
-    )?;
-    dir.write(
-        "summary.html",
-        crate::fields::summary_html(&summary).as_bytes(),
-    )?;
-    dir.commit()?;
+    let summary = crate::fields::merge_folders(folders, out, force)?;
     if !quiet {
         println!(
             "pooled {} fields labelled with {}\n",

@@ -90,16 +90,7 @@ pub struct PhaseModel {
     pub training: Vec<TrainingField>,
 }
 
-/// Which model a report was made with.
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
-pub struct ModelRef {
-    /// Path of the model file as given.
-    pub path: String,
-    /// SHA-256 of the model file.
-    pub sha256: String,
-    /// Its schema.
-    pub schema: String,
-}
+pub use crate::report::ModelRef;
 
 impl PhaseModel {
     /// Reads and checks a model file; returns it with a reference for reports.
@@ -615,6 +606,91 @@ pub fn merge(reports: &[(PathBuf, Report)]) -> Result<Summary> {
             "Follow your laboratory's accredited procedures and the applicable standards for results that go into a materials report.".into(),
         ],
     })
+}
+
+/// Every report.json below `root` (temporary and hidden folders skipped), sorted. A folder
+/// reached twice (through a symbolic link) is read once.
+fn find_reports(
+    root: &Path,
+    visited: &mut std::collections::BTreeSet<PathBuf>,
+    found: &mut Vec<PathBuf>,
+) -> Result<()> {
+    let real = std::fs::canonicalize(root).unwrap_or_else(|_| root.to_path_buf());
+    if !visited.insert(real) {
+        return Ok(());
+    }
+    let entries = std::fs::read_dir(root).map_err(|e| {
+        Error::input(
+            root,
+            format!("cannot be read: {e}"),
+            "give the output folders of `modalmap apply`",
+        )
+    })?;
+    let mut paths: Vec<PathBuf> = entries.flatten().map(|e| e.path()).collect();
+    paths.sort();
+    for p in paths {
+        let hidden = p
+            .file_name()
+            .is_some_and(|n| n.to_string_lossy().starts_with('.'));
+        if hidden {
+            continue;
+        }
+        if p.is_dir() {
+            find_reports(&p, visited, found)?;
+        } else if p.file_name().is_some_and(|n| n == "report.json") {
+            found.push(p);
+        }
+    }
+    Ok(())
+}
+
+/// Pools every report.json found in or below `folders` (reports made with one model) and
+/// writes summary.json, summary.csv and summary.html into `out` (atomically; an existing
+/// `out` is replaced only with `force`).
+pub fn merge_folders(folders: &[PathBuf], out: &Path, force: bool) -> Result<Summary> {
+    let mut paths = Vec::new();
+    let mut visited = std::collections::BTreeSet::new();
+    for f in folders {
+        if f.is_file() && f.file_name().is_some_and(|n| n == "report.json") {
+            paths.push(f.clone());
+        } else {
+            find_reports(f, &mut visited, &mut paths)?;
+        }
+    }
+    let mut seen = std::collections::BTreeSet::new();
+    paths.retain(|p| seen.insert(std::fs::canonicalize(p).unwrap_or_else(|_| p.clone())));
+    let reads: Vec<crate::guard::Input> = folders
+        .iter()
+        .chain(&paths)
+        .map(|p| crate::guard::Input {
+            what: "report",
+            path: p,
+        })
+        .collect();
+    crate::guard::check_no_overlap(&[out.to_path_buf()], &reads)?;
+    let dir = crate::report::prepare_output(out, force)?;
+    let reports = paths
+        .iter()
+        .map(|p| {
+            let bytes = crate::guard::read_regular(p, "report", crate::guard::MAX_JSON_BYTES)?;
+            let r: crate::report::Report = serde_json::from_slice(&bytes).map_err(|e| {
+                Error::input(
+                    p,
+                    format!("is not a modalmap report of this version: {e}"),
+                    "merge reports written by this version of `modalmap apply`",
+                )
+            })?;
+            Ok((p.clone(), r))
+        })
+        .collect::<Result<Vec<_>>>()?;
+    let summary = merge(&reports)?;
+    let json = serde_json::to_string_pretty(&summary)
+        .map_err(|e| Error::internal(format!("summary encoding failed: {e}")))?;
+    dir.write("summary.json", json.as_bytes())?;
+    dir.write("summary.csv", summary_csv(&summary).as_bytes())?;
+    dir.write("summary.html", summary_html(&summary).as_bytes())?;
+    dir.commit()?;
+    Ok(summary)
 }
 
 /// `summary.csv`: one row per phase.

@@ -429,6 +429,138 @@ fn process_streamed(
     Ok(report)
 }
 
+/// Everything `fit` needs, resolved from the command line.
+#[derive(Debug, Clone)]
+pub struct FitJob<'a> {
+    /// Mapping options.
+    pub map: &'a ValidMapOptions,
+    /// Composition options (the names of the model's phases come from them).
+    pub composition: &'a ValidCompositionOptions,
+    /// Metadata given on the command line (wins over the fields').
+    pub metadata: FieldMetadata,
+    /// Decoding limit.
+    pub max_pixels: u64,
+    /// Replace an existing model file.
+    pub force: bool,
+    /// Other files the command reads (configuration), which the model may not replace.
+    pub also_reads: Vec<(&'static str, PathBuf)>,
+}
+
+/// A model fitted by [`fit_model`], and the window of each training field.
+#[derive(Debug, Clone)]
+pub struct Fitted {
+    /// The model as written.
+    pub model: PhaseModel,
+    /// x, y, width, height of each field's training window, in map pixels.
+    pub windows: Vec<[usize; 4]>,
+}
+
+/// Fits one model on windows of `inputs` side by side and writes it to `output`
+/// (atomically); `progress` hears the stage names.
+pub fn fit_model(
+    inputs: &[PathBuf],
+    output: &Path,
+    job: &FitJob,
+    progress: &mut dyn FnMut(&str),
+) -> Result<Fitted> {
+    check_model_output(inputs, output, job)?;
+    let limits = Limits {
+        max_pixels: job.max_pixels,
+    };
+    let mut fields = Vec::new();
+    for input in inputs {
+        let mut f = load_field(input, &limits)?;
+        f.stack.override_metadata(&job.metadata);
+        fields.push(f);
+    }
+    let named: Vec<(String, &crate::stack::MapStack)> = fields
+        .iter()
+        .map(|f| (f.input.display().to_string(), &f.stack))
+        .collect();
+    let options = job.map.options();
+    let (training, windows) =
+        crate::fields::training_stack(&named, options.prepare.bin, options.cluster.seed)?;
+    let mut result = crate::pipeline::map_stack_with_progress(training, job.map, progress)?;
+    crate::pipeline::characterise(&mut result, job.composition)?;
+    let live: Vec<Option<f64>> = fields
+        .iter()
+        .map(|f| f.stack.metadata().live_time_s)
+        .collect();
+    let training = fields
+        .iter()
+        .zip(&windows)
+        .map(|(f, w)| {
+            Ok(crate::fields::TrainingField {
+                field: f.name.clone(),
+                window: *w,
+                inputs: crate::report::hash_files(&f.files)?,
+            })
+        })
+        .collect::<Result<Vec<_>>>()?;
+    let model = PhaseModel {
+        schema: crate::fields::MODEL_SCHEMA.into(),
+        tool_version: env!("CARGO_PKG_VERSION").into(),
+        elements: result.table.elements.clone(),
+        options: *options,
+        clusters: result.clusters.clone(),
+        phases: result
+            .table
+            .phases
+            .iter()
+            .map(|p| crate::fields::ModelPhase {
+                id: p.id,
+                name: p.name.clone(),
+                model_index: p.model_index,
+                training_area_fraction: p.area_fraction,
+            })
+            .collect(),
+        live_time_s: live[0].filter(|a| live.iter().all(|b| *b == Some(*a))),
+        training,
+    };
+    let json = serde_json::to_string_pretty(&model)
+        .map_err(|e| Error::internal(format!("model encoding failed: {e}")))?;
+    crate::report::write_file_atomically(output, json.as_bytes())?;
+    Ok(Fitted { model, windows })
+}
+
+/// Refuses a model file that is a folder, exists (without `force`), or would replace an
+/// input of the fit.
+fn check_model_output(inputs: &[PathBuf], output: &Path, job: &FitJob) -> Result<()> {
+    if output.is_dir() {
+        return Err(Error::output(
+            output,
+            "is a folder",
+            "give the model a file name, e.g. -o model.json",
+        ));
+    }
+    if output.exists() && !job.force {
+        return Err(Error::output(
+            output,
+            "already exists",
+            "choose another file name, or add --force to replace it",
+        ));
+    }
+    use crate::guard::Input;
+    let mut reads: Vec<Input> = inputs
+        .iter()
+        .map(|path| Input {
+            what: "field",
+            path,
+        })
+        .collect();
+    reads.extend(
+        job.also_reads
+            .iter()
+            .map(|(what, path)| Input { what, path }),
+    );
+    reads.extend(
+        job.composition
+            .input_files()
+            .map(|(what, path)| Input { what, path }),
+    );
+    crate::guard::check_file_output(output, &reads)
+}
+
 /// What happened to one field of a batch.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct FieldOutcome {
@@ -540,4 +672,93 @@ pub fn run_batch(
         Ok(pool) if jobs > 1 => pool.install(|| fields.par_iter().map(run_one).collect()),
         _ => fields.iter().map(run_one).collect(),
     }
+}
+
+/// What [`apply_batch`] did.
+#[derive(Debug, Clone)]
+pub struct BatchResult {
+    /// One outcome per field labelled in this run.
+    pub outcomes: Vec<FieldOutcome>,
+    /// Fields kept from an earlier run with the same model: (input, output name).
+    pub kept: Vec<(PathBuf, String)>,
+    /// The batch summary written (apply.json, or apply-I-of-N.json for a shard).
+    pub summary: PathBuf,
+}
+
+/// Who hears how a batch goes.
+pub struct BatchProgress<'a> {
+    /// The number of fields to label, once known.
+    pub start: &'a dyn Fn(usize),
+    /// (field, stage) as each field goes through the stages.
+    pub stage: &'a (dyn Fn(&str, &str) + Sync),
+    /// Each field's outcome.
+    pub done: &'a (dyn Fn(&FieldOutcome) + Sync),
+}
+
+/// Labels shard `i` of `n` of `inputs` with the job's saved model into folders of `out`,
+/// `jobs` fields at a time, keeping fields an earlier run labelled with the same model
+/// (unless the job forces), and writes the batch summary.
+pub fn apply_batch(
+    inputs: &[PathBuf],
+    out: &Path,
+    (i, n): (usize, usize),
+    jobs: usize,
+    job: &FieldJob,
+    progress: &BatchProgress,
+) -> Result<BatchResult> {
+    let Labelling::Model { reference, .. } = job.labelling else {
+        return Err(Error::internal("apply_batch needs a saved model"));
+    };
+    if out.is_file() {
+        return Err(Error::output(
+            out,
+            "is a file, not a folder",
+            "give a folder for the outputs (-o DIR)",
+        ));
+    }
+    std::fs::create_dir_all(out).map_err(|e| {
+        Error::output(
+            out,
+            format!("cannot be created: {e}"),
+            "check that its parent folder exists and is writable",
+        )
+    })?;
+    let all: Vec<(PathBuf, String)> = inputs.iter().cloned().zip(output_names(inputs)).collect();
+    // Fields done by an earlier (interrupted) run with this model are kept.
+    let (mine, kept): (Vec<_>, Vec<_>) = crate::fields::shard(&all, i, n)
+        .into_iter()
+        .partition(|(input, name)| job.force || !done_earlier(&out.join(name), input, reference));
+    // Before any work: no field's output may replace an input of the batch.
+    let fields: Vec<&Path> = all.iter().map(|(p, _)| p.as_path()).collect();
+    let targets: Vec<PathBuf> = mine.iter().map(|(_, name)| out.join(name)).collect();
+    job.check_outputs(&fields, &targets)?;
+    (progress.start)(mine.len());
+    let outcomes = run_batch(&mine, out, job, jobs, progress.stage, progress.done);
+    let summary_name = if n > 1 {
+        format!("apply-{i}-of-{n}.json")
+    } else {
+        "apply.json".into()
+    };
+    let summary = serde_json::json!({
+        "model": reference,
+        "shard": [i, n],
+        "fields": outcomes,
+        "kept": kept
+            .iter()
+            .map(|(input, name)| serde_json::json!({
+                "field": name,
+                "input": input.display().to_string(),
+                "output": out.join(name).display().to_string(),
+            }))
+            .collect::<Vec<_>>(),
+    });
+    let text = serde_json::to_string_pretty(&summary)
+        .map_err(|e| Error::internal(format!("summary encoding failed: {e}")))?;
+    let summary = out.join(summary_name);
+    crate::report::write_file_atomically(&summary, text.as_bytes())?;
+    Ok(BatchResult {
+        outcomes,
+        kept,
+        summary,
+    })
 }

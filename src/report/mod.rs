@@ -153,6 +153,17 @@ pub struct Provenance {
     pub inputs: Vec<InputFile>,
 }
 
+/// Which saved model a report was made with.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct ModelRef {
+    /// Path of the model file as given.
+    pub path: String,
+    /// SHA-256 of the model file.
+    pub sha256: String,
+    /// Its schema.
+    pub schema: String,
+}
+
 /// `report.json`.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct Report {
@@ -199,7 +210,7 @@ pub struct Report {
     pub advisor: crate::advisor::Advice,
     /// The saved model the field was labelled with (`apply`).
     #[serde(skip_serializing_if = "Option::is_none", default)]
-    pub model: Option<crate::fields::ModelRef>,
+    pub model: Option<ModelRef>,
     /// The X-ray yield across the field (absent in reports of older versions).
     #[serde(rename = "yield", skip_serializing_if = "Option::is_none", default)]
     pub xray_yield: Option<crate::xray_yield::YieldField>,
@@ -238,6 +249,20 @@ pub fn hash_file(path: &std::path::Path) -> Result<String> {
         .iter()
         .map(|b| format!("{b:02x}"))
         .collect())
+}
+
+/// Each file with its SHA-256, hashed in parallel.
+pub fn hash_files(files: &[std::path::PathBuf]) -> Result<Vec<InputFile>> {
+    use rayon::prelude::*;
+    files
+        .par_iter()
+        .map(|p| {
+            Ok(InputFile {
+                path: p.display().to_string(),
+                sha256: hash_file(p)?,
+            })
+        })
+        .collect()
 }
 
 /// What a labelled field hands to the report: its table and labels, how the phase count
@@ -279,7 +304,7 @@ pub struct Findings<'a> {
     /// Beam-physics advice.
     pub advisor: &'a crate::advisor::Advice,
     /// The saved model, with `apply`.
-    pub model: Option<&'a crate::fields::ModelRef>,
+    pub model: Option<&'a ModelRef>,
 }
 
 /// Builds the report of a mapped field.
@@ -303,7 +328,6 @@ pub fn build(
             result.segmentation.width, result.segmentation.height
         ));
     }
-    use rayon::prelude::*;
     let t = &result.table;
     let md = result.metadata;
     let map = |v: &[f64]| -> BTreeMap<String, f64> {
@@ -360,15 +384,7 @@ pub fn build(
     if let Some(b) = bse {
         warnings.extend(b.warnings.iter().cloned());
     }
-    let inputs = files
-        .par_iter()
-        .map(|p| {
-            Ok(InputFile {
-                path: p.display().to_string(),
-                sha256: hash_file(p)?,
-            })
-        })
-        .collect::<Result<Vec<_>>>()?;
+    let inputs = hash_files(files)?;
     let auto = matches!(options.cluster.phases, PhaseCount::Auto { .. });
     let bic_minimum = result
         .curve
