@@ -116,28 +116,112 @@ pub fn process_field(
 ) -> Result<Report> {
     job.check_output(input, out)?;
     if let Labelling::Model { model, reference } = job.labelling {
-        let strip = match job.stream {
-            Stream::Never => None,
-            Stream::Always(rows) => Some(rows),
-            Stream::Auto => {
-                let big = crate::montage::StreamedField::open(
-                    input,
-                    &Limits {
-                        max_pixels: job.max_pixels,
-                    },
-                )
-                .is_ok_and(|f| {
-                    (f.width as u64) * (f.height as u64) * (f.lines.len() as u64)
-                        > STREAM_ABOVE_VALUES
-                });
-                big.then_some(None)
-            }
-        };
-        if let Some(rows) = strip {
+        if let Some(rows) = strip_choice(input, job) {
             return process_streamed(input, out, job, model, reference, rows, progress);
         }
     }
     let dir = crate::report::prepare_output(out, job.force)?;
+    let mut inputs = load_inputs(input, job)?;
+    inputs.warnings.extend(dir.recovered.iter().cloned());
+    let Inputs {
+        stack,
+        name,
+        files,
+        mut warnings,
+        bse,
+        geometry,
+    } = inputs;
+    let mut result = label(stack, job, &mut warnings, progress)?;
+    progress("compositions");
+    let (composition_report, advice) = {
+        let _t = crate::profile::stage("composition");
+        crate::pipeline::characterise(&mut result, job.composition)?
+    };
+    let model_ref = match job.labelling {
+        Labelling::Model { model, reference } => {
+            use_model_names(&mut result.table, model);
+            Some(reference)
+        }
+        Labelling::Fit => None,
+    };
+    let bse = match &bse {
+        Some(img) => {
+            progress("BSE check");
+            let _t = crate::profile::stage("bse check");
+            let seg = &result.segmentation;
+            Some(crate::bse::check(
+                img,
+                &seg.labels,
+                seg.width,
+                seg.height,
+                &result.table,
+                geometry,
+            )?)
+        }
+        None => None,
+    };
+    let lines: Vec<_> = result
+        .counts
+        .maps()
+        .iter()
+        .map(|m| (m.element, m.line.clone()))
+        .collect();
+    let labelled = crate::report::Labelled {
+        table: &result.table,
+        segmentation: &result.segmentation,
+        curve: &result.curve,
+        simplifications: &result.simplifications,
+        min_counts_used: result.min_counts_used,
+        fitted_pixels: result.fitted_pixels,
+        counted_with: (result.counted_by != result.clusters.method()).then_some(result.counted_by),
+        xray_yield: &result.xray_yield,
+        metadata: result.counts.metadata(),
+        lines: &lines,
+        counts: Some(&result.counts),
+    };
+    let findings = crate::report::Findings {
+        bse: bse.as_ref(),
+        composition: &composition_report,
+        advisor: &advice,
+        model: model_ref,
+    };
+    report_and_write(dir, (&name, &files), &labelled, job, warnings, findings)
+}
+
+/// Whether a field labelled with a saved model is streamed, and with which strip height
+/// (`None` for the default): always with `--stream`, and by default when a folder of PNG
+/// maps holds more than [`STREAM_ABOVE_VALUES`] values.
+fn strip_choice(input: &Path, job: &FieldJob) -> Option<Option<usize>> {
+    match job.stream {
+        Stream::Never => None,
+        Stream::Always(rows) => Some(rows),
+        Stream::Auto => {
+            let limits = Limits {
+                max_pixels: job.max_pixels,
+            };
+            let big = crate::montage::StreamedField::open(input, &limits).is_ok_and(|f| {
+                (f.width as u64) * (f.height as u64) * (f.lines.len() as u64) > STREAM_ABOVE_VALUES
+            });
+            big.then_some(None)
+        }
+    }
+}
+
+/// A field's inputs, loaded and checked.
+struct Inputs {
+    stack: crate::stack::MapStack,
+    name: String,
+    /// Every file read (maps, BSE image, k-factor and library files), for the provenance.
+    files: Vec<PathBuf>,
+    warnings: Vec<String>,
+    bse: Option<crate::bse::BseImage>,
+    /// How the BSE image relates to the maps.
+    geometry: crate::bse::Geometry,
+}
+
+/// Loads a field and its BSE image (unless the job skips it) and checks them against the
+/// job: the model's elements, the pixel sizes the BSE check needs.
+fn load_inputs(input: &Path, job: &FieldJob) -> Result<Inputs> {
     let t = crate::profile::stage("load");
     let limits = Limits {
         max_pixels: job.max_pixels,
@@ -182,7 +266,7 @@ pub fn process_field(
             .saturating_sub(stack_values)
             .max(limits.max_pixels),
     };
-    let bse_image = bse_source
+    let bse = bse_source
         .as_ref()
         .map(|s| crate::io::load_bse(s, &bse_limits))
         .transpose()?;
@@ -195,7 +279,6 @@ pub fn process_field(
         ..
     } = field;
     warnings.extend(dropped_inputs(&skipped));
-    warnings.extend(dir.recovered.iter().cloned());
     add_composition_inputs(&mut files, job);
     // The BSE image is an input too.
     if let Some(BseSource::File(p)) = bse_source {
@@ -203,8 +286,30 @@ pub fn process_field(
             files.push(p);
         }
     }
-    let mut result = match job.labelling {
-        Labelling::Fit => crate::pipeline::map_stack_with_progress(stack, job.map, progress)?,
+    Ok(Inputs {
+        stack,
+        name,
+        files,
+        warnings,
+        bse,
+        geometry: crate::bse::Geometry {
+            map_size,
+            bin: job.map.options().prepare.bin,
+            pixel_sizes_um: map_pixel_um.zip(bse_pixel_size),
+        },
+    })
+}
+
+/// Labels the field: a model fitted here, or the job's saved model (with a warning when
+/// the field's live time differs from the model's training fields').
+fn label(
+    stack: crate::stack::MapStack,
+    job: &FieldJob,
+    warnings: &mut Vec<String>,
+    progress: &mut dyn FnMut(&str),
+) -> Result<crate::pipeline::MapResult> {
+    match job.labelling {
+        Labelling::Fit => crate::pipeline::map_stack_with_progress(stack, job.map, progress),
         Labelling::Model { model, .. } => {
             if let (Some(a), Some(b)) = (model.live_time_s, stack.metadata().live_time_s) {
                 if (a - b).abs() > 0.05 * a {
@@ -214,77 +319,28 @@ pub fn process_field(
                 }
             }
             progress("labelling pixels with the model");
-            crate::pipeline::label_with_model(stack, job.map, &model.clusters, &model.order())?
+            crate::pipeline::label_with_model(stack, job.map, &model.clusters, &model.order())
         }
-    };
-    progress("compositions");
-    let (composition_report, advice) = {
-        let _t = crate::profile::stage("composition");
-        crate::pipeline::characterise(&mut result, job.composition)?
-    };
-    let model_ref = match job.labelling {
-        Labelling::Model { model, reference } => {
-            use_model_names(&mut result.table, model);
-            Some(reference)
-        }
-        Labelling::Fit => None,
-    };
-    let bse = match &bse_image {
-        Some(img) => {
-            progress("BSE check");
-            let _t = crate::profile::stage("bse check");
-            let seg = &result.segmentation;
-            Some(crate::bse::check(
-                img,
-                &seg.labels,
-                seg.width,
-                seg.height,
-                &result.table,
-                crate::bse::Geometry {
-                    map_size,
-                    bin: job.map.options().prepare.bin,
-                    pixel_sizes_um: map_pixel_um.zip(bse_pixel_size),
-                },
-            )?)
-        }
-        None => None,
-    };
+    }
+}
+
+/// The shared tail of every field: builds the report from the labelled field and the
+/// findings, writes every output into `dir` and commits it.
+fn report_and_write(
+    dir: crate::report::OutputDir,
+    (name, files): (&str, &[PathBuf]),
+    labelled: &crate::report::Labelled,
+    job: &FieldJob,
+    warnings: Vec<String>,
+    findings: crate::report::Findings,
+) -> Result<Report> {
     let t = crate::profile::stage("report (hashes)");
-    let lines: Vec<_> = result
-        .counts
-        .maps()
-        .iter()
-        .map(|m| (m.element, m.line.clone()))
-        .collect();
-    let labelled = crate::report::Labelled {
-        table: &result.table,
-        segmentation: &result.segmentation,
-        curve: &result.curve,
-        simplifications: &result.simplifications,
-        min_counts_used: result.min_counts_used,
-        fitted_pixels: result.fitted_pixels,
-        counted_with: (result.counted_by != result.clusters.method()).then_some(result.counted_by),
-        xray_yield: &result.xray_yield,
-        metadata: result.counts.metadata(),
-        lines: &lines,
-        counts: Some(&result.counts),
-    };
-    let report = crate::report::build(
-        &name,
-        &files,
-        &labelled,
-        job.map.options(),
-        warnings,
-        crate::report::Findings {
-            bse: bse.as_ref(),
-            composition: &composition_report,
-            advisor: &advice,
-            model: model_ref,
-        },
-    )?;
+    let bse = findings.bse;
+    let report =
+        crate::report::build(name, files, labelled, job.map.options(), warnings, findings)?;
     drop(t);
     let _t = crate::profile::stage("write outputs");
-    crate::report::write_outputs(&dir, &report, &labelled, bse.as_ref())?;
+    crate::report::write_outputs(&dir, &report, labelled, bse)?;
     dir.commit()?;
     Ok(report)
 }
@@ -411,22 +467,20 @@ fn process_streamed(
         lines: &field.lines,
         counts: None,
     };
-    let report = crate::report::build(
-        &field.name,
-        &files,
+    let findings = crate::report::Findings {
+        bse: None,
+        composition: &composition_report,
+        advisor: &advice,
+        model: Some(reference),
+    };
+    report_and_write(
+        dir,
+        (&field.name, &files),
         &labelled,
-        job.map.options(),
+        job,
         warnings,
-        crate::report::Findings {
-            bse: None,
-            composition: &composition_report,
-            advisor: &advice,
-            model: Some(reference),
-        },
-    )?;
-    crate::report::write_outputs(&dir, &report, &labelled, None)?;
-    dir.commit()?;
-    Ok(report)
+        findings,
+    )
 }
 
 /// Everything `fit` needs, resolved from the command line.
