@@ -7,19 +7,11 @@ use std::path::PathBuf;
 
 use clap::{Parser, Subcommand};
 
-use serde::Deserialize;
-
-use crate::characterise::{BackgroundMode, CompositionOptions, OxygenMode};
-use crate::cluster::select::{ClusterParams, PhaseCount};
-use crate::cluster::Method;
 use crate::error::{Error, Result};
 use crate::fields::PhaseModel;
 use crate::io::{load_field, Limits};
-use crate::pipeline::MapOptions;
-use crate::prepare::{Denoise, MinCounts, PrepareParams, Stabilise};
-use crate::refine::RefineParams;
 use crate::run::{process_field, FieldJob, Labelling};
-use crate::stack::FieldMetadata;
+pub use crate::settings::{LimitArgs, MapArgs, Resolved};
 
 /// Phase maps from SEM-EDS element maps.
 #[derive(Debug, Parser)]
@@ -28,40 +20,6 @@ pub struct Cli {
     /// What to do.
     #[command(subcommand)]
     pub command: Command,
-}
-
-/// Decoding limits shared by every command that reads maps.
-#[derive(Debug, Clone, clap::Args)]
-pub struct LimitArgs {
-    /// Largest number of pixels accepted in one map (guards against hostile headers).
-    #[arg(long, value_name = "N", default_value_t = Limits::DEFAULT_MAX_PIXELS)]
-    pub max_pixels: u64,
-}
-
-impl LimitArgs {
-    /// The checked limits.
-    pub fn checked(&self) -> Result<Limits> {
-        if self.max_pixels == 0 {
-            return Err(Error::options(
-                "--max-pixels 0 would refuse every map",
-                format!(
-                    "give the largest number of pixels to accept in one map (default {})",
-                    Limits::DEFAULT_MAX_PIXELS
-                ),
-            ));
-        }
-        Ok(Limits {
-            max_pixels: self.max_pixels,
-        })
-    }
-}
-
-impl Default for LimitArgs {
-    fn default() -> Self {
-        LimitArgs {
-            max_pixels: Limits::DEFAULT_MAX_PIXELS,
-        }
-    }
 }
 
 /// The subcommands.
@@ -207,322 +165,12 @@ pub enum Scenario {
     BenchmarkRock,
 }
 
-/// Options of `map` (each may also come from --config; the command line wins).
-#[derive(Debug, Clone, Default, clap::Args)]
-pub struct MapArgs {
-    /// Number of phases, or `auto` (BIC; `auto:MAX` sets the largest count tried).
-    #[arg(long, value_name = "N|auto")]
-    pub phases: Option<PhaseCount>,
-    /// Clustering method: poisson (mixture of Poisson counts, default), kmeans, gmm.
-    #[arg(long, value_enum)]
-    pub method: Option<Method>,
-    /// Seed of every random choice (same seed, same result).
-    #[arg(long)]
-    pub seed: Option<u64>,
-    /// Pixel size in µm (overrides the field's metadata).
-    #[arg(long, value_name = "UM")]
-    pub pixel_size: Option<f64>,
-    /// Beam energy in kV (overrides the field's metadata).
-    #[arg(long, value_name = "KV")]
-    pub kv: Option<f64>,
-    /// Sum counts over N × N pixel blocks first.
-    #[arg(long, value_name = "N")]
-    pub bin: Option<usize>,
-    /// Denoising before clustering: none, gaussian:SIGMA or median:RADIUS.
-    #[arg(long, value_name = "METHOD")]
-    pub denoise: Option<Denoise>,
-    /// Variance-stabilising transform for kmeans and gmm.
-    #[arg(long, value_enum)]
-    pub transform: Option<Stabilise>,
-    /// Pixels with fewer total counts are empty (default: 15 % of the median total).
-    #[arg(long, value_name = "COUNTS")]
-    pub min_counts: Option<f64>,
-    /// Strength of the spatial prior (0 = off; default 1).
-    #[arg(long, value_name = "BETA")]
-    pub smoothing: Option<f64>,
-    /// Merge features smaller than this many pixels into their surroundings.
-    #[arg(long, value_name = "PX")]
-    pub min_feature: Option<usize>,
-    /// With --phases auto: dissolve phases smaller than this share of the pixels.
-    #[arg(long, value_name = "FRACTION")]
-    pub min_phase: Option<f64>,
-    /// BSE image of the field for the contrast check (default: a `BSE…` image found with
-    /// the maps, or the HDF5 input's `bse` dataset).
-    #[arg(long, value_name = "IMAGE")]
-    pub bse: Option<PathBuf>,
-    /// Pixel size of the BSE image in µm: with the maps' pixel size, sets the scale (and
-    /// allows a BSE image that covers a larger field than the maps).
-    #[arg(long, value_name = "UM")]
-    pub bse_pixel_size: Option<f64>,
-    /// Skip the BSE check even when a BSE image is found with the maps.
-    #[arg(long, conflicts_with = "bse")]
-    pub no_bse: bool,
-    /// k-factor file (format modalmap.kfactors/1) for compositions.
-    #[arg(long, value_name = "FILE")]
-    pub kfactors: Option<PathBuf>,
-    /// Calibrate the k-factors on a phase of known composition: ID=COMPOSITION (e.g.
-    /// 3=Cu6Sn5), NAME=COMPOSITION, or a library phase name; repeat for more phases.
-    /// COMPOSITION is a library name, a formula, or wt% as Cu:39.1,Sn:60.9.
-    #[arg(long, value_name = "PHASE=COMPOSITION")]
-    pub calibrate: Vec<String>,
-    /// Oxygen from its map (measured) or from the cations' valences (stoichiometry).
-    #[arg(long, value_enum)]
-    pub oxygen: Option<OxygenMode>,
-    /// Valence for oxygen by stoichiometry, e.g. Fe=3 (repeatable; anions negative).
-    #[arg(long, value_name = "EL=N")]
-    pub valence: Vec<String>,
-    /// Continuum background: from the phase poorest in each element (default), or none.
-    #[arg(long, value_enum)]
-    pub background: Option<BackgroundMode>,
-    /// Reference-phase library (format modalmap.phases/1), added to the built-in one;
-    /// repeatable.
-    #[arg(long, value_name = "FILE")]
-    pub library: Vec<PathBuf>,
-    /// TOML file with any of these options (keys as the long flag names).
-    #[arg(long, value_name = "FILE")]
-    pub config: Option<PathBuf>,
-    /// Worker threads (default: all cores). Results do not depend on it.
-    #[arg(long, value_name = "N")]
-    pub threads: Option<usize>,
-    /// Replace the contents of a non-empty output folder.
-    #[arg(long)]
-    pub force: bool,
-    /// Print nothing but errors.
-    #[arg(long)]
-    pub quiet: bool,
-    #[command(flatten)]
-    pub limits: LimitArgs,
-}
-
-/// The configuration file: the same keys as the flags.
-#[derive(Debug, Clone, Default, Deserialize)]
-#[serde(deny_unknown_fields, rename_all = "kebab-case")]
-struct ConfigFile {
-    /// `phases = 5` or `phases = "auto:8"`: a number or a string, as the flag's values.
-    #[serde(default, deserialize_with = "number_or_string")]
-    phases: Option<String>,
-    method: Option<String>,
-    seed: Option<u64>,
-    pixel_size: Option<f64>,
-    kv: Option<f64>,
-    bin: Option<usize>,
-    denoise: Option<String>,
-    transform: Option<String>,
-    min_counts: Option<f64>,
-    smoothing: Option<f64>,
-    min_feature: Option<usize>,
-    min_phase: Option<f64>,
-    threads: Option<usize>,
-    bse_pixel_size: Option<f64>,
-    kfactors: Option<PathBuf>,
-    calibrate: Option<Vec<String>>,
-    oxygen: Option<String>,
-    valence: Option<Vec<String>>,
-    background: Option<String>,
-    library: Option<Vec<PathBuf>>,
-}
-
-/// A configuration value written as a TOML integer or string, as text.
-fn number_or_string<'de, D: serde::Deserializer<'de>>(
-    d: D,
-) -> std::result::Result<Option<String>, D::Error> {
-    #[derive(Deserialize)]
-    #[serde(untagged)]
-    enum Scalar {
-        Int(i64),
-        Text(String),
-    }
-    Ok(Option::<Scalar>::deserialize(d)?.map(|s| match s {
-        Scalar::Int(i) => i.to_string(),
-        Scalar::Text(t) => t,
-    }))
-}
-
-/// Every option of `map`, flags and configuration file merged.
-#[derive(Debug, Clone, PartialEq)]
-pub struct Resolved {
-    /// Options of the mapping stages.
-    pub map: MapOptions,
-    /// Metadata overrides.
-    pub metadata: FieldMetadata,
-    /// Worker threads.
-    pub threads: Option<usize>,
-    /// BSE pixel size, µm.
-    pub bse_pixel_size: Option<f64>,
-    /// Options of the composition stage.
-    pub composition: CompositionOptions,
-}
-
-fn read_config(path: &std::path::Path) -> Result<ConfigFile> {
-    let text = crate::guard::read_text(
-        path,
-        "configuration file (--config)",
-        crate::guard::MAX_TEXT_BYTES,
-    )
-    .map_err(|e| Error::options_in(path, e.problem, e.fix))?;
-    toml::from_str(&text).map_err(|e| {
-        Error::options_in(
-            path,
-            format!("is not a valid configuration: {}", e.message()),
-            "use the long option names as keys, e.g. phases = \"auto\", method = \"poisson\", bin = 2",
-        )
-    })
-}
-
-fn parse_in<T: std::str::FromStr>(
-    path: &std::path::Path,
-    key: &str,
-    v: Option<String>,
-) -> Result<Option<T>>
-where
-    T::Err: std::fmt::Display,
-{
-    v.map(|s| {
-        s.parse::<T>().map_err(|e| {
-            Error::options_in(
-                path,
-                format!("{key} = \"{s}\": {e}"),
-                format!("see `modalmap map --help` for the values of --{key}"),
-            )
-        })
-    })
-    .transpose()
-}
-
-fn parse_value_enum<T: clap::ValueEnum>(
-    path: &std::path::Path,
-    key: &str,
-    v: Option<String>,
-) -> Result<Option<T>> {
-    v.map(|s| {
-        T::from_str(&s, false).map_err(|e| {
-            Error::options_in(
-                path,
-                format!("{key} = \"{s}\": {e}"),
-                format!("see `modalmap map --help` for the values of --{key}"),
-            )
-        })
-    })
-    .transpose()
-}
-
-impl MapArgs {
-    /// Merges the flags with the configuration file (flags win) into checked options.
-    pub fn resolve(&self) -> Result<Resolved> {
-        let cfg = match &self.config {
-            Some(p) => Some((p.clone(), read_config(p)?)),
-            None => None,
-        };
-        let (cp, c) = match cfg {
-            Some((p, c)) => (p, c),
-            None => (PathBuf::new(), ConfigFile::default()),
-        };
-        let phases = self
-            .phases
-            .or(parse_in::<PhaseCount>(&cp, "phases", c.phases)?);
-        let method = self
-            .method
-            .or(parse_value_enum::<Method>(&cp, "method", c.method)?);
-        let denoise = self
-            .denoise
-            .or(parse_in::<Denoise>(&cp, "denoise", c.denoise)?);
-        let transform = self.transform.or(parse_value_enum::<Stabilise>(
-            &cp,
-            "transform",
-            c.transform,
-        )?);
-        let d = MapOptions::default();
-        let min_counts = self.min_counts.or(c.min_counts);
-        let opts = MapOptions {
-            prepare: PrepareParams {
-                bin: self.bin.or(c.bin).unwrap_or(d.prepare.bin),
-                denoise: denoise.unwrap_or(d.prepare.denoise),
-                stabilise: transform.unwrap_or(d.prepare.stabilise),
-                min_counts: min_counts.map_or(d.prepare.min_counts, |counts| MinCounts::Absolute {
-                    counts,
-                }),
-                dequantise: d.prepare.dequantise,
-            },
-            cluster: ClusterParams {
-                method: method.unwrap_or(d.cluster.method),
-                phases: phases.unwrap_or(d.cluster.phases),
-                seed: self.seed.or(c.seed).unwrap_or(d.cluster.seed),
-                ..d.cluster
-            },
-            refine: RefineParams {
-                smoothing: self.smoothing.or(c.smoothing).unwrap_or(d.refine.smoothing),
-                min_feature_px: self
-                    .min_feature
-                    .or(c.min_feature)
-                    .unwrap_or(d.refine.min_feature_px),
-                ..d.refine
-            },
-            min_phase_fraction: self
-                .min_phase
-                .or(c.min_phase)
-                .unwrap_or(d.min_phase_fraction),
-        };
-        let md = FieldMetadata {
-            pixel_size_um: self.pixel_size.or(c.pixel_size),
-            beam_kv: self.kv.or(c.kv),
-            ..Default::default()
-        };
-        let bse_pixel_size = self.bse_pixel_size.or(c.bse_pixel_size);
-        for (name, key, v) in [
-            ("--pixel-size", "pixel_size_um", md.pixel_size_um),
-            ("--kv", "beam_kv", md.beam_kv),
-            ("--bse-pixel-size", "bse_pixel_size_um", bse_pixel_size),
-        ] {
-            if let Some(v) = v {
-                crate::stack::check_metadata_value(key, v).map_err(|p| {
-                    Error::options(format!("{name} {p}"), format!("give {name} in that range"))
-                })?;
-            }
-        }
-        let or_list = |flag: &[String], file: Option<Vec<String>>| {
-            if flag.is_empty() {
-                file.unwrap_or_default()
-            } else {
-                flag.to_vec()
-            }
-        };
-        let composition = CompositionOptions {
-            kfactors: self.kfactors.clone().or(c.kfactors),
-            calibrate: or_list(&self.calibrate, c.calibrate),
-            oxygen: self
-                .oxygen
-                .or(parse_value_enum::<OxygenMode>(&cp, "oxygen", c.oxygen)?)
-                .unwrap_or_default(),
-            valences: or_list(&self.valence, c.valence),
-            background: self
-                .background
-                .or(parse_value_enum::<BackgroundMode>(
-                    &cp,
-                    "background",
-                    c.background,
-                )?)
-                .unwrap_or_default(),
-            libraries: if self.library.is_empty() {
-                c.library.unwrap_or_default()
-            } else {
-                self.library.clone()
-            },
-        };
-        Ok(Resolved {
-            map: opts,
-            metadata: md,
-            threads: self.threads.or(c.threads),
-            bse_pixel_size,
-            composition,
-        })
-    }
-}
-
 /// Runs `map` on one field into `out`; returns the report.
 pub fn map_field(
     input: &std::path::Path,
     out: &std::path::Path,
     args: &MapArgs,
+    resolved: Resolved,
 ) -> Result<crate::report::Report> {
     let Resolved {
         map: opts,
@@ -530,7 +178,7 @@ pub fn map_field(
         bse_pixel_size,
         composition,
         ..
-    } = args.resolve()?;
+    } = resolved;
     let valid = opts.check()?;
     let composition = composition.check()?;
     let job = FieldJob {
@@ -610,8 +258,9 @@ pub fn run(cli: Cli) -> Result<u8> {
             Ok(0)
         }
         Command::Map { input, output, map } => {
-            install_threads(map.resolve()?.threads)?;
-            let report = map_field(&input, &output, &map)?;
+            let resolved = map.resolve()?;
+            install_threads(resolved.threads)?;
+            let report = map_field(&input, &output, &map, resolved)?;
             if !map.quiet {
                 print!("{}", crate::report::summary(&report));
                 println!("\n  outputs in {}", output.display());
@@ -623,8 +272,9 @@ pub fn run(cli: Cli) -> Result<u8> {
             output,
             map,
         } => {
-            install_threads(map.resolve()?.threads)?;
-            fit(&inputs, &output, &map)
+            let resolved = map.resolve()?;
+            install_threads(resolved.threads)?;
+            fit(&inputs, &output, &map, resolved)
         }
         Command::Apply {
             model,
@@ -637,7 +287,16 @@ pub fn run(cli: Cli) -> Result<u8> {
             strip_rows,
             map,
         } => {
-            install_threads(map.resolve()?.threads)?;
+            // Refused before the options are resolved (a configuration file is one of them).
+            let fixed = map.fixed_by_a_model();
+            if !fixed.is_empty() {
+                return Err(Error::options(
+                    format!("{} cannot be given to apply", fixed.join(", ")),
+                    "the model fixes the mapping options (fit a new model to change them); a BSE image is found with each field",
+                ));
+            }
+            let resolved = map.resolve()?;
+            install_threads(resolved.threads)?;
             let stream = if stream {
                 crate::run::Stream::Always(strip_rows)
             } else if no_stream {
@@ -647,12 +306,10 @@ pub fn run(cli: Cli) -> Result<u8> {
             };
             apply(
                 &model,
-                &inputs,
-                &output,
-                shard.as_deref(),
-                jobs,
-                stream,
+                (&inputs, &output),
+                (shard.as_deref(), jobs, stream),
                 &map,
+                resolved,
             )
         }
         Command::Merge {
@@ -672,7 +329,7 @@ pub fn run(cli: Cli) -> Result<u8> {
                 ..MapArgs::default()
             };
             crate::synth::write_folder(&field, &input)?;
-            let report = map_field(&input, &output, &args)?;
+            let report = map_field(&input, &output, &args, args.resolve()?)?;
             drop(scratch);
             print!("{}", crate::report::summary(&report));
             let labels = crate::io::read_raster(&output.join("labels.png"), &Limits::default())?;
@@ -783,13 +440,18 @@ fn synth(
 }
 
 /// `fit`: one model from several fields.
-fn fit(inputs: &[PathBuf], output: &std::path::Path, args: &MapArgs) -> Result<u8> {
+fn fit(
+    inputs: &[PathBuf],
+    output: &std::path::Path,
+    args: &MapArgs,
+    resolved: Resolved,
+) -> Result<u8> {
     let Resolved {
         map: opts,
         metadata,
         composition,
         ..
-    } = args.resolve()?;
+    } = resolved;
     let valid = opts.check()?;
     let composition = composition.check()?;
     if args.bse.is_some() || args.bse_pixel_size.is_some() {
@@ -841,48 +503,15 @@ fn fit(inputs: &[PathBuf], output: &std::path::Path, args: &MapArgs) -> Result<u
     Ok(0)
 }
 
-/// Options of `map` that a saved model fixes, when given to `apply`.
-fn model_fixed_options(args: &MapArgs) -> Vec<&'static str> {
-    let mut v = Vec::new();
-    let given = [
-        ("--phases", args.phases.is_some()),
-        ("--method", args.method.is_some()),
-        ("--seed", args.seed.is_some()),
-        ("--bin", args.bin.is_some()),
-        ("--denoise", args.denoise.is_some()),
-        ("--transform", args.transform.is_some()),
-        ("--min-counts", args.min_counts.is_some()),
-        ("--smoothing", args.smoothing.is_some()),
-        ("--min-feature", args.min_feature.is_some()),
-        ("--min-phase", args.min_phase.is_some()),
-        ("--bse", args.bse.is_some()),
-        ("--config", args.config.is_some()),
-    ];
-    for (name, set) in given {
-        if set {
-            v.push(name);
-        }
-    }
-    v
-}
-
-/// `apply`: label fields with a saved model.
+/// `apply`: label fields with a saved model; `batch` is the shard (I/N), the fields at a
+/// time and the streaming choice.
 fn apply(
     model_path: &std::path::Path,
-    inputs: &[PathBuf],
-    out: &std::path::Path,
-    shard: Option<&str>,
-    jobs: Option<usize>,
-    stream: crate::run::Stream,
+    (inputs, out): (&[PathBuf], &std::path::Path),
+    (shard, jobs, stream): (Option<&str>, Option<usize>, crate::run::Stream),
     args: &MapArgs,
+    resolved: Resolved,
 ) -> Result<u8> {
-    let fixed = model_fixed_options(args);
-    if !fixed.is_empty() {
-        return Err(Error::options(
-            format!("{} cannot be given to apply", fixed.join(", ")),
-            "the model fixes the mapping options (fit a new model to change them); a BSE image is found with each field",
-        ));
-    }
     let (model, reference) = PhaseModel::load(model_path)?;
     let valid = model.options.check()?;
     let Resolved {
@@ -890,7 +519,7 @@ fn apply(
         bse_pixel_size,
         composition,
         ..
-    } = args.resolve()?;
+    } = resolved;
     let composition = composition.check()?;
     let (i, n) = match shard {
         Some(s) => crate::fields::parse_shard(s).map_err(|p| {

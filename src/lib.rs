@@ -28,6 +28,7 @@ pub mod profile;
 pub mod refine;
 pub mod report;
 pub mod run;
+pub mod settings;
 pub mod stack;
 pub mod synth;
 pub mod unmix;
