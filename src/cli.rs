@@ -12,6 +12,7 @@ use crate::fields::PhaseModel;
 use crate::io::{load_field, Limits};
 use crate::run::{process_field, FieldJob, Labelling};
 pub use crate::settings::{LimitArgs, MapArgs, Resolved};
+use crate::synth::Scenario;
 
 /// Phase maps from SEM-EDS element maps.
 #[derive(Debug, Parser)]
@@ -156,15 +157,6 @@ pub enum Command {
     },
 }
 
-/// Synthetic scenarios.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, clap::ValueEnum)]
-pub enum Scenario {
-    /// The bundled sample field.
-    SolderJoint,
-    /// A six-mineral rock in ten elements, for benchmarks.
-    BenchmarkRock,
-}
-
 /// Runs `map` on one field into `out`; returns the report.
 pub fn map_field(
     input: &std::path::Path,
@@ -222,22 +214,6 @@ fn spinner(quiet: bool) -> Option<indicatif::ProgressBar> {
     Some(s)
 }
 
-fn install_threads(n: Option<usize>) -> Result<()> {
-    if let Some(n) = n.filter(|&n| n > 0) {
-        if n > 1024 {
-            return Err(Error::options(
-                format!("--threads {n} is too many"),
-                "use at most 1024 threads, or leave it out",
-            ));
-        }
-        // Fails only if a pool was installed before, which is harmless.
-        let _ = rayon::ThreadPoolBuilder::new()
-            .num_threads(n)
-            .build_global();
-    }
-    Ok(())
-}
-
 /// Runs a parsed command line; returns the process exit code on success.
 pub fn run(cli: Cli) -> Result<u8> {
     match cli.command {
@@ -259,7 +235,7 @@ pub fn run(cli: Cli) -> Result<u8> {
         }
         Command::Map { input, output, map } => {
             let resolved = map.resolve()?;
-            install_threads(resolved.threads)?;
+            crate::settings::install_threads(resolved.threads)?;
             let report = map_field(&input, &output, &map, resolved)?;
             if !map.quiet {
                 print!("{}", crate::report::summary(&report));
@@ -273,7 +249,7 @@ pub fn run(cli: Cli) -> Result<u8> {
             map,
         } => {
             let resolved = map.resolve()?;
-            install_threads(resolved.threads)?;
+            crate::settings::install_threads(resolved.threads)?;
             fit(&inputs, &output, &map, resolved)
         }
         Command::Apply {
@@ -296,7 +272,7 @@ pub fn run(cli: Cli) -> Result<u8> {
                 ));
             }
             let resolved = map.resolve()?;
-            install_threads(resolved.threads)?;
+            crate::settings::install_threads(resolved.threads)?;
             let stream = if stream {
                 crate::run::Stream::Always(strip_rows)
             } else if no_stream {
@@ -363,72 +339,15 @@ pub fn run(cli: Cli) -> Result<u8> {
     }
 }
 
-/// `synth`: an invented field, written atomically into a new or empty folder (or, with
-/// `force`, replacing a folder that holds no field).
+/// `synth`: writes a synthetic field (and its true labels).
 fn synth(
     output: &std::path::Path,
     truth: Option<&std::path::Path>,
     scenario: Scenario,
-    (size, seed, ramp): (Option<usize>, Option<u64>, Option<f64>),
+    knobs: (Option<usize>, Option<u64>, Option<f64>),
     force: bool,
 ) -> Result<u8> {
-    if scenario == Scenario::SolderJoint && (size.is_some() || seed.is_some() || ramp.is_some()) {
-        return Err(Error::options(
-            "--size, --seed and --yield-ramp set the benchmark rock; the solder joint is the bundled sample, always the same",
-            "leave them out, or add --scenario benchmark-rock",
-        ));
-    }
-    let (size, seed) = (size.unwrap_or(2048), seed.unwrap_or(2048));
-    if scenario == Scenario::BenchmarkRock && !(16..=20_000).contains(&size) {
-        return Err(Error::options(
-            format!("--size {size} is out of range"),
-            "use 16 to 20000 pixels",
-        ));
-    }
-    if let Some(t) = truth {
-        if t.exists() && !force {
-            return Err(Error::output(
-                t,
-                "already exists",
-                "choose another file for the true labels, or add --force to replace it",
-            ));
-        }
-        let folder = crate::guard::resolve_output(t)?;
-        if let Some(file) = folder.parent().and_then(crate::io::folder::field_file_in) {
-            return Err(Error::output(
-                t,
-                format!(
-                    "lies in a field's folder (it holds {file}); synth never writes into a field"
-                ),
-                "write the true labels outside any field",
-            ));
-        }
-    }
-    if let Some(r) = ramp {
-        crate::synth::check_ramp(r)?;
-    }
-    let dir = crate::report::prepare_output(output, force)?;
-    let field = match scenario {
-        Scenario::SolderJoint => crate::synth::sample_field()?,
-        Scenario::BenchmarkRock => {
-            let (micro, opts) = crate::synth::benchmark_rock(size, seed);
-            let mut field = crate::synth::generate(&micro, &opts)?;
-            if let Some(r) = ramp {
-                crate::synth::shade(&mut field, r, seed)?;
-            }
-            field
-        }
-    };
-    crate::synth::write_folder(&field, dir.folder())?;
-    dir.commit()?;
-    if let Some(t) = truth {
-        let png = crate::io::raster::encode_png_u16(
-            field.stack.width(),
-            field.stack.height(),
-            &field.truth,
-        );
-        crate::report::write_file_atomically(t, &png)?;
-    }
+    let field = crate::synth::write_scenario(output, truth, scenario, knobs, force)?;
     println!(
         "wrote a {}×{} synthetic field ({}) to {}",
         field.stack.width(),

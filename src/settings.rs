@@ -334,6 +334,24 @@ where
         .map_err(|e| serde::de::Error::custom(format!("\"{text}\": {e}")))
 }
 
+/// Sets the number of worker threads (`--threads`; all cores when not given). Results do
+/// not depend on it.
+pub fn install_threads(n: Option<usize>) -> Result<()> {
+    if let Some(n) = n.filter(|&n| n > 0) {
+        if n > 1024 {
+            return Err(Error::options(
+                format!("--threads {n} is too many"),
+                "use at most 1024 threads, or leave it out",
+            ));
+        }
+        // Fails only if a pool was installed before, which is harmless.
+        let _ = rayon::ThreadPoolBuilder::new()
+            .num_threads(n)
+            .build_global();
+    }
+    Ok(())
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;

@@ -804,6 +804,85 @@ pub fn sample_field() -> Result<SynthField> {
     generate(&micro, &opts)
 }
 
+/// Synthetic scenarios.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, clap::ValueEnum)]
+pub enum Scenario {
+    /// The bundled sample field.
+    SolderJoint,
+    /// A six-mineral rock in ten elements, for benchmarks.
+    BenchmarkRock,
+}
+
+/// Writes the synthetic field of `scenario` into the folder `output` (and its true labels
+/// as a 16-bit PNG to `truth`); `size`, `seed` and the yield ramp set the benchmark rock.
+/// Never writes into a field's folder; replaces existing outputs only with `force`.
+pub fn write_scenario(
+    output: &Path,
+    truth: Option<&Path>,
+    scenario: Scenario,
+    (size, seed, ramp): (Option<usize>, Option<u64>, Option<f64>),
+    force: bool,
+) -> Result<SynthField> {
+    if scenario == Scenario::SolderJoint && (size.is_some() || seed.is_some() || ramp.is_some()) {
+        return Err(Error::options(
+            "--size, --seed and --yield-ramp set the benchmark rock; the solder joint is the bundled sample, always the same",
+            "leave them out, or add --scenario benchmark-rock",
+        ));
+    }
+    let (size, seed) = (size.unwrap_or(2048), seed.unwrap_or(2048));
+    if scenario == Scenario::BenchmarkRock && !(16..=20_000).contains(&size) {
+        return Err(Error::options(
+            format!("--size {size} is out of range"),
+            "use 16 to 20000 pixels",
+        ));
+    }
+    if let Some(t) = truth {
+        if t.exists() && !force {
+            return Err(Error::output(
+                t,
+                "already exists",
+                "choose another file for the true labels, or add --force to replace it",
+            ));
+        }
+        let folder = crate::guard::resolve_output(t)?;
+        if let Some(file) = folder.parent().and_then(crate::io::folder::field_file_in) {
+            return Err(Error::output(
+                t,
+                format!(
+                    "lies in a field's folder (it holds {file}); synth never writes into a field"
+                ),
+                "write the true labels outside any field",
+            ));
+        }
+    }
+    if let Some(r) = ramp {
+        check_ramp(r)?;
+    }
+    let dir = crate::report::prepare_output(output, force)?;
+    let field = match scenario {
+        Scenario::SolderJoint => sample_field()?,
+        Scenario::BenchmarkRock => {
+            let (micro, opts) = benchmark_rock(size, seed);
+            let mut field = generate(&micro, &opts)?;
+            if let Some(r) = ramp {
+                shade(&mut field, r, seed)?;
+            }
+            field
+        }
+    };
+    write_folder(&field, dir.folder())?;
+    dir.commit()?;
+    if let Some(t) = truth {
+        let png = crate::io::raster::encode_png_u16(
+            field.stack.width(),
+            field.stack.height(),
+            &field.truth,
+        );
+        crate::report::write_file_atomically(t, &png)?;
+    }
+    Ok(field)
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
