@@ -409,11 +409,32 @@ pub fn encode_png_u8(width: usize, height: usize, data: &[u8]) -> Vec<u8> {
     encode_gray(width, height, png::BitDepth::Eight, data)
 }
 
+/// An 8-bit RGB PNG in memory (interleaved RGB bytes).
+pub fn encode_png_rgb(width: usize, height: usize, rgb: &[u8]) -> Vec<u8> {
+    encode_png(
+        width,
+        height,
+        png::BitDepth::Eight,
+        png::ColorType::Rgb,
+        rgb,
+    )
+}
+
 fn encode_gray(width: usize, height: usize, depth: png::BitDepth, bytes: &[u8]) -> Vec<u8> {
+    encode_png(width, height, depth, png::ColorType::Grayscale, bytes)
+}
+
+fn encode_png(
+    width: usize,
+    height: usize,
+    depth: png::BitDepth,
+    color: png::ColorType,
+    bytes: &[u8],
+) -> Vec<u8> {
     let mut out = Vec::new();
     {
         let mut enc = png::Encoder::new(&mut out, width as u32, height as u32);
-        enc.set_color(png::ColorType::Grayscale);
+        enc.set_color(color);
         enc.set_depth(depth);
         enc.set_compression(png::Compression::Fast);
         // Writing into memory cannot fail for a buffer of the right size.
@@ -457,6 +478,16 @@ pub enum TiffData<'a> {
     U32(&'a [u32]),
     /// 32-bit float.
     F32(&'a [f32]),
+}
+
+/// A single-channel 16-bit TIFF in memory.
+pub fn encode_tiff_u16(width: usize, height: usize, data: &[u16]) -> Result<Vec<u8>> {
+    use tiff::encoder::{colortype, TiffEncoder};
+    let mut out = std::io::Cursor::new(Vec::new());
+    TiffEncoder::new(&mut out)
+        .and_then(|mut enc| enc.write_image::<colortype::Gray16>(width as u32, height as u32, data))
+        .map_err(|e| Error::internal(format!("TIFF encoding failed: {e}")))?;
+    Ok(out.into_inner())
 }
 
 /// Writes a single-channel TIFF.

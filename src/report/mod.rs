@@ -727,153 +727,37 @@ pub fn write_outputs(
     bse: Option<&crate::bse::BseCheck>,
 ) -> Result<()> {
     let seg = &result.segmentation;
-    let (w, h) = (seg.width, seg.height);
     let t = crate::profile::stage("  write: labels, images, json, csv");
-    if r.phases.len() <= 255 {
-        let v: Vec<u8> = seg.labels.iter().map(|&l| l as u8).collect();
-        crate::io::raster::write_png_u8(&dir.path("labels.png"), w, h, &v)?;
-    } else {
-        crate::io::raster::write_tiff(
-            &dir.path("labels.tif"),
-            w,
-            h,
-            crate::io::raster::TiffData::U16(&seg.labels),
-        )?;
-    }
-    let mut legend: Vec<draw::LegendEntry> = r
-        .phases
-        .iter()
-        .map(|p| draw::LegendEntry {
-            id: p.id,
-            text: format!("{} {}  {:.1} %", p.id, p.name, 100.0 * p.area_fraction),
-        })
-        .collect();
-    legend.push(draw::LegendEntry {
-        id: 0,
-        text: format!("unassigned  {:.1} %", 100.0 * r.unassigned_fraction),
-    });
-    let canvas = draw::phase_map(
-        &seg.labels,
-        w,
-        h,
-        &legend,
-        r.pixel_size_um,
-        &format!("{}: phase map", r.field),
-    );
-    crate::io::raster::write_png_rgb(
-        &dir.path("phase-map.png"),
-        canvas.width,
-        canvas.height,
-        &canvas.rgb,
-    )?;
-    if let Some(b) = bse {
-        let grey = draw::to_grey(&b.registered);
-        crate::io::raster::write_png_u8(&dir.path("bse-registered.png"), w, h, &grey)?;
-        let overlay = draw::overlay(&grey, &seg.labels, w, h);
-        let canvas = draw::framed(
-            &|i| [overlay[3 * i], overlay[3 * i + 1], overlay[3 * i + 2]],
-            w,
-            h,
-            &legend[..legend.len() - 1],
-            r.pixel_size_um,
-            &format!("{}: phase boundaries on BSE", r.field),
-        );
-        crate::io::raster::write_png_rgb(
-            &dir.path("overlay.png"),
-            canvas.width,
-            canvas.height,
-            &canvas.rgb,
-        )?;
+    let (labels_name, labels) = label_image(r, seg)?;
+    dir.write(labels_name, &labels)?;
+    let legend = legend(r);
+    let phase_map = phase_map_png(r, seg, &legend);
+    dir.write("phase-map.png", &phase_map)?;
+    let bse_pngs = bse.map(|b| bse_figures(r, seg, &legend, b));
+    if let Some((registered, overlay)) = &bse_pngs {
+        dir.write("bse-registered.png", registered)?;
+        dir.write("overlay.png", overlay)?;
     }
     let json = serde_json::to_string_pretty(r)
         .map_err(|e| Error::internal(format!("report encoding failed: {e}")))?;
     dir.write("report.json", json.as_bytes())?;
     dir.write("phases.csv", phases_csv(r).as_bytes())?;
-
     drop(t);
+
     let t = crate::profile::stage("  write: element maps, pair plots");
-    // Per-element maps, then the page with everything.
-    let read = |name: &str| {
-        std::fs::read(dir.path(name)).map_err(|e| {
-            Error::output(
-                &dir.path(name),
-                format!("could not be read back: {e}"),
-                "check free disk space",
-            )
-        })
+    let (element_maps, scatters) = match result.counts {
+        Some(counts) => {
+            let maps = element_figures(r, counts, (seg.width, seg.height))?;
+            for m in &maps {
+                dir.write(&m.file, &m.png)?;
+            }
+            let scatters = pair_plots(r, counts, &maps, &seg.labels);
+            (maps.into_iter().map(|m| m.figure).collect(), scatters)
+        }
+        None => (Vec::new(), Vec::new()),
     };
-    let mut element_maps = Vec::new();
-    let mut scatters = Vec::new();
-    if let Some(counts) = result.counts {
-        use rayon::prelude::*;
-        // Each map as a grey PNG (with title, ramp and scale bar), and a small copy for
-        // the page, in parallel over the elements; with each element's 99.5th percentile
-        // (white in its map, the end of its axis in the pair plots).
-        let made = counts
-            .maps()
-            .par_iter()
-            .map(|m| {
-                let line = m.line.clone().unwrap_or_default();
-                let title = format!("{} {} counts per pixel", m.element.symbol, line);
-                // A figure, not the data: at most 1024 pixels on the long side.
-                let (fw, fh, f, small) = draw::shrink(&m.counts, w, h, 1024);
-                let canvas = draw::element_map(
-                    &small,
-                    fw,
-                    fh,
-                    title.trim(),
-                    r.pixel_size_um.map(|p| p * f as f64),
-                );
-                let name = format!("element-{}.png", m.element.symbol);
-                crate::io::raster::write_png_u8(
-                    &dir.path(&name),
-                    canvas.width,
-                    canvas.height,
-                    &draw::luma(&canvas),
-                )?;
-                let lo = m.counts.iter().copied().fold(f32::INFINITY, f32::min);
-                let hi = m.counts.iter().copied().fold(f32::NEG_INFINITY, f32::max);
-                let top = draw::nth_finite(&m.counts, |n| (n - 1) - n / 200).unwrap_or(1.0);
-                let (tw, th, thumb) = draw::grey_thumbnail(&m.counts, w, h, top, 320);
-                let figure = html::Figure {
-                    png: crate::io::raster::encode_png_u8(tw, th, &thumb),
-                    alt: format!(
-                        "{} map: grey level proportional to counts per pixel",
-                        m.element.symbol
-                    ),
-                    caption: format!(
-                        "{} {line}: counts per pixel {lo:.0} to {hi:.0} (white at {top:.0}; full size in {name})",
-                        m.element.symbol
-                    ),
-                };
-                Ok((figure, (m.element.symbol.to_string(), top)))
-            })
-            .collect::<Result<Vec<_>>>()?;
-        let (figures, tops): (Vec<_>, std::collections::HashMap<_, _>) = made.into_iter().unzip();
-        element_maps.extend(figures);
-        let pairs: Vec<_> = html::informative_pairs(r)
-            .into_iter()
-            .filter_map(|(ex, ey)| {
-                let (a, b) = (counts.map(&ex)?, counts.map(&ey)?);
-                let top = (*tops.get(ex.as_str())?, *tops.get(ey.as_str())?);
-                Some((ex, ey, a, b, top))
-            })
-            .collect();
-        scatters = pairs
-            .par_iter()
-            .map(|(ex, ey, a, b, top)| {
-                html::density_scatter(
-                    (ex, ey),
-                    (&a.counts, &b.counts),
-                    *top,
-                    &seg.labels,
-                    r.phases.len(),
-                )
-            })
-            .collect();
-    }
     let mut figures = vec![html::Figure {
-        png: read("phase-map.png")?,
+        png: phase_map,
         alt: format!(
             "Phase map of {} with {} phases; legend lists each phase's id, name and area",
             r.field,
@@ -881,14 +765,14 @@ pub fn write_outputs(
         ),
         caption: "Phases (ids as in the table; black: unassigned pixels).".into(),
     }];
-    if bse.is_some() {
+    if let Some((registered, overlay)) = bse_pngs {
         figures.push(html::Figure {
-            png: read("bse-registered.png")?,
+            png: registered,
             alt: "BSE image registered onto the map grid".into(),
             caption: "BSE image, registered and resampled onto the map grid.".into(),
         });
         figures.push(html::Figure {
-            png: read("overlay.png")?,
+            png: overlay,
             alt: "BSE image with the phase boundaries drawn in the phases' colours".into(),
             caption: "Phase boundaries on the BSE image.".into(),
         });
@@ -903,6 +787,172 @@ pub fn write_outputs(
             scatters,
         },
     );
-    dir.write("report.html", page.as_bytes())?;
-    Ok(())
+    dir.write("report.html", page.as_bytes())
+}
+
+/// The label image: labels.png (8-bit) up to 255 phases, else labels.tif (16-bit).
+fn label_image(r: &Report, seg: &crate::refine::Segmentation) -> Result<(&'static str, Vec<u8>)> {
+    let (w, h) = (seg.width, seg.height);
+    if r.phases.len() <= 255 {
+        let v: Vec<u8> = seg.labels.iter().map(|&l| l as u8).collect();
+        Ok(("labels.png", crate::io::raster::encode_png_u8(w, h, &v)))
+    } else {
+        Ok((
+            "labels.tif",
+            crate::io::raster::encode_tiff_u16(w, h, &seg.labels)?,
+        ))
+    }
+}
+
+/// The legend of the phase images: each phase's id, name and area, then the unassigned
+/// pixels.
+fn legend(r: &Report) -> Vec<draw::LegendEntry> {
+    let mut legend: Vec<draw::LegendEntry> = r
+        .phases
+        .iter()
+        .map(|p| draw::LegendEntry {
+            id: p.id,
+            text: format!("{} {}  {:.1} %", p.id, p.name, 100.0 * p.area_fraction),
+        })
+        .collect();
+    legend.push(draw::LegendEntry {
+        id: 0,
+        text: format!("unassigned  {:.1} %", 100.0 * r.unassigned_fraction),
+    });
+    legend
+}
+
+/// phase-map.png: the labels in the phases' colours with the legend and scale bar.
+fn phase_map_png(
+    r: &Report,
+    seg: &crate::refine::Segmentation,
+    legend: &[draw::LegendEntry],
+) -> Vec<u8> {
+    let canvas = draw::phase_map(
+        &seg.labels,
+        seg.width,
+        seg.height,
+        legend,
+        r.pixel_size_um,
+        &format!("{}: phase map", r.field),
+    );
+    crate::io::raster::encode_png_rgb(canvas.width, canvas.height, &canvas.rgb)
+}
+
+/// bse-registered.png (the BSE image on the map grid) and overlay.png (the phase
+/// boundaries on it, framed with the legend of the phases).
+fn bse_figures(
+    r: &Report,
+    seg: &crate::refine::Segmentation,
+    legend: &[draw::LegendEntry],
+    b: &crate::bse::BseCheck,
+) -> (Vec<u8>, Vec<u8>) {
+    let (w, h) = (seg.width, seg.height);
+    let grey = draw::to_grey(&b.registered);
+    let overlay = draw::overlay(&grey, &seg.labels, w, h);
+    let canvas = draw::framed(
+        &|i| [overlay[3 * i], overlay[3 * i + 1], overlay[3 * i + 2]],
+        w,
+        h,
+        &legend[..legend.len() - 1],
+        r.pixel_size_um,
+        &format!("{}: phase boundaries on BSE", r.field),
+    );
+    (
+        crate::io::raster::encode_png_u8(w, h, &grey),
+        crate::io::raster::encode_png_rgb(canvas.width, canvas.height, &canvas.rgb),
+    )
+}
+
+/// One element's map: its file (element-El.png), the small copy for the page, and its
+/// 99.5th percentile (white in its map, the end of its axis in the pair plots).
+struct ElementFigure {
+    symbol: String,
+    file: String,
+    png: Vec<u8>,
+    figure: html::Figure,
+    top: f32,
+}
+
+/// Each element's map as a grey PNG with title, ramp and scale bar (at most 1024 pixels on
+/// the long side: a figure, not the data), in parallel over the elements.
+fn element_figures(
+    r: &Report,
+    counts: &crate::stack::MapStack,
+    (w, h): (usize, usize),
+) -> Result<Vec<ElementFigure>> {
+    use rayon::prelude::*;
+    Ok(counts
+        .maps()
+        .par_iter()
+        .map(|m| {
+            let line = m.line.clone().unwrap_or_default();
+            let title = format!("{} {} counts per pixel", m.element.symbol, line);
+            let (fw, fh, f, small) = draw::shrink(&m.counts, w, h, 1024);
+            let canvas = draw::element_map(
+                &small,
+                fw,
+                fh,
+                title.trim(),
+                r.pixel_size_um.map(|p| p * f as f64),
+            );
+            let file = format!("element-{}.png", m.element.symbol);
+            let png =
+                crate::io::raster::encode_png_u8(canvas.width, canvas.height, &draw::luma(&canvas));
+            let lo = m.counts.iter().copied().fold(f32::INFINITY, f32::min);
+            let hi = m.counts.iter().copied().fold(f32::NEG_INFINITY, f32::max);
+            let top = draw::nth_finite(&m.counts, |n| (n - 1) - n / 200).unwrap_or(1.0);
+            let (tw, th, thumb) = draw::grey_thumbnail(&m.counts, w, h, top, 320);
+            let figure = html::Figure {
+                png: crate::io::raster::encode_png_u8(tw, th, &thumb),
+                alt: format!(
+                    "{} map: grey level proportional to counts per pixel",
+                    m.element.symbol
+                ),
+                caption: format!(
+                    "{} {line}: counts per pixel {lo:.0} to {hi:.0} (white at {top:.0}; full size in {file})",
+                    m.element.symbol
+                ),
+            };
+            ElementFigure {
+                symbol: m.element.symbol.to_string(),
+                file,
+                png,
+                figure,
+                top,
+            }
+        })
+        .collect())
+}
+
+/// The density plots of the informative element pairs, each axis up to its element's
+/// 99.5th percentile.
+fn pair_plots(
+    r: &Report,
+    counts: &crate::stack::MapStack,
+    maps: &[ElementFigure],
+    labels: &[u16],
+) -> Vec<String> {
+    use rayon::prelude::*;
+    let top = |e: &str| maps.iter().find(|m| m.symbol == e).map(|m| m.top);
+    let pairs: Vec<_> = html::informative_pairs(r)
+        .into_iter()
+        .filter_map(|(ex, ey)| {
+            let (a, b) = (counts.map(&ex)?, counts.map(&ey)?);
+            let tops = (top(&ex)?, top(&ey)?);
+            Some((ex, ey, a, b, tops))
+        })
+        .collect();
+    pairs
+        .par_iter()
+        .map(|(ex, ey, a, b, tops)| {
+            html::density_scatter(
+                (ex, ey),
+                (&a.counts, &b.counts),
+                *tops,
+                labels,
+                r.phases.len(),
+            )
+        })
+        .collect()
 }
