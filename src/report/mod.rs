@@ -322,14 +322,87 @@ pub fn build(
         advisor,
         model,
     } = findings;
-    if result.table.tiles[0] * result.table.tiles[1] < 2 {
-        warnings.push(format!(
-            "the field ({} × {} pixels) is too small to cut into tiles of at least 10 × 10 pixels, so the area fractions carry no interval; map a larger field, or several fields and pool them with merge",
-            result.segmentation.width, result.segmentation.height
-        ));
-    }
     let t = &result.table;
     let md = result.metadata;
+    let phases = t
+        .phases
+        .iter()
+        .map(|p| phase_entry(t, p, md, &composition.basis, bse))
+        .collect();
+    warnings.extend(too_small_for_tiles(result));
+    if let Some(b) = bse {
+        warnings.extend(b.warnings.iter().cloned());
+    }
+    warnings.extend(result_warnings(result, options));
+    let inputs = hash_files(files)?;
+    let auto = matches!(options.cluster.phases, PhaseCount::Auto { .. });
+    let mut unassigned = BTreeMap::new();
+    unassigned.insert("empty".into(), result.segmentation.empty_pixels);
+    unassigned.insert(
+        "unlike_any_phase".into(),
+        result.segmentation.outlier_pixels,
+    );
+    Ok(Report {
+        schema: SCHEMA.into(),
+        field: field_name.to_string(),
+        elements: t.elements.clone(),
+        lines: result
+            .lines
+            .iter()
+            .filter_map(|(e, l)| l.clone().map(|l| (e.symbol.to_string(), l)))
+            .collect(),
+        width: result.segmentation.width,
+        height: result.segmentation.height,
+        pixel_size_um: md.pixel_size_um,
+        beam_kv: md.beam_kv,
+        phases,
+        unassigned_fraction: t.unassigned_fraction,
+        unassigned,
+        phase_count: PhaseCountReport {
+            mode: if auto { "auto".into() } else { "fixed".into() },
+            phases: t.phases.len(),
+            curve: result.curve.to_vec(),
+            bic_minimum: bic_minimum(result.curve),
+            simplifications: result.simplifications.to_vec(),
+            counted_with: result.counted_with,
+        },
+        statistics: statistics(result),
+        options: *options,
+        provenance: Provenance {
+            tool: "modalmap".into(),
+            version: env!("CARGO_PKG_VERSION").into(),
+            seed: options.cluster.seed,
+            inputs,
+        },
+        cautions: std::iter::once(composition_caution(&composition.basis))
+            .chain(CAUTIONS.iter().map(|s| s.to_string()))
+            .collect(),
+        warnings,
+        bse: bse.cloned(),
+        composition: composition.clone(),
+        advisor: advisor.clone(),
+        model: model.cloned(),
+        xray_yield: Some(result.xray_yield.clone()),
+    })
+}
+
+/// The phase count of the lowest BIC in the sweep, if there was one.
+fn bic_minimum(curve: &[CurvePoint]) -> Option<usize> {
+    curve
+        .iter()
+        .min_by(|a, b| a.bic.total_cmp(&b.bic))
+        .map(|c| c.k)
+}
+
+/// The report's entry for phase `p` of table `t`, with its BSE statistics when there was a
+/// BSE check.
+fn phase_entry(
+    t: &crate::phases::PhaseTable,
+    p: &crate::phases::Phase,
+    md: &crate::stack::FieldMetadata,
+    basis: &str,
+    bse: Option<&crate::bse::BseCheck>,
+) -> PhaseEntry {
     let map = |v: &[f64]| -> BTreeMap<String, f64> {
         t.elements.iter().cloned().zip(v.iter().copied()).collect()
     };
@@ -340,59 +413,59 @@ pub fn build(
             .zip(v.iter().copied())
             .collect()
     };
-    let phases = t
-        .phases
-        .iter()
-        .map(|p| {
-            // The phase's BSE statistics, when there was a BSE check.
-            let q = bse.and_then(|b| b.phases.iter().find(|q| q.id == p.id));
-            PhaseEntry {
-                id: p.id,
-                name: p.name.clone(),
-                pixels: p.pixels,
-                area_fraction: p.area_fraction,
-                area_fraction_ci95: p.area_fraction_ci95,
-                mean: map(&p.mean),
-                sd: map(&p.sd),
-                composition_wt: cmap(&p.composition.wt),
-                composition_wt_sd: cmap(&p.composition.wt_sd),
-                composition_at: cmap(&p.composition.at),
-                composition_at_sd: cmap(&p.composition.at_sd),
-                not_detected: t
-                    .composition_elements
-                    .iter()
-                    .zip(&p.composition.limit_wt)
-                    .filter_map(|(e, l)| l.map(|l| (e.clone(), l)))
-                    .collect(),
-                composition_basis: composition.basis.clone(),
-                composition_pixels: p.composition_pixels,
-                composition_from_interior: p.composition_from_interior,
-                composition_unmixed: p.composition_unmixed,
-                reference: p.reference.clone(),
-                particles: p.particles,
-                mean_ecd_px: p.mean_ecd_px,
-                mean_ecd_um: md.pixel_size_um.map(|s| s * p.mean_ecd_px),
-                largest_px: p.largest_px,
-                mean_confidence: p.mean_confidence,
-                bse_mean: q.map(|q| q.bse_mean).filter(|v| v.is_finite()),
-                bse_sd: q.map(|q| q.bse_sd).filter(|v| v.is_finite()),
-                eta_predicted: q.map(|q| q.eta_predicted),
-                mean_z: q.map(|q| q.mean_z),
-            }
-        })
-        .collect();
-    if let Some(b) = bse {
-        warnings.extend(b.warnings.iter().cloned());
+    let q = bse.and_then(|b| b.phases.iter().find(|q| q.id == p.id));
+    PhaseEntry {
+        id: p.id,
+        name: p.name.clone(),
+        pixels: p.pixels,
+        area_fraction: p.area_fraction,
+        area_fraction_ci95: p.area_fraction_ci95,
+        mean: map(&p.mean),
+        sd: map(&p.sd),
+        composition_wt: cmap(&p.composition.wt),
+        composition_wt_sd: cmap(&p.composition.wt_sd),
+        composition_at: cmap(&p.composition.at),
+        composition_at_sd: cmap(&p.composition.at_sd),
+        not_detected: t
+            .composition_elements
+            .iter()
+            .zip(&p.composition.limit_wt)
+            .filter_map(|(e, l)| l.map(|l| (e.clone(), l)))
+            .collect(),
+        composition_basis: basis.to_string(),
+        composition_pixels: p.composition_pixels,
+        composition_from_interior: p.composition_from_interior,
+        composition_unmixed: p.composition_unmixed,
+        reference: p.reference.clone(),
+        particles: p.particles,
+        mean_ecd_px: p.mean_ecd_px,
+        mean_ecd_um: md.pixel_size_um.map(|s| s * p.mean_ecd_px),
+        largest_px: p.largest_px,
+        mean_confidence: p.mean_confidence,
+        bse_mean: q.map(|q| q.bse_mean).filter(|v| v.is_finite()),
+        bse_sd: q.map(|q| q.bse_sd).filter(|v| v.is_finite()),
+        eta_predicted: q.map(|q| q.eta_predicted),
+        mean_z: q.map(|q| q.mean_z),
     }
-    let inputs = hash_files(files)?;
+}
+
+/// A warning when the field is too small to cut into tiles, so its areas carry no interval.
+fn too_small_for_tiles(result: &Labelled) -> Option<String> {
+    let t = result.table;
+    (t.tiles[0] * t.tiles[1] < 2).then(|| format!(
+        "the field ({} × {} pixels) is too small to cut into tiles of at least 10 × 10 pixels, so the area fractions carry no interval; map a larger field, or several fields and pool them with merge",
+        result.segmentation.width, result.segmentation.height
+    ))
+}
+
+/// What the user should know about the labelling: a phase count held at the largest
+/// tried, an uneven X-ray yield, fewer phases than asked for, phases near the noise floor.
+fn result_warnings(result: &Labelled, options: &MapOptions) -> Vec<String> {
+    let t = result.table;
+    let mut warnings = Vec::new();
     let auto = matches!(options.cluster.phases, PhaseCount::Auto { .. });
-    let bic_minimum = result
-        .curve
-        .iter()
-        .min_by(|a, b| a.bic.total_cmp(&b.bic))
-        .map(|c| c.k);
     let largest_tried = result.curve.iter().map(|c| c.k).max();
-    if let (Some(best), Some(max)) = (bic_minimum, largest_tried) {
+    if let (Some(best), Some(max)) = (bic_minimum(result.curve), largest_tried) {
         if auto && best == max && t.phases.len() + 1 >= max {
             warnings.push(format!(
                 "the phase count may be limited by the largest count tried: BIC was lowest at {max} components, the most tried, and {} phases remain; try --phases auto:{}",
@@ -429,6 +502,12 @@ pub fn build(
             ));
         }
     }
+    warnings
+}
+
+/// How the area intervals were made, and the counts behind the labelling.
+fn statistics(result: &Labelled) -> BTreeMap<String, serde_json::Value> {
+    let t = result.table;
     let mut statistics = BTreeMap::new();
     statistics.insert("tiles".into(), serde_json::json!(t.tiles));
     statistics.insert("t_quantile".into(), serde_json::json!(t.t_quantile));
@@ -447,54 +526,7 @@ pub fn build(
         "fitted_pixels".into(),
         serde_json::json!(result.fitted_pixels),
     );
-    let mut unassigned = BTreeMap::new();
-    unassigned.insert("empty".into(), result.segmentation.empty_pixels);
-    unassigned.insert(
-        "unlike_any_phase".into(),
-        result.segmentation.outlier_pixels,
-    );
-    Ok(Report {
-        schema: SCHEMA.into(),
-        field: field_name.to_string(),
-        elements: t.elements.clone(),
-        lines: result
-            .lines
-            .iter()
-            .filter_map(|(e, l)| l.clone().map(|l| (e.symbol.to_string(), l)))
-            .collect(),
-        width: result.segmentation.width,
-        height: result.segmentation.height,
-        pixel_size_um: md.pixel_size_um,
-        beam_kv: md.beam_kv,
-        phases,
-        unassigned_fraction: t.unassigned_fraction,
-        unassigned,
-        phase_count: PhaseCountReport {
-            mode: if auto { "auto".into() } else { "fixed".into() },
-            phases: t.phases.len(),
-            curve: result.curve.to_vec(),
-            bic_minimum,
-            simplifications: result.simplifications.to_vec(),
-            counted_with: result.counted_with,
-        },
-        statistics,
-        options: *options,
-        provenance: Provenance {
-            tool: "modalmap".into(),
-            version: env!("CARGO_PKG_VERSION").into(),
-            seed: options.cluster.seed,
-            inputs,
-        },
-        cautions: std::iter::once(composition_caution(&composition.basis))
-            .chain(CAUTIONS.iter().map(|s| s.to_string()))
-            .collect(),
-        warnings,
-        bse: bse.cloned(),
-        composition: composition.clone(),
-        advisor: advisor.clone(),
-        model: model.cloned(),
-        xray_yield: Some(result.xray_yield.clone()),
-    })
+    statistics
 }
 
 /// A CSV field, quoted when it holds a comma or a quote (RFC 4180).
