@@ -523,19 +523,76 @@ pub fn check(
         ));
     }
     let etas = predicted_eta(table);
-    let eta_of = |l: u16| -> f32 {
-        if l == 0 {
-            0.0
-        } else {
-            etas[l as usize - 1].0 as f32
+    let predicted: Vec<f32> = labels
+        .iter()
+        .map(|&l| {
+            if l == 0 {
+                0.0
+            } else {
+                etas[l as usize - 1].0 as f32
+            }
+        })
+        .collect();
+    let (registration, shift, registered) =
+        register_and_resample(bse, &predicted, (w, h), scale, &mut warnings);
+    let mut phases = phase_statistics(labels, &registered, (w, h), table, &etas);
+    for p in phases.iter().filter(|p| p.pixels_used < MIN_CHECK_PIXELS) {
+        warnings.push(format!(
+            "phase {} has only {} interior pixels on the BSE image: left out of the check",
+            p.id, p.pixels_used
+        ));
+    }
+    let (xs, ys): (Vec<f64>, Vec<f64>) = phases
+        .iter()
+        .filter(|p| p.pixels_used >= MIN_CHECK_PIXELS)
+        .map(|p| (p.eta_predicted, p.bse_mean))
+        .unzip();
+    let spearman = (xs.len() >= 3)
+        .then(|| spearman(&xs, &ys))
+        .filter(|v| v.is_finite());
+    let fit = (xs.len() >= 2).then(|| line_fit(&xs, &ys));
+    if let Some(f) = fit {
+        for p in phases
+            .iter_mut()
+            .filter(|p| p.pixels_used >= MIN_CHECK_PIXELS)
+        {
+            p.fit_residual = Some(p.bse_mean - f.intercept - f.slope * p.eta_predicted);
         }
-    };
-    let predicted: Vec<f32> = labels.iter().map(|&l| eta_of(l)).collect();
+    }
+    let flags = contradictions(&phases, table);
+    Ok(BseCheck {
+        source: bse.source.clone(),
+        scale,
+        registration,
+        shift_px: shift,
+        saturated_fraction,
+        phases,
+        spearman,
+        fit,
+        flags,
+        warnings,
+        registered,
+    })
+}
+
+/// A phase needs this many interior pixels on the BSE image to take part in the check.
+const MIN_CHECK_PIXELS: usize = 10;
+
+/// Registers the BSE image (resampled to the map grid at `scale`) on the `predicted`
+/// contrast and resamples it once more with the shift found, when the registration is
+/// trusted; otherwise it is compared unshifted, with a warning.
+fn register_and_resample(
+    bse: &BseImage,
+    predicted: &[f32],
+    (w, h): (usize, usize),
+    scale: f64,
+    warnings: &mut Vec<String>,
+) -> (Registration, [f64; 2], Vec<f32>) {
     let t = crate::profile::stage("  bse: resample");
     let unshifted = resample(bse, w, h, scale, (0.0, 0.0));
     drop(t);
     let t = crate::profile::stage("  bse: register");
-    let registration = register(&predicted, &unshifted, w, h);
+    let registration = register(predicted, &unshifted, w, h);
     drop(t);
     let shift = if registration.trusted {
         registration.shift_px
@@ -546,35 +603,43 @@ pub fn check(
         ));
         [0.0, 0.0]
     };
-    let t = crate::profile::stage("  bse: resample");
+    let _t = crate::profile::stage("  bse: resample");
     let registered = if shift == [0.0, 0.0] {
         unshifted
     } else {
         resample(bse, w, h, scale, (shift[0], shift[1]))
     };
-    drop(t);
+    (registration, shift, registered)
+}
 
-    // Interior pixels of each phase.
-    let k = table.phases.len();
-    let mut stats = vec![(0usize, 0.0f64, 0.0f64); k];
+/// Mean, standard deviation and standard error of the registered BSE image over each
+/// phase's interior pixels (its 3 × 3 neighbourhood all the phase's), with its predicted
+/// η and mean Z.
+fn phase_statistics(
+    labels: &[u16],
+    registered: &[f32],
+    (w, h): (usize, usize),
+    table: &PhaseTable,
+    etas: &[(f64, f64)],
+) -> Vec<PhaseBse> {
+    let mut stats = vec![(0usize, 0.0f64, 0.0f64); table.phases.len()];
     for y in 1..h.saturating_sub(1) {
         for x in 1..w.saturating_sub(1) {
             let i = y * w + x;
-            let l = labels[i];
             let v = registered[i];
             if v.is_finite() && crate::phases::interior_3x3(labels, w, x, y) {
-                let s = &mut stats[l as usize - 1];
+                let s = &mut stats[labels[i] as usize - 1];
                 s.0 += 1;
                 s.1 += f64::from(v);
                 s.2 += f64::from(v) * f64::from(v);
             }
         }
     }
-    let phases: Vec<PhaseBse> = table
+    table
         .phases
         .iter()
         .zip(&stats)
-        .zip(&etas)
+        .zip(etas)
         .map(|((p, &(n, s, s2)), &(eta, z))| {
             let nf = n as f64;
             let mean = if n > 0 { s / nf } else { f64::NAN };
@@ -594,54 +659,45 @@ pub fn check(
                 fit_residual: None,
             }
         })
+        .collect()
+}
+
+/// Least-squares line y = intercept + slope · x, with its R² (1 when y does not vary).
+fn line_fit(xs: &[f64], ys: &[f64]) -> Fit {
+    let n = xs.len() as f64;
+    let (mx, my) = (xs.iter().sum::<f64>() / n, ys.iter().sum::<f64>() / n);
+    let sxx: f64 = xs.iter().map(|x| (x - mx).powi(2)).sum();
+    let sxy: f64 = xs.iter().zip(ys).map(|(x, y)| (x - mx) * (y - my)).sum();
+    let slope = if sxx > 0.0 { sxy / sxx } else { 0.0 };
+    let intercept = my - slope * mx;
+    let ss_res: f64 = xs
+        .iter()
+        .zip(ys)
+        .map(|(x, y)| (y - intercept - slope * x).powi(2))
+        .sum();
+    let ss_tot: f64 = ys.iter().map(|y| (y - my).powi(2)).sum();
+    Fit {
+        intercept,
+        slope,
+        r2: if ss_tot > 0.0 {
+            1.0 - ss_res / ss_tot
+        } else {
+            1.0
+        },
+    }
+}
+
+/// Every pair of usable phases where the one predicted darker (by more than
+/// [`ETA_RESOLUTION`]) is measured brighter beyond three standard errors of the difference.
+fn contradictions(phases: &[PhaseBse], table: &PhaseTable) -> Vec<Flag> {
+    let usable: Vec<&PhaseBse> = phases
+        .iter()
+        .filter(|p| p.pixels_used >= MIN_CHECK_PIXELS)
         .collect();
-    let usable: Vec<&PhaseBse> = phases.iter().filter(|p| p.pixels_used >= 10).collect();
-    for p in phases.iter().filter(|p| p.pixels_used < 10) {
-        warnings.push(format!(
-            "phase {} has only {} interior pixels on the BSE image: left out of the check",
-            p.id, p.pixels_used
-        ));
-    }
-    let xs: Vec<f64> = usable.iter().map(|p| p.eta_predicted).collect();
-    let ys: Vec<f64> = usable.iter().map(|p| p.bse_mean).collect();
-    let spearman = (usable.len() >= 3)
-        .then(|| spearman(&xs, &ys))
-        .filter(|v| v.is_finite());
-    let fit = (usable.len() >= 2).then(|| {
-        let n = xs.len() as f64;
-        let (mx, my) = (xs.iter().sum::<f64>() / n, ys.iter().sum::<f64>() / n);
-        let sxx: f64 = xs.iter().map(|x| (x - mx).powi(2)).sum();
-        let sxy: f64 = xs.iter().zip(&ys).map(|(x, y)| (x - mx) * (y - my)).sum();
-        let slope = if sxx > 0.0 { sxy / sxx } else { 0.0 };
-        let intercept = my - slope * mx;
-        let ss_res: f64 = xs
-            .iter()
-            .zip(&ys)
-            .map(|(x, y)| (y - intercept - slope * x).powi(2))
-            .sum();
-        let ss_tot: f64 = ys.iter().map(|y| (y - my).powi(2)).sum();
-        Fit {
-            intercept,
-            slope,
-            r2: if ss_tot > 0.0 {
-                1.0 - ss_res / ss_tot
-            } else {
-                1.0
-            },
-        }
-    });
-    let mut phases = phases;
-    if let Some(f) = fit {
-        for p in phases.iter_mut().filter(|p| p.pixels_used >= 10) {
-            p.fit_residual = Some(p.bse_mean - f.intercept - f.slope * p.eta_predicted);
-        }
-    }
-    let usable: Vec<&PhaseBse> = phases.iter().filter(|p| p.pixels_used >= 10).collect();
     let name = |id: u16| table.phases[id as usize - 1].name.clone();
     let mut flags = Vec::new();
     for a in &usable {
         for b in &usable {
-            // a predicted darker than b, but measured brighter beyond the noise.
             if b.eta_predicted - a.eta_predicted > ETA_RESOLUTION
                 && a.bse_mean - b.bse_mean > 3.0 * (a.bse_se.powi(2) + b.bse_se.powi(2)).sqrt()
             {
@@ -655,24 +711,24 @@ pub fn check(
             }
         }
     }
-    Ok(BseCheck {
-        source: bse.source.clone(),
-        scale,
-        registration,
-        shift_px: shift,
-        saturated_fraction,
-        phases,
-        spearman,
-        fit,
-        flags,
-        warnings,
-        registered,
-    })
+    flags
 }
 
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    /// Least squares by hand: x = 1, 2, 3 and y = 2, 4, 5 give slope 3/2, intercept 2/3,
+    /// residual sum 1/6 and total sum 14/3, so R² = 1 − 1/28.
+    #[test]
+    fn line_fit_of_a_hand_worked_example() {
+        let f = line_fit(&[1.0, 2.0, 3.0], &[2.0, 4.0, 5.0]);
+        assert!((f.slope - 1.5).abs() < 1e-12);
+        assert!((f.intercept - 2.0 / 3.0).abs() < 1e-12);
+        assert!((f.r2 - (1.0 - 1.0 / 28.0)).abs() < 1e-12);
+        let flat = line_fit(&[1.0, 2.0], &[7.0, 7.0]);
+        assert_eq!((flat.slope, flat.r2), (0.0, 1.0));
+    }
 
     #[test]
     fn spearman_of_known_rankings() {
