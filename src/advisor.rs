@@ -154,82 +154,20 @@ pub fn advise(
         }
     }
     for (e, l, named) in &chosen {
-        let u = l.overvoltage(kv);
         a.lines.push(LineInfo {
             element: e.symbol.into(),
             line: l.family.principal().into(),
             named: *named,
             energy_kev: l.energy_kev,
             edge_kev: l.edge_kev,
-            overvoltage: u,
+            overvoltage: l.overvoltage(kv),
         });
-        let need = ceil_kv(GOOD_OVERVOLTAGE * l.edge_kev);
-        let other = [Family::K, Family::L, Family::M]
-            .into_iter()
-            .filter(|f| *f != l.family)
-            .filter_map(|f| crate::chem::xray::line(e.z, f))
-            .filter(|o| o.overvoltage(kv) >= GOOD_OVERVOLTAGE)
-            .max_by(|x, y| x.edge_kev.total_cmp(&y.edge_kev));
-        let alt = other.map_or(String::new(), |o| {
-            format!(
-                ", or map its {} line ({:.2} keV)",
-                o.family.principal(),
-                o.energy_kev
-            )
-        });
-        if u <= 1.0 {
-            a.messages.push(format!(
-                "{} {} is not excited at {kv} kV (edge {:.2} keV): its map holds only background; use at least {need} kV{alt}",
-                e.symbol,
-                l.family.principal(),
-                l.edge_kev
-            ));
-        } else if u < GOOD_OVERVOLTAGE {
-            a.messages.push(format!(
-                "{} {} is weakly excited at {kv} kV (overvoltage {u:.2}, below {GOOD_OVERVOLTAGE}): few counts, and its intensity changes steeply with the beam energy; {need} kV gives U ≥ {GOOD_OVERVOLTAGE}{alt}",
-                e.symbol,
-                l.family.principal(),
-            ));
-        }
+        a.messages.extend(excitation_message(e, l, kv));
     }
-    for p in phases {
-        let Some((rho, source)) = p.density.clone() else {
-            continue;
-        };
-        let total: f64 = p.composition.iter().map(|x| x.1).sum();
-        if total <= 0.0 {
-            continue;
-        }
-        let w = |f: &dyn Fn(&ElementInfo) -> f64| {
-            p.composition
-                .iter()
-                .map(|(e, x)| x / total * f(e))
-                .sum::<f64>()
-        };
-        let abar = w(&|e| e.atomic_weight);
-        let zbar = w(&|e| f64::from(e.z));
-        let ranges = chosen
-            .iter()
-            .filter(|(e, _, _)| {
-                p.composition
-                    .iter()
-                    .any(|(x, wt)| x.symbol == e.symbol && wt / total >= 0.01)
-            })
-            .map(|(e, l, _)| {
-                (
-                    e.symbol.to_string(),
-                    andersen_hasler_um(kv, l.edge_kev, rho),
-                )
-            })
-            .collect();
-        a.phases.push(PhaseRanges {
-            id: p.id,
-            density: rho,
-            density_source: source,
-            electron_range_um: kanaya_okayama_um(abar, zbar, rho, kv),
-            xray_range_um: ranges,
-        });
-    }
+    a.phases = phases
+        .iter()
+        .filter_map(|p| phase_ranges(p, &chosen, kv))
+        .collect();
     let all: Vec<f64> = a
         .phases
         .iter()
@@ -258,24 +196,115 @@ pub fn advise(
         let need = ceil_kv(GOOD_OVERVOLTAGE * max_edge);
         a.lowest_good_kv = Some(need);
         if need <= kv - 3.0 && hi > 0.0 {
-            // The ranges at the lower energy, for the same phases and lines.
-            let at_need: Vec<f64> = phases
-                .iter()
-                .filter_map(|p| p.density.as_ref().map(|d| d.0))
-                .flat_map(|rho| {
-                    chosen
-                        .iter()
-                        .map(move |c| andersen_hasler_um(need, c.1.edge_kev, rho))
-                })
-                .filter(|r| *r > 0.0)
-                .collect();
-            let new_hi = at_need.iter().copied().fold(0.0, f64::max);
-            a.messages.push(format!(
-                "a lower beam energy would sharpen the maps: at {need} kV every mapped line still has an overvoltage of at least {GOOD_OVERVOLTAGE}, and the largest X-ray range shrinks from {hi:.2} to about {new_hi:.2} µm"
-            ));
+            a.messages
+                .push(lower_energy_message(phases, &chosen, need, hi));
         }
     }
     a
+}
+
+/// What to say about line `l` of element `e` at `kv`: not excited, or weakly (overvoltage
+/// under [`GOOD_OVERVOLTAGE`]), with the energy that excites it well and another line of
+/// the element that is well excited, if any.
+fn excitation_message(e: &ElementInfo, l: &XrayLine, kv: f64) -> Option<String> {
+    let u = l.overvoltage(kv);
+    let need = ceil_kv(GOOD_OVERVOLTAGE * l.edge_kev);
+    let other = [Family::K, Family::L, Family::M]
+        .into_iter()
+        .filter(|f| *f != l.family)
+        .filter_map(|f| crate::chem::xray::line(e.z, f))
+        .filter(|o| o.overvoltage(kv) >= GOOD_OVERVOLTAGE)
+        .max_by(|x, y| x.edge_kev.total_cmp(&y.edge_kev));
+    let alt = other.map_or(String::new(), |o| {
+        format!(
+            ", or map its {} line ({:.2} keV)",
+            o.family.principal(),
+            o.energy_kev
+        )
+    });
+    if u <= 1.0 {
+        Some(format!(
+            "{} {} is not excited at {kv} kV (edge {:.2} keV): its map holds only background; use at least {need} kV{alt}",
+            e.symbol,
+            l.family.principal(),
+            l.edge_kev
+        ))
+    } else if u < GOOD_OVERVOLTAGE {
+        Some(format!(
+            "{} {} is weakly excited at {kv} kV (overvoltage {u:.2}, below {GOOD_OVERVOLTAGE}): few counts, and its intensity changes steeply with the beam energy; {need} kV gives U ≥ {GOOD_OVERVOLTAGE}{alt}",
+            e.symbol,
+            l.family.principal(),
+        ))
+    } else {
+        None
+    }
+}
+
+/// The electron range of phase `p` (Kanaya–Okayama, with its mass-fraction mean A and Z)
+/// and the X-ray range of each chosen line of an element it holds at 1 wt% or more
+/// (Andersen–Hasler); `None` without a density.
+fn phase_ranges(
+    p: &PhaseInput,
+    chosen: &[(ElementInfo, XrayLine, bool)],
+    kv: f64,
+) -> Option<PhaseRanges> {
+    let (rho, source) = p.density.clone()?;
+    let total: f64 = p.composition.iter().map(|x| x.1).sum();
+    if total <= 0.0 {
+        return None;
+    }
+    let w = |f: &dyn Fn(&ElementInfo) -> f64| {
+        p.composition
+            .iter()
+            .map(|(e, x)| x / total * f(e))
+            .sum::<f64>()
+    };
+    let abar = w(&|e| e.atomic_weight);
+    let zbar = w(&|e| f64::from(e.z));
+    let ranges = chosen
+        .iter()
+        .filter(|(e, _, _)| {
+            p.composition
+                .iter()
+                .any(|(x, wt)| x.symbol == e.symbol && wt / total >= 0.01)
+        })
+        .map(|(e, l, _)| {
+            (
+                e.symbol.to_string(),
+                andersen_hasler_um(kv, l.edge_kev, rho),
+            )
+        })
+        .collect();
+    Some(PhaseRanges {
+        id: p.id,
+        density: rho,
+        density_source: source,
+        electron_range_um: kanaya_okayama_um(abar, zbar, rho, kv),
+        xray_range_um: ranges,
+    })
+}
+
+/// The advice to map at `need` kV, where every line is still well excited, with the
+/// largest X-ray range there beside today's `hi`.
+fn lower_energy_message(
+    phases: &[PhaseInput],
+    chosen: &[(ElementInfo, XrayLine, bool)],
+    need: f64,
+    hi: f64,
+) -> String {
+    let new_hi = phases
+        .iter()
+        .filter_map(|p| p.density.as_ref().map(|d| d.0))
+        .flat_map(|rho| {
+            chosen
+                .iter()
+                .map(move |c| andersen_hasler_um(need, c.1.edge_kev, rho))
+        })
+        .filter(|r| *r > 0.0)
+        .fold(0.0, f64::max);
+    format!(
+        "a lower beam energy would sharpen the maps: at {need} kV every mapped line still has an overvoltage of at least {GOOD_OVERVOLTAGE}, and the largest X-ray range shrinks from {hi:.2} to about {new_hi:.2} µm"
+    )
 }
 
 /// The phase input for the advisor from mass fractions over `elements`.
