@@ -512,6 +512,24 @@ pub fn write_tiff(path: &Path, width: usize, height: usize, data: TiffData<'_>) 
 mod tests {
     use super::*;
 
+    /// The in-memory encoders give the bytes the file writers write, so a page that
+    /// embeds a figure holds the same image as the file beside it.
+    #[test]
+    fn encoders_give_the_bytes_the_writers_write() {
+        let dir = tempfile::tempdir().unwrap();
+        let (w, h) = (7, 5);
+        let rgb: Vec<u8> = (0..w * h * 3).map(|i| (i * 37 % 256) as u8).collect();
+        let grey: Vec<u8> = (0..w * h).map(|i| (i * 11 % 256) as u8).collect();
+        let wide: Vec<u16> = (0..w * h).map(|i| (i * 3001) as u16).collect();
+        write_png_rgb(&dir.path().join("c.png"), w, h, &rgb).unwrap();
+        write_png_u8(&dir.path().join("g.png"), w, h, &grey).unwrap();
+        write_tiff(&dir.path().join("t.tif"), w, h, TiffData::U16(&wide)).unwrap();
+        let read = |n: &str| std::fs::read(dir.path().join(n)).unwrap();
+        assert_eq!(encode_png_rgb(w, h, &rgb), read("c.png"));
+        assert_eq!(encode_png_u8(w, h, &grey), read("g.png"));
+        assert_eq!(encode_tiff_u16(w, h, &wide).unwrap(), read("t.tif"));
+    }
+
     #[test]
     fn png_and_tiff_round_trip_every_depth() {
         let dir = tempfile::tempdir().unwrap();

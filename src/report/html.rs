@@ -634,25 +634,60 @@ pub fn page(r: &Report, extras: &Extras) -> String {
         r.phases.len(),
         100.0 * r.unassigned_fraction
     );
-    let figures = |h: &mut String, title: &str, class: &str, figs: &[Figure]| {
-        if figs.is_empty() {
-            return;
-        }
-        let _ = write!(h, "<h2>{title}</h2><div class=\"{class}\">");
-        for f in figs {
-            let _ = write!(
-                h,
-                "<figure><img src=\"data:image/png;base64,{}\" alt=\"{}\"><figcaption>{}</figcaption></figure>",
-                base64(&f.png),
-                esc(&f.alt),
-                esc(&f.caption)
-            );
-        }
-        h.push_str("</div>\n");
-    };
-    figures(&mut h, "Phase map", "row", &extras.figures);
-    figures(&mut h, "Element maps", "row maps", &extras.element_maps);
-    // The phase table.
+    figure_row(&mut h, "Phase map", "row", &extras.figures);
+    figure_row(&mut h, "Element maps", "row maps", &extras.element_maps);
+    h.push_str(&phase_table(r));
+    h.push_str("<h2>Area fractions</h2>");
+    h.push_str(&area_bar(r));
+    h.push_str("<h2>Compositions</h2>");
+    h.push_str(&composition_bars(r));
+    h.push_str(&pairs_section(r, &extras.scatters));
+    h.push_str(&bse_section(r));
+    h.push_str(&yield_section(r));
+    h.push_str(&count_section(r));
+    note_list(&mut h, "Beam-physics advice", &r.advisor.messages);
+    note_list(&mut h, "Notes on the compositions", &r.composition.notes);
+    note_list(&mut h, "Warnings", &r.warnings);
+    note_list(&mut h, "Cautions", &r.cautions);
+    h.push_str(&provenance_section(r));
+    h.push_str("</body></html>\n");
+    h
+}
+
+/// A titled row of embedded PNG figures (nothing when there are none).
+fn figure_row(h: &mut String, title: &str, class: &str, figs: &[Figure]) {
+    if figs.is_empty() {
+        return;
+    }
+    let _ = write!(h, "<h2>{title}</h2><div class=\"{class}\">");
+    for f in figs {
+        let _ = write!(
+            h,
+            "<figure><img src=\"data:image/png;base64,{}\" alt=\"{}\"><figcaption>{}</figcaption></figure>",
+            base64(&f.png),
+            esc(&f.alt),
+            esc(&f.caption)
+        );
+    }
+    h.push_str("</div>\n");
+}
+
+/// A titled list of notes (nothing when there are none).
+fn note_list(h: &mut String, title: &str, items: &[String]) {
+    if items.is_empty() {
+        return;
+    }
+    let _ = write!(h, "<h2>{}</h2><ul class=\"note\">", esc(title));
+    for i in items {
+        let _ = write!(h, "<li>{}</li>", esc(i));
+    }
+    h.push_str("</ul>\n");
+}
+
+/// The phase table: id, name, area with its interval, composition, reference match,
+/// features and their mean ECD; with how the numbers were made.
+fn phase_table(r: &Report) -> String {
+    let mut h = String::new();
     h.push_str("<h2>Phases</h2><table id=\"phases\"><thead><tr><th>id</th><th class=\"l\">phase</th><th>area %</th><th>95 % CI</th><th class=\"l\">composition wt% ± 1σ</th><th class=\"l\">reference match</th><th>features</th><th>mean ECD</th></tr></thead><tbody>\n");
     for p in &r.phases {
         let comp: Vec<String> = r
@@ -710,13 +745,15 @@ pub fn page(r: &Report, extras: &Extras) -> String {
             .and_then(|v| v.as_str())
             .unwrap_or(""))
     );
-    h.push_str("<h2>Area fractions</h2>");
-    h.push_str(&area_bar(r));
-    h.push_str("<h2>Compositions</h2>");
-    h.push_str(&composition_bars(r));
-    if !extras.scatters.is_empty() {
+    h
+}
+
+/// The density plots of the element pairs, with their colour key.
+fn pairs_section(r: &Report, scatters: &[String]) -> String {
+    let mut h = String::new();
+    if !scatters.is_empty() {
         h.push_str("<h2>Counts of the most telling element pairs</h2><div class=\"row\">");
-        for s in &extras.scatters {
+        for s in scatters {
             h.push_str(s);
         }
         h.push_str("</div><p class=\"note\">Each bin takes the colour of the phase most of its pixels belong to, darker with more pixels: ");
@@ -731,6 +768,12 @@ pub fn page(r: &Report, extras: &Extras) -> String {
         }
         h.push_str("<span class=\"sw\" style=\"background:#000\"></span>unassigned.</p>\n");
     }
+    h
+}
+
+/// The BSE contrast check: the plot and what it found.
+fn bse_section(r: &Report) -> String {
+    let mut h = String::new();
     if let Some(svg) = bse_plot(r) {
         h.push_str("<h2>BSE contrast check</h2>");
         h.push_str(&svg);
@@ -745,6 +788,12 @@ pub fn page(r: &Report, extras: &Extras) -> String {
             h.push_str("</ul>");
         }
     }
+    h
+}
+
+/// The X-ray yield across the field: the map and the factor's range, or why there is none.
+fn yield_section(r: &Report) -> String {
+    let mut h = String::new();
     match &r.xray_yield {
         Some(y) if y.applied => {
             h.push_str("<h2>X-ray yield across the field</h2>");
@@ -783,6 +832,12 @@ pub fn page(r: &Report, extras: &Extras) -> String {
         }
         None => {}
     }
+    h
+}
+
+/// How many phases: the BIC curve and the simplifications.
+fn count_section(r: &Report) -> String {
+    let mut h = String::new();
     if let Some(svg) = bic_curve(r) {
         h.push_str("<h2>How many phases</h2>");
         h.push_str(&svg);
@@ -792,20 +847,12 @@ pub fn page(r: &Report, extras: &Extras) -> String {
         }
         h.push_str("</ul>");
     }
-    let list = |h: &mut String, title: &str, items: &[String]| {
-        if items.is_empty() {
-            return;
-        }
-        let _ = write!(h, "<h2>{}</h2><ul class=\"note\">", esc(title));
-        for i in items {
-            let _ = write!(h, "<li>{}</li>", esc(i));
-        }
-        h.push_str("</ul>\n");
-    };
-    list(&mut h, "Beam-physics advice", &r.advisor.messages);
-    list(&mut h, "Notes on the compositions", &r.composition.notes);
-    list(&mut h, "Warnings", &r.warnings);
-    list(&mut h, "Cautions", &r.cautions);
+    h
+}
+
+/// Tool, version, seed, model, input files with their hashes, and the options.
+fn provenance_section(r: &Report) -> String {
+    let mut h = String::new();
     let inputs: Vec<String> = r
         .provenance
         .inputs
@@ -824,14 +871,13 @@ pub fn page(r: &Report, extras: &Extras) -> String {
             m.sha256
         ))
     );
-    list(&mut h, "Inputs", &inputs);
+    note_list(&mut h, "Inputs", &inputs);
     let opts = serde_json::to_string(&r.options).unwrap_or_default();
     let _ = write!(
         h,
         "<p class=\"note\">Options: <code>{}</code></p>",
         esc(&opts)
     );
-    h.push_str("</body></html>\n");
     h
 }
 
