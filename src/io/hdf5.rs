@@ -208,154 +208,38 @@ fn load_inner(
     let mut metadata = FieldMetadata::default();
     metadata_from(path, &root.attrs().map_err(h5err)?, &mut metadata)?;
     let root_datasets = root.datasets().map_err(h5err)?;
-    let root_groups = root.groups().map_err(h5err)?;
-    let mut skipped = Vec::new();
-    let mut maps = Vec::new();
-    let mut bse = None;
-    let mut dims: Option<(usize, usize, String)> = None;
-    let source = |name: &str| format!("{}:/{}", path.display(), name.trim_start_matches('/'));
-
-    let push_map = |maps: &mut Vec<ElementMap>,
-                    dims: &mut Option<(usize, usize, String)>,
-                    name: &str,
-                    h: usize,
-                    w: usize,
-                    counts: Vec<f32>,
-                    element,
-                    line|
-     -> Result<()> {
-        if let Some((w0, h0, first)) = dims {
-            if (*w0, *h0) != (w, h) {
-                return Err(Error::input(
-                    path,
-                    format!("dataset {name} is {w}×{h} but {first} is {w0}×{h0}"),
-                    "all maps of a field must share one size; re-export them together",
-                ));
-            }
-        } else {
-            *dims = Some((w, h, name.to_string()));
-        }
-        maps.push(ElementMap {
-            element,
-            line,
-            counts,
-            source: source(name),
-        });
-        Ok(())
+    let mut found = Found {
+        path,
+        maps: Vec::new(),
+        dims: None,
+        skipped: Vec::new(),
+        bse: None,
     };
-
     if root_datasets.iter().any(|d| d == "maps") {
-        // Layout 2: one 3-D dataset with an `elements` attribute.
-        let ds = file.dataset("maps").map_err(h5err)?;
-        let shape = checked_shape(path, "/maps", &ds, file.file_size(), limits)?;
-        if shape.len() != 3 {
-            return Err(bad(
-                path,
-                format!("dataset /maps has {} dimensions; a 3-D stack (element × height × width) was expected", shape.len()),
-            ));
-        }
-        let attrs = ds.attrs().map_err(h5err)?;
-        metadata_from(path, &attrs, &mut metadata)?;
-        let names: Vec<String> = attrs
-            .get("elements")
-            .and_then(|a| a.as_strings())
-            .map(<[String]>::to_vec)
-            .ok_or_else(|| {
-                bad(
-                    path,
-                    "dataset /maps has no string-array attribute `elements` naming its planes"
-                        .into(),
-                )
-            })?;
-        let lines: Vec<String> = attrs
-            .get("lines")
-            .and_then(|a| a.as_strings())
-            .map(<[String]>::to_vec)
-            .unwrap_or_default();
-        let (n, h, w) = (shape[0] as usize, shape[1] as usize, shape[2] as usize);
-        if names.len() != n {
-            return Err(bad(
-                path,
-                format!(
-                    "attribute `elements` names {} planes but /maps has {n}",
-                    names.len()
-                ),
-            ));
-        }
-        let data = ds.read_f32().map_err(h5err)?;
-        if data.len() != n * h * w {
-            return Err(short(path));
-        }
-        for (i, name) in names.iter().enumerate() {
-            let plane = data[i * h * w..(i + 1) * h * w].to_vec();
-            match parse_map_name(name) {
-                Some((e, line)) => {
-                    let line = lines.get(i).filter(|l| !l.is_empty()).cloned().or(line);
-                    push_map(&mut maps, &mut dims, &format!("maps[{i}] ({name})"), h, w, plane, e, line)?
-                }
-                None => {
-                    return Err(bad(
-                        path,
-                        format!("attribute `elements` entry {i} is `{name}`, not an element symbol (symbols are case-sensitive)"),
-                    ))
-                }
-            }
-        }
+        read_stack_layout(&file, limits, &mut metadata, &mut found)?;
     } else {
-        // Layout 1: a group of 2-D datasets.
-        let (group, prefix) = if root_groups.iter().any(|g| g == "maps") {
+        let group = if root.groups().map_err(h5err)?.iter().any(|g| g == "maps") {
             let g = file.group("maps").map_err(h5err)?;
             metadata_from(path, &g.attrs().map_err(h5err)?, &mut metadata)?;
-            (g, "maps/")
+            Some(g)
         } else {
-            (root, "")
+            None
         };
-        let mut names = group.datasets().map_err(h5err)?;
-        names.sort();
-        let (mut total, mut maps_seen) = (0u64, 0u64);
-        for name in names {
-            let full = format!("{prefix}{name}");
-            if is_bse_name(&name) {
-                bse = Some(full.clone());
-                skipped.push(Skipped {
-                    name: full,
-                    reason: "backscattered-electron image, not an element map".into(),
-                });
-                continue;
-            }
-            let Some((element, line)) = parse_map_name(&name) else {
-                skipped.push(Skipped {
-                    name: full,
-                    reason: super::not_a_map_reason(&name),
-                });
-                continue;
-            };
-            let ds = group.dataset(&name).map_err(h5err)?;
-            let ((h, w), line) = map_dataset(path, &format!("/{full}"), &ds, &file, limits, line)?;
-            total = total.saturating_add((w * h) as u64);
-            maps_seen += 1;
-            super::raster::check_field_budget(path, maps_seen, total, limits)?;
-            let data = ds.read_f32().map_err(h5err)?;
-            if data.len() != h * w {
-                return Err(short(path));
-            }
-            push_map(
-                &mut maps,
-                &mut dims,
-                &format!("/{full}"),
-                h,
-                w,
-                data,
-                element,
-                line,
-            )?;
-        }
+        let prefix = if group.is_some() { "maps/" } else { "" };
+        read_group_layout(&file, group.unwrap_or(root), prefix, limits, &mut found)?;
     }
+    let Found {
+        maps,
+        dims,
+        mut skipped,
+        mut bse,
+        ..
+    } = found;
     if bse.is_none() && root_datasets.iter().any(|d| d == "bse") {
         bse = Some("bse".to_string());
     }
     for d in &root_datasets {
-        let used = d == "maps" || d == "bse" || maps.iter().any(|m| m.source == source(d));
+        let used = d == "maps" || d == "bse" || maps.iter().any(|m| m.source == source_of(path, d));
         if !used && skipped.iter().all(|s| s.name != *d) {
             skipped.push(Skipped {
                 name: d.clone(),
@@ -384,6 +268,160 @@ fn load_inner(
         files: vec![path.to_path_buf()],
         warnings: Vec::new(),
     })
+}
+
+/// `file.h5:/name` for messages and map sources.
+fn source_of(path: &Path, name: &str) -> String {
+    format!("{}:/{}", path.display(), name.trim_start_matches('/'))
+}
+
+/// What the reading of a layout found.
+struct Found<'a> {
+    path: &'a Path,
+    maps: Vec<ElementMap>,
+    /// Width, height and name of the first map: every other must match.
+    dims: Option<(usize, usize, String)>,
+    skipped: Vec<Skipped>,
+    /// The BSE dataset, if one was found with the maps.
+    bse: Option<String>,
+}
+
+impl Found<'_> {
+    /// Adds the map of dataset `name` (`h × w` counts), refusing one of another size.
+    fn push(
+        &mut self,
+        name: &str,
+        (h, w): (usize, usize),
+        counts: Vec<f32>,
+        (element, line): (crate::chem::ElementInfo, Option<String>),
+    ) -> Result<()> {
+        if let Some((w0, h0, first)) = &self.dims {
+            if (*w0, *h0) != (w, h) {
+                return Err(Error::input(
+                    self.path,
+                    format!("dataset {name} is {w}×{h} but {first} is {w0}×{h0}"),
+                    "all maps of a field must share one size; re-export them together",
+                ));
+            }
+        } else {
+            self.dims = Some((w, h, name.to_string()));
+        }
+        self.maps.push(ElementMap {
+            element,
+            line,
+            counts,
+            source: source_of(self.path, name),
+        });
+        Ok(())
+    }
+}
+
+/// Layout 2: one 3-D dataset `/maps` (element × height × width) with an `elements`
+/// attribute naming its planes (and optionally `lines`).
+fn read_stack_layout(
+    file: &File,
+    limits: &Limits,
+    metadata: &mut FieldMetadata,
+    found: &mut Found,
+) -> Result<()> {
+    let path = found.path;
+    let h5err = |e: hdf5_pure::Error| unreadable(path, e);
+    let ds = file.dataset("maps").map_err(h5err)?;
+    let shape = checked_shape(path, "/maps", &ds, file.file_size(), limits)?;
+    if shape.len() != 3 {
+        return Err(bad(
+            path,
+            format!("dataset /maps has {} dimensions; a 3-D stack (element × height × width) was expected", shape.len()),
+        ));
+    }
+    let attrs = ds.attrs().map_err(h5err)?;
+    metadata_from(path, &attrs, metadata)?;
+    let names: Vec<String> = attrs
+        .get("elements")
+        .and_then(|a| a.as_strings())
+        .map(<[String]>::to_vec)
+        .ok_or_else(|| {
+            bad(
+                path,
+                "dataset /maps has no string-array attribute `elements` naming its planes".into(),
+            )
+        })?;
+    let lines: Vec<String> = attrs
+        .get("lines")
+        .and_then(|a| a.as_strings())
+        .map(<[String]>::to_vec)
+        .unwrap_or_default();
+    let (n, h, w) = (shape[0] as usize, shape[1] as usize, shape[2] as usize);
+    if names.len() != n {
+        return Err(bad(
+            path,
+            format!(
+                "attribute `elements` names {} planes but /maps has {n}",
+                names.len()
+            ),
+        ));
+    }
+    let data = ds.read_f32().map_err(h5err)?;
+    if data.len() != n * h * w {
+        return Err(short(path));
+    }
+    for (i, name) in names.iter().enumerate() {
+        let plane = data[i * h * w..(i + 1) * h * w].to_vec();
+        let Some((e, line)) = parse_map_name(name) else {
+            return Err(bad(
+                path,
+                format!("attribute `elements` entry {i} is `{name}`, not an element symbol (symbols are case-sensitive)"),
+            ));
+        };
+        let line = lines.get(i).filter(|l| !l.is_empty()).cloned().or(line);
+        found.push(&format!("maps[{i}] ({name})"), (h, w), plane, (e, line))?;
+    }
+    Ok(())
+}
+
+/// Layout 1: a group (`/maps`, or the root) of 2-D datasets named by element; a `BSE…`
+/// dataset is the BSE image, other names are skipped with the reason.
+fn read_group_layout(
+    file: &File,
+    group: hdf5_pure::Group,
+    prefix: &str,
+    limits: &Limits,
+    found: &mut Found,
+) -> Result<()> {
+    let path = found.path;
+    let h5err = |e: hdf5_pure::Error| unreadable(path, e);
+    let mut names = group.datasets().map_err(h5err)?;
+    names.sort();
+    let (mut total, mut maps_seen) = (0u64, 0u64);
+    for name in names {
+        let full = format!("{prefix}{name}");
+        if is_bse_name(&name) {
+            found.bse = Some(full.clone());
+            found.skipped.push(Skipped {
+                name: full,
+                reason: "backscattered-electron image, not an element map".into(),
+            });
+            continue;
+        }
+        let Some((element, line)) = parse_map_name(&name) else {
+            found.skipped.push(Skipped {
+                name: full,
+                reason: super::not_a_map_reason(&name),
+            });
+            continue;
+        };
+        let ds = group.dataset(&name).map_err(h5err)?;
+        let ((h, w), line) = map_dataset(path, &format!("/{full}"), &ds, file, limits, line)?;
+        total = total.saturating_add((w * h) as u64);
+        maps_seen += 1;
+        super::raster::check_field_budget(path, maps_seen, total, limits)?;
+        let data = ds.read_f32().map_err(h5err)?;
+        if data.len() != h * w {
+            return Err(short(path));
+        }
+        found.push(&format!("/{full}"), (h, w), data, (element, line))?;
+    }
+    Ok(())
 }
 
 /// The element maps of an HDF5 field in the group-of-2-D-datasets layout, opened for
