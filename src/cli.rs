@@ -181,7 +181,7 @@ pub fn map_field(
         bse_file: args.bse.clone(),
         no_bse: args.no_bse,
         bse_pixel_size,
-        max_pixels: args.limits.checked()?.max_pixels,
+        limits: args.limits.checked()?,
         force: args.force,
         stream: crate::run::Stream::Never,
         also_reads: args
@@ -383,7 +383,7 @@ fn fit(
         map: &valid,
         composition: &composition,
         metadata,
-        max_pixels: args.limits.checked()?.max_pixels,
+        limits: args.limits.checked()?,
         force: args.force,
         also_reads: args
             .config
@@ -467,7 +467,7 @@ fn apply(
         bse_file: None,
         no_bse: args.no_bse,
         bse_pixel_size,
-        max_pixels: args.limits.checked()?.max_pixels,
+        limits: args.limits.checked()?,
         force: args.force,
         stream,
         also_reads: vec![("model file", model_path.to_path_buf())],

@@ -47,8 +47,8 @@ pub struct FieldJob<'a> {
     pub no_bse: bool,
     /// BSE pixel size given on the command line.
     pub bse_pixel_size: Option<f64>,
-    /// Decoding limit.
-    pub max_pixels: u64,
+    /// Decoding limits.
+    pub limits: Limits,
     /// Replace a non-empty output folder.
     pub force: bool,
     /// Whether to label the field strip by strip (with a saved model only).
@@ -196,9 +196,7 @@ fn strip_choice(input: &Path, job: &FieldJob) -> Option<Option<usize>> {
         Stream::Never => None,
         Stream::Always(rows) => Some(rows),
         Stream::Auto => {
-            let limits = Limits {
-                max_pixels: job.max_pixels,
-            };
+            let limits = job.limits;
             let big = crate::montage::StreamedField::open(input, &limits).is_ok_and(|f| {
                 (f.width as u64) * (f.height as u64) * (f.lines.len() as u64) > STREAM_ABOVE_VALUES
             });
@@ -223,9 +221,7 @@ struct Inputs {
 /// job: the model's elements, the pixel sizes the BSE check needs.
 fn load_inputs(input: &Path, job: &FieldJob) -> Result<Inputs> {
     let t = crate::profile::stage("load");
-    let limits = Limits {
-        max_pixels: job.max_pixels,
-    };
+    let limits = job.limits;
     let mut field = load_field(input, &limits)?;
     drop(t);
     field.stack.override_metadata(&job.metadata);
@@ -382,9 +378,7 @@ fn process_streamed(
     progress: &mut dyn FnMut(&str),
 ) -> Result<Report> {
     let dir = crate::report::prepare_output(out, job.force)?;
-    let limits = Limits {
-        max_pixels: job.max_pixels,
-    };
+    let limits = job.limits;
     let mut field = crate::montage::StreamedField::open(input, &limits)?;
     field.metadata.override_with(&job.metadata);
     model.check_symbols(&field.symbols(), input)?;
@@ -492,8 +486,8 @@ pub struct FitJob<'a> {
     pub composition: &'a ValidCompositionOptions,
     /// Metadata given on the command line (wins over the fields').
     pub metadata: FieldMetadata,
-    /// Decoding limit.
-    pub max_pixels: u64,
+    /// Decoding limits.
+    pub limits: Limits,
     /// Replace an existing model file.
     pub force: bool,
     /// Other files the command reads (configuration), which the model may not replace.
@@ -518,9 +512,7 @@ pub fn fit_model(
     progress: &mut dyn FnMut(&str),
 ) -> Result<Fitted> {
     check_model_output(inputs, output, job)?;
-    let limits = Limits {
-        max_pixels: job.max_pixels,
-    };
+    let limits = job.limits;
     let mut fields = Vec::new();
     for input in inputs {
         let mut f = load_field(input, &limits)?;
