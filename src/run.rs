@@ -197,12 +197,20 @@ fn strip_choice(input: &Path, job: &FieldJob) -> Option<Option<usize>> {
         Stream::Always(rows) => Some(rows),
         Stream::Auto => {
             let limits = job.limits;
-            let big = crate::montage::StreamedField::open(input, &limits).is_ok_and(|f| {
-                (f.width as u64) * (f.height as u64) * (f.lines.len() as u64) > STREAM_ABOVE_VALUES
-            });
+            let big = crate::montage::StreamedField::open(input, &limits)
+                .is_ok_and(|f| streams_automatically(f.width, f.height, f.lines.len()));
             big.then_some(None)
         }
     }
+}
+
+/// Whether a field of `maps` maps of `width × height` is streamed when the user leaves it
+/// to `apply`: above [`STREAM_ABOVE_VALUES`] values.
+fn streams_automatically(width: usize, height: usize, maps: usize) -> bool {
+    (width as u64)
+        .saturating_mul(height as u64)
+        .saturating_mul(maps as u64)
+        > STREAM_ABOVE_VALUES
 }
 
 /// A field's inputs, loaded and checked.
@@ -807,4 +815,20 @@ pub fn apply_batch(
         kept,
         summary,
     })
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// 2²⁸ values (1 GiB as 32-bit floats) are held whole; one more map or row streams.
+    #[test]
+    fn fields_above_a_gibibyte_of_values_stream() {
+        assert!(!streams_automatically(8192, 8192, 4));
+        assert!(streams_automatically(8192, 8192, 5));
+        assert!(streams_automatically(8192, 8193, 4));
+        assert!(!streams_automatically(2048, 2048, 10));
+        // No overflow on absurd headers.
+        assert!(streams_automatically(usize::MAX, 2, 1));
+    }
 }

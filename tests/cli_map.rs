@@ -407,3 +407,61 @@ fn calibrated_map_reports_compositions_names_and_advice() {
     assert!(r.stdout.contains("k-factors calibrated on"));
     assert!(r.stdout.contains("beam-physics advice"));
 }
+
+/// `--calibrate ID=El:wt,...`: a phase chosen by its id and given as mass fractions in
+/// percent. The ids come from an uncalibrated run of the same field (the labels do not
+/// depend on the compositions); Cu6Sn5 is Cu 39.11, Sn 60.89 wt% and Ag3Sn Ag 73.16,
+/// Sn 26.84 wt% (from the formulas with standard atomic weights). Calibrated so, the
+/// Cu3Sn phase must read Cu 61.63 wt% within 3σ, as with the library names above.
+#[test]
+fn calibration_by_phase_id_and_mass_fractions() {
+    let tmp = tempfile::tempdir().unwrap();
+    let plain = tmp.path().join("plain");
+    let r = modalmap(&["map", &sample(), "-o", s(&plain), "--quiet", "--no-bse"]);
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    let id_of = |name: &str| -> String {
+        report(&plain)["phases"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .find(|p| p["name"].as_str().unwrap().starts_with(name))
+            .unwrap_or_else(|| panic!("{name} not found"))["id"]
+            .to_string()
+    };
+    let (eta, ag3sn) = (id_of("Cu6Sn5"), id_of("Ag3Sn"));
+    let out = tmp.path().join("out");
+    let r = modalmap(&[
+        "map",
+        &sample(),
+        "-o",
+        s(&out),
+        "--quiet",
+        "--no-bse",
+        "--calibrate",
+        &format!("{eta}=Cu:39.11,Sn:60.89"),
+        "--calibrate",
+        &format!("{ag3sn}=Ag:73.16,Sn:26.84"),
+    ]);
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    let rep = report(&out);
+    assert_eq!(rep["composition"]["basis"], "calibrated");
+    let ids: Vec<String> = rep["composition"]["calibration"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|c| c["id"].to_string())
+        .collect();
+    assert_eq!(ids, vec![eta, ag3sn]);
+    let cu3sn = rep["phases"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .find(|p| p["name"].as_str().unwrap().starts_with("Cu3Sn"))
+        .unwrap()
+        .clone();
+    let (cu, sd) = (
+        cu3sn["composition_wt"]["Cu"].as_f64().unwrap(),
+        cu3sn["composition_wt_sd"]["Cu"].as_f64().unwrap(),
+    );
+    assert!(sd > 0.0 && (cu - 61.63).abs() < 3.0 * sd, "{cu} ± {sd}");
+}
