@@ -852,47 +852,83 @@ fn far_pairs(ends: &[Vec<f64>]) -> Vec<bool> {
     far
 }
 
-/// Poisson log-likelihood (without the Σ ln x! term) of counts `row` under the best
-/// mixture t·a + (1 − t)·b with a the majority, t ∈ [½, 1], or `None` when the best is
-/// t = 1 (pure a, which the caller has already scored). The log-likelihood is concave in
-/// t, so its slope g′(t) = Σ x(a − b)/m − Σ(a − b) decides: g′(1) ≥ 0 means pure a; else
-/// the maximum is where the slope vanishes, found by bisection, with one evaluation.
-fn mix_score(row: &[f32], a: &[f64], b: &[f64]) -> Option<f64> {
-    let slope = |t: f64| -> f64 {
-        row.iter()
-            .zip(a.iter().zip(b))
-            .map(|(&x, (&pa, &pb))| {
-                let m = (t * pa + (1.0 - t) * pb).max(1e-3);
-                (f64::from(x) / m - 1.0) * (pa - pb)
+/// Counts `x` (by element) under the mixtures t·a + (1 − t)·b of two endpoints: the
+/// Poisson log-likelihood (without the Σ ln x! term) is concave in t, so its slope
+/// g′(t) = Σ x(a − b)/m − Σ(a − b) locates the best t.
+struct Mixture<'a, X: Fn(usize) -> f64> {
+    x: X,
+    a: &'a [f64],
+    b: &'a [f64],
+}
+
+impl<X: Fn(usize) -> f64> Mixture<'_, X> {
+    #[inline]
+    fn mean(&self, t: f64, e: usize) -> f64 {
+        (t * self.a[e] + (1.0 - t) * self.b[e]).max(1e-3)
+    }
+
+    #[inline]
+    fn slope(&self, t: f64) -> f64 {
+        (0..self.a.len())
+            .map(|e| ((self.x)(e) / self.mean(t, e) - 1.0) * (self.a[e] - self.b[e]))
+            .sum()
+    }
+
+    #[inline]
+    fn log_likelihood(&self, t: f64) -> f64 {
+        (0..self.a.len())
+            .map(|e| {
+                let m = self.mean(t, e);
+                (self.x)(e) * m.ln() - m
             })
             .sum()
-    };
-    if slope(1.0) >= 0.0 {
-        return None;
     }
-    let t = if slope(0.5) <= 0.0 {
-        0.5
-    } else {
-        let (mut lo, mut hi) = (0.5, 1.0);
+
+    /// Where the slope vanishes between `lo` (slope > 0) and `hi` (slope < 0): twelve
+    /// bisections.
+    fn root(&self, lo: f64, hi: f64) -> f64 {
+        let (mut l, mut r) = (lo, hi);
         for _ in 0..12 {
-            let mid = 0.5 * (lo + hi);
-            if slope(mid) > 0.0 {
-                lo = mid;
+            let m = 0.5 * (l + r);
+            if self.slope(m) > 0.0 {
+                l = m;
             } else {
-                hi = mid;
+                r = m;
             }
         }
-        0.5 * (lo + hi)
+        0.5 * (l + r)
+    }
+
+    /// The best t in [lo, hi].
+    fn argmax(&self, lo: f64, hi: f64) -> f64 {
+        if self.slope(hi) >= 0.0 {
+            hi
+        } else if self.slope(lo) <= 0.0 {
+            lo
+        } else {
+            self.root(lo, hi)
+        }
+    }
+}
+
+/// The log-likelihood of counts `row` under the best mixture t·a + (1 − t)·b with a the
+/// majority, t ∈ [½, 1], or `None` when the best is t = 1 (pure a, which the caller has
+/// already scored).
+fn mix_score(row: &[f32], a: &[f64], b: &[f64]) -> Option<f64> {
+    let m = Mixture {
+        x: |e: usize| f64::from(row[e]),
+        a,
+        b,
     };
-    Some(
-        row.iter()
-            .zip(a.iter().zip(b))
-            .map(|(&x, (&pa, &pb))| {
-                let m = (t * pa + (1.0 - t) * pb).max(1e-3);
-                f64::from(x) * m.ln() - m
-            })
-            .sum(),
-    )
+    if m.slope(1.0) >= 0.0 {
+        return None;
+    }
+    let t = if m.slope(0.5) <= 0.0 {
+        0.5
+    } else {
+        m.root(0.5, 1.0)
+    };
+    Some(m.log_likelihood(t))
 }
 
 /// Limit on unmixing sweeps (each moves a boundary by at most a pixel).
@@ -968,44 +1004,18 @@ fn unmix_boundaries(
     changes.iter().sum()
 }
 
-/// The Poisson log-likelihoods (without the Σ ln x! term) of counts `x` under the best
-/// mixture t·a + (1 − t)·b with a in the majority (t ∈ [½, 1]) and with b in the majority
-/// (t ∈ [0, ½]). The log-likelihood is concave in t; its maximum on each side is found by
-/// bisection on its slope.
+/// The log-likelihoods of counts `x` under the best mixture t·a + (1 − t)·b with a in the
+/// majority (t ∈ [½, 1]) and with b in the majority (t ∈ [0, ½]).
 fn majority_scores(x: &[f64], pa: &[f64], pb: &[f64]) -> (f64, f64) {
-    let mix = |t: f64, e: usize| (t * pa[e] + (1.0 - t) * pb[e]).max(1e-3);
-    let slope = |t: f64| -> f64 {
-        (0..x.len())
-            .map(|e| (x[e] / mix(t, e) - 1.0) * (pa[e] - pb[e]))
-            .sum()
+    let m = Mixture {
+        x: |e: usize| x[e],
+        a: pa,
+        b: pb,
     };
-    let g = |t: f64| -> f64 {
-        (0..x.len())
-            .map(|e| x[e] * mix(t, e).ln() - mix(t, e))
-            .sum()
-    };
-    let argmax = |lo: f64, hi: f64| -> f64 {
-        if slope(hi) >= 0.0 {
-            return hi;
-        }
-        if slope(lo) <= 0.0 {
-            return lo;
-        }
-        let (mut l, mut r) = (lo, hi);
-        for _ in 0..12 {
-            let m = 0.5 * (l + r);
-            if slope(m) > 0.0 {
-                l = m;
-            } else {
-                r = m;
-            }
-        }
-        0.5 * (l + r)
-    };
-    if slope(0.5) < 0.0 {
-        (g(0.5), g(argmax(0.0, 0.5)))
+    if m.slope(0.5) < 0.0 {
+        (m.log_likelihood(0.5), m.log_likelihood(m.argmax(0.0, 0.5)))
     } else {
-        (g(argmax(0.5, 1.0)), g(0.5))
+        (m.log_likelihood(m.argmax(0.5, 1.0)), m.log_likelihood(0.5))
     }
 }
 
