@@ -146,8 +146,12 @@ fn background_none_leaves_the_continuum_in_the_compositions() {
     };
     let (a, b) = (absent(&ferrite(&with)), absent(&ferrite(&without)));
     println!("wt% of absent elements in ferrite: {a:.2} with the background, {b:.2} without");
+    // The forward model puts a continuum of 0.03–0.04 counts per unit Z under the C, O,
+    // Al, S and Cr maps (tests/support/scenarios.rs): with ferrite's Z of 26, 0.8–1.0
+    // counts each, 4.3 in all, against about 66 counts over every map: 6.5 % of the
+    // counts read as absent elements with unit k-factors; the threshold is half of that.
     assert!(
-        b > a + 2.0,
+        b > a + 3.0,
         "without the background the ferrite should carry its continuum as C, O, Al, S and \
          Cr: {b:.2} wt% vs {a:.2} wt%"
     );
@@ -275,7 +279,12 @@ fn a_failed_write_exits_4_and_leaves_no_output() {
         .unwrap();
     let err = String::from_utf8_lossy(&r.stderr);
     assert_eq!(r.status.code(), Some(4), "{err}");
-    assert!(err.contains("out"), "the message names no output: {err}");
+    // The file that could not be written, in the run's working folder beside OUT, and why.
+    let named = tmp.path().join(".out.modalmap-tmp-");
+    assert!(
+        err.contains(named.to_str().unwrap()) && err.contains("could not be written"),
+        "the message names no output file: {err}"
+    );
     assert!(!err.contains("internal error"), "{err}");
     assert!(!out.exists(), "a half-written output was left: {out:?}");
     let left: Vec<_> = std::fs::read_dir(tmp.path()).unwrap().collect();
