@@ -20,8 +20,7 @@
 use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
 
-use rand::{Rng, SeedableRng};
-use rand_chacha::ChaCha8Rng;
+use rand::Rng;
 use serde::{Deserialize, Serialize};
 
 use crate::cluster::Clusters;
@@ -277,7 +276,7 @@ pub fn training_stack(
     }
     let gap = GAP_PX.div_ceil(bin) * bin;
     let width = n * ww + (n - 1) * gap;
-    let mut rng = ChaCha8Rng::seed_from_u64(seed ^ 0x6669_7421);
+    let mut rng = crate::cluster::Seed(seed).windows();
     let windows: Vec<[usize; 4]> = fields
         .iter()
         .map(|(_, s)| {

@@ -380,8 +380,8 @@ impl<'a> Model<'a> {
         let (d, k) = (f.dims, clusters.k());
         let st = f.transform.params().stabilise;
         let empty_fraction = f.empty_fraction;
-        let (space, empty_counts, empty_log_norm) = match clusters {
-            Clusters::Poisson { .. } => (
+        let (space, empty_counts, empty_log_norm) = if clusters.on_counts() {
+            (
                 Space::Counts,
                 // A pore still picks up a little: stray and scattered X-rays (common
                 // practice, no source: 0.05 counts per pixel and element).
@@ -391,19 +391,18 @@ impl<'a> Model<'a> {
                 } else {
                     0.0
                 },
-            ),
-            _ => {
-                let var = clusters.noise_variance().max(1e-6);
-                (
-                    Space::Transformed(st, var),
-                    vec![0.0; d],
-                    if p.smoothing == 0.0 {
-                        empty_fraction.ln()
-                    } else {
-                        0.0
-                    } - 0.5 * d as f64 * (2.0 * std::f64::consts::PI * var).ln(),
-                )
-            }
+            )
+        } else {
+            let var = clusters.noise_variance().max(1e-6);
+            (
+                Space::Transformed(st, var),
+                vec![0.0; d],
+                if p.smoothing == 0.0 {
+                    empty_fraction.ln()
+                } else {
+                    0.0
+                } - 0.5 * d as f64 * (2.0 * std::f64::consts::PI * var).ln(),
+            )
         };
         let fs = FullScorer {
             inner: clusters.scorer(p.smoothing == 0.0),

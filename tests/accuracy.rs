@@ -243,8 +243,10 @@ fn obvious(field: &SynthField, gmm: bool) -> Vec<u16> {
             n_init: 1,
             max_iter: 300,
             tol: 1e-4,
-            seed: 0,
-        },
+        }
+        .check()
+        .unwrap(),
+        modalmap::cluster::Seed(0),
     );
     let labels = km.predict(&x);
     let labels = if gmm {
@@ -257,7 +259,9 @@ fn obvious(field: &SynthField, gmm: bool) -> Vec<u16> {
                 max_iter: 100,
                 tol: 1e-3,
                 reg_covar: 1e-6,
-            },
+            }
+            .check()
+            .unwrap(),
         )
         .unwrap();
         model.predict(&x)

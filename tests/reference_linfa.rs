@@ -72,8 +72,10 @@ fn kmeans_matches_linfa() {
             n_init: 4,
             max_iter: 300,
             tol: 1e-6,
-            seed: 5,
-        },
+        }
+        .check()
+        .unwrap(),
+        modalmap::cluster::Seed(5),
     );
     let ds = DatasetBase::from(arr.clone());
     let theirs = LinfaKMeans::params(4)
@@ -107,8 +109,10 @@ fn gaussian_mixture_matches_linfa() {
             n_init: 4,
             max_iter: 300,
             tol: 1e-6,
-            seed: 5,
-        },
+        }
+        .check()
+        .unwrap(),
+        modalmap::cluster::Seed(5),
     );
     let ours = gmm::fit(
         &rows,
@@ -119,7 +123,9 @@ fn gaussian_mixture_matches_linfa() {
             max_iter: 500,
             tol: 1e-8,
             reg_covar: 1e-6,
-        },
+        }
+        .check()
+        .unwrap(),
     )
     .unwrap();
     let ds = DatasetBase::from(arr.clone());

@@ -14,6 +14,8 @@ use serde::{Deserialize, Serialize};
 
 use super::kmeans::CHUNK_ROWS;
 use super::lanes::{self, Lane, LANES};
+use super::model::{check_iterations, Checked, FitOptions, PhaseModel, Scoring};
+use super::Method;
 
 /// Options of an EM fit.
 #[derive(Debug, Clone, Copy, PartialEq)]
@@ -26,6 +28,35 @@ pub struct GmmParams {
     pub tol: f64,
     /// Added to every covariance diagonal.
     pub reg_covar: f64,
+}
+
+impl GmmParams {
+    /// The options the phase models use: 200 iterations, tolerance 10⁻⁴ in mean
+    /// log-likelihood per row, 10⁻³ added to each covariance diagonal (common practice,
+    /// no source; scikit-learn's defaults are 100, 10⁻³ and 10⁻⁶, for unscaled data).
+    pub fn new(k: usize) -> GmmParams {
+        GmmParams {
+            k,
+            max_iter: 200,
+            tol: 1e-4,
+            reg_covar: 1e-3,
+        }
+    }
+
+    /// Checks every rule: at least one component, a non-negative finite regularisation.
+    pub fn check(self) -> Result<Checked<GmmParams>, String> {
+        if self.k == 0 {
+            return Err("a Gaussian mixture needs at least one component".into());
+        }
+        check_iterations(self.max_iter, self.tol)?;
+        if !(self.reg_covar.is_finite() && self.reg_covar >= 0.0) {
+            return Err(format!(
+                "the covariance regularisation {} is not a non-negative number",
+                self.reg_covar
+            ));
+        }
+        Ok(Checked(self))
+    }
 }
 
 /// A fitted mixture.
@@ -364,7 +395,7 @@ pub fn fit(
     data: &[f32],
     d: usize,
     labels: &[u16],
-    p: &GmmParams,
+    p: &Checked<GmmParams>,
 ) -> Result<GaussianMixture, GmmError> {
     let k = p.k;
     let n = (data.len() / d) as f64;
@@ -400,6 +431,125 @@ pub fn fit(
     }
     g.mean_log_likelihood = g.score(data);
     Ok(g)
+}
+
+/// The Gaussian-mixture phases a field is labelled with.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Phases {
+    /// The mixture.
+    pub model: GaussianMixture,
+}
+
+impl PhaseModel for Phases {
+    const METHOD: Method = Method::Gmm;
+    type Scorer<'a> = &'a GaussianMixture;
+
+    fn k(&self) -> usize {
+        self.model.k
+    }
+    fn d(&self) -> usize {
+        self.model.d
+    }
+    fn means(&self) -> &[f64] {
+        &self.model.means
+    }
+    fn weights(&self) -> Option<&[f64]> {
+        Some(&self.model.weights)
+    }
+    fn on_counts(&self) -> bool {
+        false
+    }
+    fn check_own(&self) -> Result<(), String> {
+        let (k, d) = (self.model.k, self.model.d);
+        super::check_weights(&self.model.weights, k)?;
+        super::check_len("means", &self.model.means, k * d)?;
+        super::check_len("covariances", &self.model.covariances, k * d * d)
+    }
+    fn refresh(&mut self) -> Result<(), String> {
+        self.model.refresh().map_err(|e| e.to_string())
+    }
+    fn with_mean(&self, c: usize, mean: &[f64]) -> Self {
+        let d = self.model.d;
+        let mut out = self.clone();
+        out.model.means[c * d..(c + 1) * d].copy_from_slice(mean);
+        out.model.refresh().expect("covariances unchanged");
+        out
+    }
+    fn without(&self, c: usize) -> Self {
+        let (m, d) = (&self.model, self.model.d);
+        let mut out = m.clone();
+        out.weights = super::renormalised(super::drop_rows(&m.weights, c, 1));
+        out.means = super::drop_rows(&m.means, c, d);
+        out.covariances = super::drop_rows(&m.covariances, c, d * d);
+        out.k -= 1;
+        out.refresh().expect("the remaining covariances were valid");
+        Phases { model: out }
+    }
+    /// The pooled weight, mean and covariance (within plus between the two).
+    fn merged(&self, a: usize, b: usize) -> Self {
+        let (g, d) = (&self.model, self.model.d);
+        let mut m = g.clone();
+        let (wa, wb) = (g.weights[a], g.weights[b]);
+        let w = wa + wb;
+        let mean: Vec<f64> = (0..d)
+            .map(|j| (wa * g.means[a * d + j] + wb * g.means[b * d + j]) / w)
+            .collect();
+        for i in 0..d {
+            for j in 0..d {
+                let da = (g.means[a * d + i] - mean[i]) * (g.means[a * d + j] - mean[j]);
+                let db = (g.means[b * d + i] - mean[i]) * (g.means[b * d + j] - mean[j]);
+                m.covariances[a * d * d + i * d + j] = (wa
+                    * (g.covariances[a * d * d + i * d + j] + da)
+                    + wb * (g.covariances[b * d * d + i * d + j] + db))
+                    / w;
+            }
+        }
+        m.means[a * d..(a + 1) * d].copy_from_slice(&mean);
+        m.weights[a] = w;
+        m.weights[b] = 0.0;
+        Phases { model: m }.without(b)
+    }
+    /// The weighted mean of the covariance diagonals.
+    fn noise_variance(&self) -> f64 {
+        let (g, d) = (&self.model, self.model.d);
+        (0..g.k)
+            .map(|c| {
+                let diag: f64 = (0..d).map(|i| g.covariances[c * d * d + i * d + i]).sum();
+                g.weights[c] * diag / d as f64
+            })
+            .sum()
+    }
+    fn scorer(&self) -> &GaussianMixture {
+        &self.model
+    }
+    /// EM from the partition.
+    fn fit_from_partition(
+        rows: &[f32],
+        d: usize,
+        start: &[u16],
+        k: usize,
+        _options: &FitOptions,
+        _rng: &mut rand_chacha::ChaCha8Rng,
+    ) -> Result<Self, String> {
+        let p = GmmParams::new(k).check()?;
+        let model = fit(rows, d, start, &p).map_err(|e| e.to_string())?;
+        Ok(Phases { model })
+    }
+}
+
+impl Scoring for GaussianMixture {
+    #[inline]
+    fn score(&self, c: usize, row: &[f32]) -> f64 {
+        self.weighted_log_density(c, row)
+    }
+    #[inline]
+    fn score_block(&self, xt: &[Lane], out: &mut [[f64; LANES]]) {
+        self.weighted_log_density_block(xt, out)
+    }
+    #[inline]
+    fn discrepancy(&self, c: usize, row: &[f32]) -> f64 {
+        f64::from(self.mahalanobis2(c, row))
+    }
 }
 
 #[cfg(test)]
@@ -451,7 +601,9 @@ mod tests {
                 max_iter: 100,
                 tol: 1e-8,
                 reg_covar: 1e-6,
-            },
+            }
+            .check()
+            .unwrap(),
         )
         .unwrap();
         assert!((g.weights[1] - 1.0 / 3.0).abs() < 0.02, "{:?}", g.weights);

@@ -5,12 +5,14 @@
 //! and combined in chunk order, so the result is the same whatever the thread count.
 
 use rand::seq::index::sample as sample_indices;
-use rand::{Rng, SeedableRng};
+use rand::Rng;
 use rand_chacha::ChaCha8Rng;
 use rayon::prelude::*;
 use serde::{Deserialize, Serialize};
 
-use super::lanes;
+use super::lanes::{self, Lane, LANES};
+use super::model::{check_iterations, Checked, FitOptions, PhaseModel, Scoring, Seed};
+use super::Method;
 
 /// Rows per parallel work unit. Fixed, so reductions do not depend on the thread count.
 pub const CHUNK_ROWS: usize = 4096;
@@ -27,8 +29,31 @@ pub struct KMeansParams {
     /// Stop when the summed squared centre shift falls below `tol` × the mean feature
     /// variance (the convention of scikit-learn's KMeans).
     pub tol: f64,
-    /// Seed of every random choice.
-    pub seed: u64,
+}
+
+impl KMeansParams {
+    /// The options of a fit from a partition or from k-means++ seeds, as the phase
+    /// models use them: 300 iterations, tolerance 10⁻⁴ (scikit-learn's defaults).
+    pub fn new(k: usize, n_init: usize) -> KMeansParams {
+        KMeansParams {
+            k,
+            n_init,
+            max_iter: 300,
+            tol: 1e-4,
+        }
+    }
+
+    /// Checks every rule: at least one cluster and one restart, a finite tolerance.
+    pub fn check(self) -> Result<Checked<KMeansParams>, String> {
+        if self.k == 0 || self.n_init == 0 {
+            return Err(format!(
+                "k-means with {} clusters and {} restarts; both must be at least 1",
+                self.k, self.n_init
+            ));
+        }
+        check_iterations(self.max_iter, self.tol)?;
+        Ok(Checked(self))
+    }
 }
 
 /// A fitted k-means model.
@@ -227,14 +252,11 @@ fn lloyd(
 }
 
 /// Fits k-means to `data` (`n × d` rows). `n` must be at least `k`.
-pub fn fit(data: &[f32], d: usize, p: &KMeansParams) -> KMeans {
+pub fn fit(data: &[f32], d: usize, p: &Checked<KMeansParams>, seed: Seed) -> KMeans {
     let tol = p.tol * mean_variance(data, d);
     let mut best: Option<KMeans> = None;
-    for run in 0..p.n_init.max(1) {
-        let mut rng = ChaCha8Rng::seed_from_u64(
-            p.seed
-                .wrapping_add((run as u64).wrapping_mul(0x9E37_79B9_7F4A_7C15)),
-        );
+    for run in 0..p.n_init {
+        let mut rng = seed.restart(run);
         let init = kmeans_plus_plus(data, d, p.k, &mut rng);
         let m = lloyd(data, d, init, p, tol, &mut rng);
         if best.as_ref().is_none_or(|b| m.inertia < b.inertia) {
@@ -245,12 +267,17 @@ pub fn fit(data: &[f32], d: usize, p: &KMeansParams) -> KMeans {
 }
 
 /// Runs Lloyd's iterations from the given centres (`k × d`, `p.k` rows); `p.n_init` is
-/// not used. An emptied cluster restarts on a row drawn with `p.seed`.
-pub fn fit_from(data: &[f32], d: usize, centres: Vec<f32>, p: &KMeansParams) -> KMeans {
+/// not used. An emptied cluster restarts on a row drawn from `rng`.
+pub fn fit_from(
+    data: &[f32],
+    d: usize,
+    centres: Vec<f32>,
+    p: &Checked<KMeansParams>,
+    rng: &mut ChaCha8Rng,
+) -> KMeans {
     debug_assert_eq!(centres.len(), p.k * d);
     let tol = p.tol * mean_variance(data, d);
-    let mut rng = ChaCha8Rng::seed_from_u64(p.seed);
-    lloyd(data, d, centres, p, tol, &mut rng)
+    lloyd(data, d, centres, p, tol, rng)
 }
 
 impl KMeans {
@@ -277,19 +304,162 @@ impl KMeans {
 }
 
 /// A seeded subset of `n` row indices of size at most `max`, in ascending order.
-pub fn sample_rows(n: usize, max: usize, seed: u64) -> Vec<usize> {
+pub fn sample_rows(n: usize, max: usize, seed: Seed) -> Vec<usize> {
     if n <= max {
         return (0..n).collect();
     }
-    let mut rng = ChaCha8Rng::seed_from_u64(seed ^ 0x005A_3B1E);
-    let mut idx = sample_indices(&mut rng, n, max).into_vec();
+    let mut idx = sample_indices(&mut seed.sampling(), n, max).into_vec();
     idx.sort_unstable();
     idx
+}
+
+/// The k-means phases a field is labelled with: the centroids, and one isotropic noise
+/// variance for every cluster (the pooled within-cluster variance), which makes the
+/// distances scores.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Phases {
+    /// The centroids.
+    pub model: KMeans,
+    /// Per-dimension noise variance.
+    pub variance: f64,
+}
+
+impl PhaseModel for Phases {
+    const METHOD: Method = Method::Kmeans;
+    type Scorer<'a> = Scorer;
+
+    fn k(&self) -> usize {
+        self.model.k
+    }
+    fn d(&self) -> usize {
+        self.model.d
+    }
+    fn means(&self) -> &[f64] {
+        &self.model.centroids
+    }
+    fn weights(&self) -> Option<&[f64]> {
+        None
+    }
+    fn on_counts(&self) -> bool {
+        false
+    }
+    fn check_own(&self) -> Result<(), String> {
+        super::check_len(
+            "centroids",
+            &self.model.centroids,
+            self.model.k * self.model.d,
+        )?;
+        if !(self.variance.is_finite() && self.variance > 0.0) {
+            return Err(format!(
+                "the noise variance is {}, not positive",
+                self.variance
+            ));
+        }
+        Ok(())
+    }
+    fn refresh(&mut self) -> Result<(), String> {
+        Ok(())
+    }
+    fn with_mean(&self, c: usize, mean: &[f64]) -> Self {
+        let d = self.model.d;
+        let mut out = self.clone();
+        out.model.centroids[c * d..(c + 1) * d].copy_from_slice(mean);
+        out
+    }
+    fn without(&self, c: usize) -> Self {
+        let mut out = self.clone();
+        out.model.centroids = super::drop_rows(&self.model.centroids, c, self.model.d);
+        out.model.k -= 1;
+        out
+    }
+    fn merged(&self, a: usize, b: usize) -> Self {
+        let d = self.model.d;
+        let mut out = self.clone();
+        for j in 0..d {
+            out.model.centroids[a * d + j] =
+                0.5 * (self.model.centroids[a * d + j] + self.model.centroids[b * d + j]);
+        }
+        out.without(b)
+    }
+    fn noise_variance(&self) -> f64 {
+        self.variance
+    }
+    fn scorer(&self) -> Scorer {
+        let var = self.variance.max(1e-12);
+        let d = self.model.d as f64;
+        Scorer {
+            centres: self.model.centres_f32(),
+            d: self.model.d,
+            inv_var: (1.0 / var) as f32,
+            log_norm: -(self.model.k as f64).ln()
+                - 0.5 * d * (2.0 * std::f64::consts::PI * var).ln(),
+        }
+    }
+    /// Lloyd's iterations from the mean features of each part of the partition.
+    fn fit_from_partition(
+        rows: &[f32],
+        d: usize,
+        start: &[u16],
+        k: usize,
+        options: &FitOptions,
+        rng: &mut ChaCha8Rng,
+    ) -> Result<Self, String> {
+        let mut size = vec![0.0f64; k];
+        let mut sums = vec![0.0f64; k * d];
+        for (row, &c) in rows.chunks_exact(d).zip(start) {
+            size[usize::from(c)] += 1.0;
+            for (s, &x) in sums[usize::from(c) * d..].iter_mut().zip(row) {
+                *s += f64::from(x);
+            }
+        }
+        let mut centres = vec![0.0f32; k * d];
+        for c in 0..k {
+            for t in 0..d {
+                centres[c * d + t] = (sums[c * d + t] / size[c].max(1.0)) as f32;
+            }
+        }
+        let p = KMeansParams::new(k, options.n_init).check()?;
+        let model = fit_from(rows, d, centres, &p, rng);
+        let variance = model.inertia / (start.len() * d) as f64;
+        Ok(Phases { model, variance })
+    }
+}
+
+/// Scores of a k-means model: an isotropic Gaussian of the pooled variance around each
+/// centroid, with equal weights.
+pub struct Scorer {
+    centres: Vec<f32>,
+    d: usize,
+    inv_var: f32,
+    log_norm: f64,
+}
+
+impl Scoring for Scorer {
+    #[inline]
+    fn score(&self, c: usize, row: &[f32]) -> f64 {
+        self.log_norm - 0.5 * self.discrepancy(c, row)
+    }
+    #[inline]
+    fn score_block(&self, xt: &[Lane], out: &mut [[f64; LANES]]) {
+        let d = self.d;
+        for (c, o) in out[..self.centres.len() / d].iter_mut().enumerate() {
+            let e = lanes::dist2(xt, &self.centres[c * d..(c + 1) * d]);
+            for l in 0..LANES {
+                o[l] = self.log_norm - 0.5 * f64::from(e[l] * self.inv_var);
+            }
+        }
+    }
+    #[inline]
+    fn discrepancy(&self, c: usize, row: &[f32]) -> f64 {
+        let d = self.d;
+        f64::from(dist2(row, &self.centres[c * d..(c + 1) * d]) * self.inv_var)
+    }
 }
 
 #[cfg(test)]
 mod tests {
     use super::*;
+    use rand::SeedableRng;
     use rand_distr::{Distribution, Normal};
 
     pub(crate) fn blobs(centres: &[[f32; 2]], per: usize, sd: f32, seed: u64) -> Vec<f32> {
@@ -317,8 +487,10 @@ mod tests {
                 n_init: 3,
                 max_iter: 100,
                 tol: 1e-6,
-                seed: 9,
-            },
+            }
+            .check()
+            .unwrap(),
+            Seed(9),
         );
         for c in centres {
             let near = m.centroids.chunks(2).any(|m| {
@@ -341,27 +513,28 @@ mod tests {
             n_init: 2,
             max_iter: 50,
             tol: 1e-8,
-            seed: 4,
-        };
+        }
+        .check()
+        .unwrap();
         let one = rayon::ThreadPoolBuilder::new()
             .num_threads(1)
             .build()
             .unwrap()
-            .install(|| fit(&data, 2, &p));
+            .install(|| fit(&data, 2, &p, Seed(4)));
         let four = rayon::ThreadPoolBuilder::new()
             .num_threads(4)
             .build()
             .unwrap()
-            .install(|| fit(&data, 2, &p));
+            .install(|| fit(&data, 2, &p, Seed(4)));
         assert_eq!(one, four);
     }
 
     #[test]
     fn sample_rows_is_seeded_sorted_and_unique() {
-        let a = sample_rows(1000, 100, 5);
-        assert_eq!(a, sample_rows(1000, 100, 5));
-        assert_ne!(a, sample_rows(1000, 100, 6));
+        let a = sample_rows(1000, 100, Seed(5));
+        assert_eq!(a, sample_rows(1000, 100, Seed(5)));
+        assert_ne!(a, sample_rows(1000, 100, Seed(6)));
         assert!(a.windows(2).all(|w| w[0] < w[1]));
-        assert_eq!(sample_rows(50, 100, 5), (0..50).collect::<Vec<_>>());
+        assert_eq!(sample_rows(50, 100, Seed(5)), (0..50).collect::<Vec<_>>());
     }
 }

@@ -7,6 +7,11 @@
 //! applied to every pixel in one pass (`refine`). The per-pixel distances run a block of
 //! pixels at a time ([`lanes`]), tested bit for bit against the one-row versions.
 //!
+//! Each method is one file ([`kmeans`], [`gmm`], [`poisson`]) implementing
+//! [`PhaseModel`]; this file registers them: [`Method`], [`Clusters`] and [`ScorerKind`]
+//! each list them once, and [`each_method!`] dispatches to them. A new method is its own
+//! file plus a line in each of those lists.
+//!
 //! The kernels are our own (a measurement showed linfa 8–17× slower than scikit-learn on
 //! this problem; see notebooks-free-docs/architecture.md); tests compare them with
 //! linfa-clustering as the reference.
@@ -14,14 +19,17 @@
 pub mod gmm;
 pub mod kmeans;
 pub mod lanes;
+pub mod model;
 pub mod poisson;
 pub mod select;
 pub mod simplify;
 
+use rand_chacha::ChaCha8Rng;
 use serde::{Deserialize, Serialize};
 
 pub use gmm::GaussianMixture;
 pub use kmeans::KMeans;
+pub use model::{FitOptions, PhaseModel, Scoring, Seed};
 pub use poisson::PoissonMixture;
 
 /// Clustering method.
@@ -45,48 +53,107 @@ impl Method {
             Method::Gmm => "Gaussian mixture",
         }
     }
+
+    /// Fits this method's model with `k` phases on `rows`, started from their hard
+    /// partition `start` (values `< k`).
+    pub fn fit_from_partition(
+        self,
+        rows: &[f32],
+        d: usize,
+        start: &[u16],
+        k: usize,
+        options: &FitOptions,
+        rng: &mut ChaCha8Rng,
+    ) -> Result<Clusters, String> {
+        Ok(match self {
+            Method::Poisson => Clusters::Poisson(PhaseModel::fit_from_partition(
+                rows, d, start, k, options, rng,
+            )?),
+            Method::Kmeans => Clusters::Kmeans(PhaseModel::fit_from_partition(
+                rows, d, start, k, options, rng,
+            )?),
+            Method::Gmm => Clusters::Gmm(PhaseModel::fit_from_partition(
+                rows, d, start, k, options, rng,
+            )?),
+        })
+    }
 }
 
-/// A fitted model that scores pixels against phases.
+/// A fitted model that scores pixels against phases. Saved as the method's name beside
+/// its model's fields (`{"method": "poisson", "model": {…}}`).
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 #[serde(tag = "method", rename_all = "snake_case")]
 pub enum Clusters {
     /// k-means centroids with one isotropic noise variance for every cluster.
-    Kmeans {
-        /// The centroids.
-        model: KMeans,
-        /// Per-dimension noise variance (pooled within-cluster variance).
-        variance: f64,
-    },
+    Kmeans(kmeans::Phases),
     /// A Gaussian mixture.
-    Gmm {
-        /// The mixture.
-        model: GaussianMixture,
-    },
+    Gmm(gmm::Phases),
     /// A Poisson mixture on counts.
-    Poisson {
-        /// The mixture.
-        model: PoissonMixture,
-    },
+    Poisson(poisson::Phases),
+}
+
+/// Runs `$body` with `$m` bound to the [`PhaseModel`] inside a [`Clusters`]; with `map`,
+/// wraps the result back in the same variant.
+macro_rules! each_method {
+    ($value:expr, $m:ident => $body:expr) => {
+        match $value {
+            Clusters::Kmeans($m) => $body,
+            Clusters::Gmm($m) => $body,
+            Clusters::Poisson($m) => $body,
+        }
+    };
+    (map $value:expr, $m:ident => $body:expr) => {
+        match $value {
+            Clusters::Kmeans($m) => Clusters::Kmeans($body),
+            Clusters::Gmm($m) => Clusters::Gmm($body),
+            Clusters::Poisson($m) => Clusters::Poisson($body),
+        }
+    };
+}
+
+/// The scorer of each method, chosen once per pass (an enum, not a trait object, so the
+/// per-pixel calls inline).
+pub enum ScorerKind<'a> {
+    /// k-means.
+    Kmeans(kmeans::Scorer),
+    /// Gaussian mixture.
+    Gmm(<gmm::Phases as PhaseModel>::Scorer<'a>),
+    /// Poisson mixture.
+    Poisson(<poisson::Phases as PhaseModel>::Scorer<'a>),
+}
+
+macro_rules! each_scorer {
+    ($value:expr, $s:ident => $body:expr) => {
+        match $value {
+            ScorerKind::Kmeans($s) => $body,
+            ScorerKind::Gmm($s) => $body,
+            ScorerKind::Poisson($s) => $body,
+        }
+    };
 }
 
 impl Clusters {
     /// The method that made the model.
     pub fn method(&self) -> Method {
-        match self {
-            Clusters::Kmeans { .. } => Method::Kmeans,
-            Clusters::Gmm { .. } => Method::Gmm,
-            Clusters::Poisson { .. } => Method::Poisson,
+        fn of<M: PhaseModel>(_: &M) -> Method {
+            M::METHOD
         }
+        each_method!(self, m => of(m))
     }
 
     /// Number of phases.
     pub fn k(&self) -> usize {
-        match self {
-            Clusters::Kmeans { model, .. } => model.k,
-            Clusters::Gmm { model } => model.k,
-            Clusters::Poisson { model } => model.k,
-        }
+        each_method!(self, m => m.k())
+    }
+
+    /// Feature dimensions.
+    pub fn d(&self) -> usize {
+        each_method!(self, m => m.d())
+    }
+
+    /// Whether the model scores raw counts (true) or transformed features.
+    pub fn on_counts(&self) -> bool {
+        each_method!(self, m => m.on_counts())
     }
 
     /// Checks a model read from a file before any use: array lengths agree with `k` and
@@ -99,215 +166,49 @@ impl Clusters {
                 "{k} phases of {d} elements (1 to 256 phases of 1 to 64 elements)"
             ));
         }
-        let len = |name: &str, v: &[f64], n: usize| {
-            if v.len() != n {
-                Err(format!("{name} has {} values, {n} expected", v.len()))
-            } else if v.iter().any(|x| !x.is_finite()) {
-                Err(format!("{name} holds a value that is not a finite number"))
-            } else {
-                Ok(())
-            }
-        };
-        let weights = |w: &[f64]| {
-            len("weights", w, k)?;
-            if w.iter().any(|&x| x < 0.0) || (w.iter().sum::<f64>() - 1.0).abs() > 1e-3 {
-                return Err("the weights are negative or do not sum to 1".to_string());
-            }
-            Ok(())
-        };
-        match self {
-            Clusters::Kmeans { model, variance } => {
-                len("centroids", &model.centroids, k * d)?;
-                if !(variance.is_finite() && *variance > 0.0) {
-                    return Err(format!("the noise variance is {variance}, not positive"));
-                }
-            }
-            Clusters::Gmm { model } => {
-                weights(&model.weights)?;
-                len("means", &model.means, k * d)?;
-                len("covariances", &model.covariances, k * d * d)?;
-            }
-            Clusters::Poisson { model } => {
-                weights(&model.weights)?;
-                len("rates", &model.rates, k * d)?;
-                for (c, r) in model.rates.chunks_exact(d).enumerate() {
-                    if r.iter().any(|&x| x < 0.0) {
-                        return Err(format!("phase {} has a negative rate", c + 1));
-                    }
-                    if r.iter().all(|&x| x <= poisson::MIN_RATE) {
-                        return Err(format!(
-                            "phase {} has no counts in any element (all rates 0)",
-                            c + 1
-                        ));
-                    }
-                }
-            }
-        }
-        Ok(())
-    }
-
-    /// Feature dimensions.
-    pub fn d(&self) -> usize {
-        match self {
-            Clusters::Kmeans { model, .. } => model.d,
-            Clusters::Gmm { model } => model.d,
-            Clusters::Poisson { model } => model.d,
-        }
+        each_method!(self, m => m.check_own())
     }
 
     /// Mean of phase `c` in feature space.
     pub fn mean(&self, c: usize) -> &[f64] {
         let d = self.d();
-        match self {
-            Clusters::Kmeans { model, .. } => &model.centroids[c * d..(c + 1) * d],
-            Clusters::Gmm { model } => &model.means[c * d..(c + 1) * d],
-            Clusters::Poisson { model } => &model.rates[c * d..(c + 1) * d],
-        }
+        each_method!(self, m => &m.means()[c * d..(c + 1) * d])
     }
 
     /// Rebuilds caches after deserialising.
-    pub fn refresh(&mut self) -> Result<(), gmm::GmmError> {
-        match self {
-            Clusters::Kmeans { .. } => Ok(()),
-            Clusters::Gmm { model } => model.refresh(),
-            Clusters::Poisson { model } => {
-                model.refresh();
-                Ok(())
-            }
-        }
+    pub fn refresh(&mut self) -> Result<(), String> {
+        each_method!(self, m => m.refresh())
     }
 
     /// Expected counts per pixel of each element for phase `c` (means mapped back through
-    /// the transform for the Gaussian models).
+    /// the transform for the models on transformed features).
     pub fn expected_counts(&self, c: usize, st: crate::prepare::Stabilise) -> Vec<f64> {
-        match self {
-            Clusters::Poisson { model } => model.rates[c * model.d..(c + 1) * model.d].to_vec(),
-            _ => self
-                .mean(c)
+        if self.on_counts() {
+            self.mean(c).to_vec()
+        } else {
+            self.mean(c)
                 .iter()
                 .map(|&m| st.invert(m).max(0.0))
-                .collect(),
+                .collect()
         }
     }
 
     /// The same model with the mean of phase `c` replaced (feature space; rates for the
     /// Poisson mixture).
     pub fn with_mean(&self, c: usize, mean: &[f64]) -> Clusters {
-        let d = self.d();
-        let mut out = self.clone();
-        match &mut out {
-            Clusters::Kmeans { model, .. } => {
-                model.centroids[c * d..(c + 1) * d].copy_from_slice(mean)
-            }
-            Clusters::Gmm { model } => {
-                model.means[c * d..(c + 1) * d].copy_from_slice(mean);
-                model.refresh().expect("covariances unchanged");
-            }
-            Clusters::Poisson { model } => {
-                model.rates[c * d..(c + 1) * d].copy_from_slice(mean);
-                model.refresh();
-            }
-        }
-        out
+        each_method!(map self, m => m.with_mean(c, mean))
     }
 
     /// The same model without phase `c` (weights renormalised).
     pub fn without(&self, c: usize) -> Clusters {
-        fn drop_rows(v: &[f64], c: usize, len: usize) -> Vec<f64> {
-            v.chunks(len)
-                .enumerate()
-                .filter(|(i, _)| *i != c)
-                .flat_map(|(_, r)| r.to_vec())
-                .collect()
-        }
-        fn renorm(w: Vec<f64>) -> Vec<f64> {
-            let s: f64 = w.iter().sum();
-            w.into_iter().map(|x| x / s).collect()
-        }
-        match self {
-            Clusters::Kmeans { model, variance } => {
-                let mut m = model.clone();
-                m.centroids = drop_rows(&model.centroids, c, model.d);
-                m.k -= 1;
-                Clusters::Kmeans {
-                    model: m,
-                    variance: *variance,
-                }
-            }
-            Clusters::Gmm { model } => {
-                let mut m = model.clone();
-                m.weights = renorm(drop_rows(&model.weights, c, 1));
-                m.means = drop_rows(&model.means, c, model.d);
-                m.covariances = drop_rows(&model.covariances, c, model.d * model.d);
-                m.k -= 1;
-                m.refresh().expect("the remaining covariances were valid");
-                Clusters::Gmm { model: m }
-            }
-            Clusters::Poisson { model } => {
-                let mut m = model.clone();
-                m.weights = renorm(drop_rows(&model.weights, c, 1));
-                m.rates = drop_rows(&model.rates, c, model.d);
-                m.k -= 1;
-                m.refresh();
-                Clusters::Poisson { model: m }
-            }
-        }
+        each_method!(map self, m => m.without(c))
     }
 
     /// The same model with phases `a` and `b` combined into one (at index `a`), with the
     /// pooled weight, mean and (for the mixture) covariance.
     pub fn merged(&self, a: usize, b: usize) -> Clusters {
         let (a, b) = (a.min(b), a.max(b));
-        let d = self.d();
-        match self {
-            Clusters::Kmeans { model, variance } => {
-                let mut m = model.clone();
-                for j in 0..d {
-                    m.centroids[a * d + j] =
-                        0.5 * (model.centroids[a * d + j] + model.centroids[b * d + j]);
-                }
-                Clusters::Kmeans {
-                    model: m,
-                    variance: *variance,
-                }
-                .without(b)
-            }
-            Clusters::Gmm { model } => {
-                let mut m = model.clone();
-                let (wa, wb) = (model.weights[a], model.weights[b]);
-                let w = wa + wb;
-                let mean: Vec<f64> = (0..d)
-                    .map(|j| (wa * model.means[a * d + j] + wb * model.means[b * d + j]) / w)
-                    .collect();
-                for i in 0..d {
-                    for j in 0..d {
-                        let da =
-                            (model.means[a * d + i] - mean[i]) * (model.means[a * d + j] - mean[j]);
-                        let db =
-                            (model.means[b * d + i] - mean[i]) * (model.means[b * d + j] - mean[j]);
-                        m.covariances[a * d * d + i * d + j] = (wa
-                            * (model.covariances[a * d * d + i * d + j] + da)
-                            + wb * (model.covariances[b * d * d + i * d + j] + db))
-                            / w;
-                    }
-                }
-                m.means[a * d..(a + 1) * d].copy_from_slice(&mean);
-                m.weights[a] = w;
-                m.weights[b] = 0.0;
-                Clusters::Gmm { model: m }.without(b)
-            }
-            Clusters::Poisson { model } => {
-                let mut m = model.clone();
-                let (wa, wb) = (model.weights[a], model.weights[b]);
-                for j in 0..d {
-                    m.rates[a * d + j] =
-                        (wa * model.rates[a * d + j] + wb * model.rates[b * d + j]) / (wa + wb);
-                }
-                m.weights[a] = wa + wb;
-                m.weights[b] = 0.0;
-                Clusters::Poisson { model: m }.without(b)
-            }
-        }
+        each_method!(map self, m => m.merged(a, b))
     }
 
     /// A scorer for the hot loops. With `weighted`, scores include the mixing weights
@@ -315,25 +216,11 @@ impl Clusters {
     /// alone, as a spatial model wants, where the label prior is the neighbourhood.
     pub fn scorer(&self, weighted: bool) -> Scorer<'_> {
         let kind = match self {
-            Clusters::Kmeans { model, variance } => {
-                let var = variance.max(1e-12);
-                let d = model.d as f64;
-                ScorerKind::Kmeans {
-                    centres: model.centres_f32(),
-                    d: model.d,
-                    inv_var: (1.0 / var) as f32,
-                    log_norm: -(model.k as f64).ln()
-                        - 0.5 * d * (2.0 * std::f64::consts::PI * var).ln(),
-                }
-            }
-            Clusters::Gmm { model } => ScorerKind::Gmm(model),
-            Clusters::Poisson { model } => ScorerKind::Poisson(model),
+            Clusters::Kmeans(m) => ScorerKind::Kmeans(m.scorer()),
+            Clusters::Gmm(m) => ScorerKind::Gmm(m.scorer()),
+            Clusters::Poisson(m) => ScorerKind::Poisson(m.scorer()),
         };
-        let weights: Option<&[f64]> = match self {
-            Clusters::Kmeans { .. } => None,
-            Clusters::Gmm { model } => Some(&model.weights),
-            Clusters::Poisson { model } => Some(&model.weights),
-        };
+        let weights = each_method!(self, m => m.weights());
         let unweight = match (weighted, weights) {
             (false, Some(w)) => w.iter().map(|&x| -x.max(1e-300).ln()).collect(),
             _ => vec![0.0; self.k()],
@@ -344,22 +231,43 @@ impl Clusters {
     /// A typical per-dimension noise variance of the phases (for the empty pseudo-phase):
     /// the k-means pooled variance, or the mixture's weighted mean covariance diagonal.
     pub fn noise_variance(&self) -> f64 {
-        match self {
-            Clusters::Kmeans { variance, .. } => *variance,
-            Clusters::Gmm { model } => {
-                let d = model.d;
-                (0..model.k)
-                    .map(|c| {
-                        let diag: f64 = (0..d)
-                            .map(|i| model.covariances[c * d * d + i * d + i])
-                            .sum();
-                        model.weights[c] * diag / d as f64
-                    })
-                    .sum()
-            }
-            Clusters::Poisson { .. } => f64::NAN,
-        }
+        each_method!(self, m => m.noise_variance())
     }
+}
+
+/// Rows of `len` values of `v` without row `c`.
+fn drop_rows(v: &[f64], c: usize, len: usize) -> Vec<f64> {
+    v.chunks(len)
+        .enumerate()
+        .filter(|(i, _)| *i != c)
+        .flat_map(|(_, r)| r.to_vec())
+        .collect()
+}
+
+/// `w` scaled to sum to 1.
+fn renormalised(w: Vec<f64>) -> Vec<f64> {
+    let s: f64 = w.iter().sum();
+    w.into_iter().map(|x| x / s).collect()
+}
+
+/// Checks that `v` holds `n` finite values.
+fn check_len(name: &str, v: &[f64], n: usize) -> Result<(), String> {
+    if v.len() != n {
+        Err(format!("{name} has {} values, {n} expected", v.len()))
+    } else if v.iter().any(|x| !x.is_finite()) {
+        Err(format!("{name} holds a value that is not a finite number"))
+    } else {
+        Ok(())
+    }
+}
+
+/// Checks mixing weights: `k` finite non-negative values summing to 1.
+fn check_weights(w: &[f64], k: usize) -> Result<(), String> {
+    check_len("weights", w, k)?;
+    if w.iter().any(|&x| x < 0.0) || (w.iter().sum::<f64>() - 1.0).abs() > 1e-3 {
+        return Err("the weights are negative or do not sum to 1".to_string());
+    }
+    Ok(())
 }
 
 /// Scores pixels against phases: log density of a row under each phase, and a χ²-like
@@ -370,50 +278,18 @@ pub struct Scorer<'a> {
     unweight: Vec<f64>,
 }
 
-enum ScorerKind<'a> {
-    Kmeans {
-        centres: Vec<f32>,
-        d: usize,
-        inv_var: f32,
-        log_norm: f64,
-    },
-    Gmm(&'a GaussianMixture),
-    Poisson(&'a PoissonMixture),
-}
-
 impl Scorer<'_> {
     /// ln (wₖ N(row | phase c)), or ln N(row | phase c) for an unweighted scorer.
     #[inline]
     pub fn score(&self, c: usize, row: &[f32]) -> f64 {
-        self.unweight[c]
-            + match &self.kind {
-                ScorerKind::Kmeans { log_norm, .. } => log_norm - 0.5 * self.discrepancy(c, row),
-                ScorerKind::Gmm(g) => g.weighted_log_density(c, row),
-                ScorerKind::Poisson(m) => m.weighted_log_density(c, row),
-            }
+        self.unweight[c] + each_scorer!(&self.kind, s => Scoring::score(s, c, row))
     }
 
     /// [`Self::score`] of each lane's row of a transposed block (see [`lanes`]) for every
     /// phase: `out[c][l]`; bit-identical to the one-row version.
     #[inline]
     pub fn score_block(&self, xt: &[lanes::Lane], out: &mut [[f64; lanes::LANES]]) {
-        match &self.kind {
-            ScorerKind::Kmeans {
-                centres,
-                d,
-                inv_var,
-                log_norm,
-            } => {
-                for (c, o) in out[..self.unweight.len()].iter_mut().enumerate() {
-                    let e = lanes::dist2(xt, &centres[c * d..(c + 1) * d]);
-                    for l in 0..lanes::LANES {
-                        o[l] = log_norm - 0.5 * f64::from(e[l] * inv_var);
-                    }
-                }
-            }
-            ScorerKind::Gmm(g) => g.weighted_log_density_block(xt, out),
-            ScorerKind::Poisson(m) => m.weighted_log_density_block(xt, out),
-        }
+        each_scorer!(&self.kind, s => Scoring::score_block(s, xt, out));
         for (o, &u) in out.iter_mut().zip(&self.unweight) {
             for v in o.iter_mut() {
                 *v += u;
@@ -425,16 +301,7 @@ impl Scorer<'_> {
     /// a pixel of that phase: squared Mahalanobis distance, or Poisson deviance.
     #[inline]
     pub fn discrepancy(&self, c: usize, row: &[f32]) -> f64 {
-        match &self.kind {
-            ScorerKind::Kmeans {
-                centres,
-                d,
-                inv_var,
-                ..
-            } => f64::from(kmeans::dist2(row, &centres[c * d..(c + 1) * d]) * inv_var),
-            ScorerKind::Gmm(g) => f64::from(g.mahalanobis2(c, row)),
-            ScorerKind::Poisson(m) => m.deviance(c, row),
-        }
+        each_scorer!(&self.kind, s => Scoring::discrepancy(s, c, row))
     }
 }
 
@@ -445,15 +312,9 @@ mod tests {
     use rand::{Rng, SeedableRng};
     use rand_chacha::ChaCha8Rng;
 
-    /// The block scorer used by the labelling pass equals the one-row scorer bit for bit,
-    /// for every model kind, with and without the mixing weights, on blocks of every size.
-    #[test]
-    fn block_scores_equal_row_scores() {
+    /// One model of each method with `k = 3` phases of `d = 4` elements.
+    fn three_models(rng: &mut ChaCha8Rng) -> [Clusters; 3] {
         let (k, d) = (3, 4);
-        let mut rng = ChaCha8Rng::seed_from_u64(5);
-        let rows: Vec<f32> = (0..(2 * LANES + 3) * d)
-            .map(|_| rng.random_range(0.0..30.0f32).round())
-            .collect();
         let means: Vec<f64> = (0..k * d).map(|_| rng.random_range(1.0..25.0)).collect();
         let mut cov = vec![0.0; k * d * d];
         for c in 0..k {
@@ -464,8 +325,13 @@ mod tests {
             }
         }
         let weights = vec![0.5, 0.3, 0.2];
-        let models = [
-            Clusters::Kmeans {
+        // As after a fit (a model never fitted holds −∞, which JSON cannot hold).
+        let mut g = GaussianMixture::new(k, d, weights.clone(), means.clone(), cov).unwrap();
+        g.mean_log_likelihood = -12.5;
+        let mut p = PoissonMixture::new(k, d, weights, means.clone());
+        p.mean_log_likelihood = -8.25;
+        [
+            Clusters::Kmeans(kmeans::Phases {
                 model: KMeans {
                     k,
                     d,
@@ -474,14 +340,49 @@ mod tests {
                     iterations: 0,
                 },
                 variance: 2.5,
-            },
-            Clusters::Gmm {
-                model: GaussianMixture::new(k, d, weights.clone(), means.clone(), cov).unwrap(),
-            },
-            Clusters::Poisson {
-                model: PoissonMixture::new(k, d, weights, means),
-            },
-        ];
+            }),
+            Clusters::Gmm(gmm::Phases { model: g }),
+            Clusters::Poisson(poisson::Phases { model: p }),
+        ]
+    }
+
+    /// A saved model keeps the file shape of earlier versions (the method's name beside
+    /// the model's fields, k-means's variance beside its centroids) and reads back equal;
+    /// the edits the phase-count decision makes leave a model that passes its checks.
+    #[test]
+    fn saved_shape_and_edits_hold_for_every_method() {
+        let mut rng = ChaCha8Rng::seed_from_u64(8);
+        for model in three_models(&mut rng) {
+            let json: serde_json::Value = serde_json::to_value(&model).unwrap();
+            let name = serde_json::to_value(model.method()).unwrap();
+            assert_eq!(json["method"], name);
+            assert!(json["model"]["k"] == 3, "{json}");
+            if model.method() == Method::Kmeans {
+                assert_eq!(json["variance"], 2.5);
+            }
+            let mut back: Clusters = serde_json::from_value(json).unwrap();
+            back.refresh().unwrap();
+            assert_eq!(back, model);
+            for edited in [model.merged(2, 0), model.without(1)] {
+                assert_eq!((edited.k(), edited.d()), (2, 4));
+                assert_eq!(edited.check(), Ok(()), "{:?}", model.method());
+            }
+            let moved = model.with_mean(1, &[9.0; 4]);
+            assert_eq!(moved.mean(1), &[9.0; 4]);
+            assert_eq!(moved.mean(0), model.mean(0));
+        }
+    }
+
+    /// The block scorer used by the labelling pass equals the one-row scorer bit for bit,
+    /// for every model kind, with and without the mixing weights, on blocks of every size.
+    #[test]
+    fn block_scores_equal_row_scores() {
+        let (k, d) = (3, 4);
+        let mut rng = ChaCha8Rng::seed_from_u64(5);
+        let rows: Vec<f32> = (0..(2 * LANES + 3) * d)
+            .map(|_| rng.random_range(0.0..30.0f32).round())
+            .collect();
+        let models = three_models(&mut rng);
         for model in &models {
             for weighted in [false, true] {
                 let scorer = model.scorer(weighted);

@@ -15,6 +15,8 @@ use serde::{Deserialize, Serialize};
 
 use super::kmeans::CHUNK_ROWS;
 use super::lanes::{self, Lane, LANES};
+use super::model::{check_iterations, Checked, FitOptions, PhaseModel, Scoring};
+use super::Method;
 
 /// Smallest rate allowed, counts per pixel: keeps ln λ finite for an element a phase
 /// never shows (common practice, no source).
@@ -174,6 +176,27 @@ pub struct PoissonParams {
     pub tol: f64,
 }
 
+impl PoissonParams {
+    /// Checks every rule: at least one iteration, a non-negative tolerance.
+    pub fn check(self) -> Result<Checked<PoissonParams>, String> {
+        check_iterations(self.max_iter, self.tol)?;
+        Ok(Checked(self))
+    }
+}
+
+/// EM run to convergence: 300 iterations at most, tolerance 10⁻⁵ in mean log-likelihood
+/// per row (common practice, no source).
+pub const EM: Checked<PoissonParams> = Checked(PoissonParams {
+    max_iter: 300,
+    tol: 1e-5,
+});
+
+/// A short EM that ranks candidate starts (common practice, no source).
+pub const SHORT_EM: Checked<PoissonParams> = Checked(PoissonParams {
+    max_iter: 15,
+    tol: 1e-4,
+});
+
 /// Rates and weights of a hard partition (`labels` values `< k`): the starting point of EM.
 pub fn from_labels(data: &[f32], d: usize, labels: &[u16], k: usize) -> PoissonMixture {
     let mut nk = vec![0.0f64; k];
@@ -263,7 +286,12 @@ pub fn em_step(m: &PoissonMixture, data: &[f32]) -> (PoissonMixture, f64) {
 
 /// Refines `start` by EM on `data`. The returned `mean_log_likelihood` includes the
 /// −Σ ln x! term, so BIC values computed from it are true ones.
-pub fn fit(data: &[f32], d: usize, start: PoissonMixture, p: &PoissonParams) -> PoissonMixture {
+pub fn fit(
+    data: &[f32],
+    d: usize,
+    start: PoissonMixture,
+    p: &Checked<PoissonParams>,
+) -> PoissonMixture {
     let n = (data.len() / d) as f64;
     let sum_ln_fact: f64 = data
         .par_chunks(CHUNK_ROWS * d)
@@ -289,6 +317,116 @@ pub fn fit(data: &[f32], d: usize, start: PoissonMixture, p: &PoissonParams) -> 
     m
 }
 
+/// The Poisson-mixture phases a field is labelled with.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Phases {
+    /// The mixture.
+    pub model: PoissonMixture,
+}
+
+impl PhaseModel for Phases {
+    const METHOD: Method = Method::Poisson;
+    type Scorer<'a> = &'a PoissonMixture;
+
+    fn k(&self) -> usize {
+        self.model.k
+    }
+    fn d(&self) -> usize {
+        self.model.d
+    }
+    fn means(&self) -> &[f64] {
+        &self.model.rates
+    }
+    fn weights(&self) -> Option<&[f64]> {
+        Some(&self.model.weights)
+    }
+    fn on_counts(&self) -> bool {
+        true
+    }
+    fn check_own(&self) -> Result<(), String> {
+        let (k, d) = (self.model.k, self.model.d);
+        super::check_weights(&self.model.weights, k)?;
+        super::check_len("rates", &self.model.rates, k * d)?;
+        for (c, r) in self.model.rates.chunks_exact(d).enumerate() {
+            if r.iter().any(|&x| x < 0.0) {
+                return Err(format!("phase {} has a negative rate", c + 1));
+            }
+            if r.iter().all(|&x| x <= MIN_RATE) {
+                return Err(format!(
+                    "phase {} has no counts in any element (all rates 0)",
+                    c + 1
+                ));
+            }
+        }
+        Ok(())
+    }
+    fn refresh(&mut self) -> Result<(), String> {
+        self.model.refresh();
+        Ok(())
+    }
+    fn with_mean(&self, c: usize, mean: &[f64]) -> Self {
+        let d = self.model.d;
+        let mut out = self.clone();
+        out.model.rates[c * d..(c + 1) * d].copy_from_slice(mean);
+        out.model.refresh();
+        out
+    }
+    fn without(&self, c: usize) -> Self {
+        let (m, d) = (&self.model, self.model.d);
+        let mut out = m.clone();
+        out.weights = super::renormalised(super::drop_rows(&m.weights, c, 1));
+        out.rates = super::drop_rows(&m.rates, c, d);
+        out.k -= 1;
+        out.refresh();
+        Phases { model: out }
+    }
+    /// The pooled weight and the weighted mean rates.
+    fn merged(&self, a: usize, b: usize) -> Self {
+        let (p, d) = (&self.model, self.model.d);
+        let mut m = p.clone();
+        let (wa, wb) = (p.weights[a], p.weights[b]);
+        for j in 0..d {
+            m.rates[a * d + j] = (wa * p.rates[a * d + j] + wb * p.rates[b * d + j]) / (wa + wb);
+        }
+        m.weights[a] = wa + wb;
+        m.weights[b] = 0.0;
+        Phases { model: m }.without(b)
+    }
+    fn noise_variance(&self) -> f64 {
+        f64::NAN
+    }
+    fn scorer(&self) -> &PoissonMixture {
+        &self.model
+    }
+    /// EM from the rates and weights of the partition.
+    fn fit_from_partition(
+        rows: &[f32],
+        d: usize,
+        start: &[u16],
+        k: usize,
+        _options: &FitOptions,
+        _rng: &mut rand_chacha::ChaCha8Rng,
+    ) -> Result<Self, String> {
+        let model = fit(rows, d, from_labels(rows, d, start, k), &EM);
+        Ok(Phases { model })
+    }
+}
+
+impl Scoring for PoissonMixture {
+    #[inline]
+    fn score(&self, c: usize, row: &[f32]) -> f64 {
+        self.weighted_log_density(c, row)
+    }
+    #[inline]
+    fn score_block(&self, xt: &[Lane], out: &mut [[f64; LANES]]) {
+        self.weighted_log_density_block(xt, out)
+    }
+    #[inline]
+    fn discrepancy(&self, c: usize, row: &[f32]) -> f64 {
+        self.deviance(c, row)
+    }
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -301,6 +439,19 @@ mod tests {
         assert!((ln_factorial(5.0) - 120f64.ln()).abs() < 1e-12);
         assert!((ln_factorial(20.0) - 42.335_616_460_753_485).abs() < 1e-9);
         assert!((ln_factorial(19.0) + 20f64.ln() - ln_factorial(20.0)).abs() < 1e-9);
+    }
+
+    /// The two fixed EM settings are ones `check` accepts.
+    #[test]
+    fn fixed_settings_pass_their_checks() {
+        assert_eq!(EM.check(), Ok(EM));
+        assert_eq!(SHORT_EM.check(), Ok(SHORT_EM));
+        assert!(PoissonParams {
+            max_iter: 0,
+            tol: 1e-5
+        }
+        .check()
+        .is_err());
     }
 
     #[test]
@@ -339,7 +490,9 @@ mod tests {
             &PoissonParams {
                 max_iter: 500,
                 tol: 1e-9,
-            },
+            }
+            .check()
+            .unwrap(),
         );
         let (small, big) = if m.weights[0] < m.weights[1] {
             (0, 1)

@@ -2,12 +2,9 @@
 
 use serde::{Deserialize, Serialize};
 
-use rand::SeedableRng;
-use rand_chacha::ChaCha8Rng;
-
-use super::gmm::{self, GmmParams};
-use super::kmeans::{self, KMeansParams};
-use super::poisson::{self, PoissonMixture, PoissonParams};
+use super::kmeans;
+use super::model::{FitOptions, Seed};
+use super::poisson::{self, PoissonMixture, EM, SHORT_EM};
 use super::{Clusters, Method};
 use crate::error::{Error, Result};
 use crate::prepare::Features;
@@ -140,7 +137,7 @@ pub struct Fit {
 }
 
 /// The pixels that take part, sampled (seeded) down to `max`, in ascending order.
-fn fitting_pixels(f: &Features, max: usize, seed: u64) -> Vec<usize> {
+fn fitting_pixels(f: &Features, max: usize, seed: Seed) -> Vec<usize> {
     let active: Vec<usize> = (0..f.pixels()).filter(|&i| f.mask[i]).collect();
     kmeans::sample_rows(active.len(), max, seed)
         .into_iter()
@@ -149,7 +146,7 @@ fn fitting_pixels(f: &Features, max: usize, seed: u64) -> Vec<usize> {
 }
 
 /// The rows of the pixels that take part, sampled (seeded) down to `max`.
-pub fn fitting_rows(f: &Features, max: usize, seed: u64) -> Vec<f32> {
+pub fn fitting_rows(f: &Features, max: usize, seed: Seed) -> Vec<f32> {
     let mut rows = Vec::new();
     for i in fitting_pixels(f, max, seed) {
         rows.extend_from_slice(f.row(i));
@@ -173,7 +170,7 @@ pub fn fit_from_labels(
     let p = params.get();
     let d = f.dims;
     let labelled = |i: usize| f.mask[i] && labels[i] > 0 && usize::from(labels[i]) <= k;
-    let mut pick: Vec<usize> = fitting_pixels(f, p.sample_size, p.seed)
+    let mut pick: Vec<usize> = fitting_pixels(f, p.sample_size, Seed(p.seed))
         .into_iter()
         .filter(|&i| labelled(i))
         .collect();
@@ -206,65 +203,21 @@ pub fn fit_from_labels(
         ));
     }
     let n = start.len();
-    let clusters = match p.method {
-        Method::Poisson => Clusters::Poisson {
-            model: poisson::fit(&rows, d, poisson::from_labels(&rows, d, &start, k), &EM),
-        },
-        Method::Kmeans => {
-            let mut centres = vec![0.0f32; k * d];
-            let mut size = vec![0.0f64; k];
-            let mut sums = vec![0.0f64; k * d];
-            for (row, &c) in rows.chunks_exact(d).zip(&start) {
-                size[usize::from(c)] += 1.0;
-                for (s, &x) in sums[usize::from(c) * d..].iter_mut().zip(row) {
-                    *s += f64::from(x);
-                }
-            }
-            for c in 0..k {
-                for t in 0..d {
-                    centres[c * d + t] = (sums[c * d + t] / size[c].max(1.0)) as f32;
-                }
-            }
-            let km = kmeans::fit_from(&rows, d, centres, &kmeans_params(k, p));
-            let variance = km.inertia / (n * d) as f64;
-            Clusters::Kmeans {
-                model: km,
-                variance,
-            }
-        }
-        Method::Gmm => Clusters::Gmm {
-            model: gmm::fit(&rows, d, &start, &gmm_params(k)).map_err(|e| {
-                Error::options(
-                    format!("the Gaussian mixture with {k} phases failed: {e}"),
-                    "ask for fewer phases (--phases), or use another --method",
-                )
-            })?,
-        },
-    };
+    let options = FitOptions { n_init: p.n_init };
+    let clusters = p
+        .method
+        .fit_from_partition(&rows, d, &start, k, &options, &mut Seed(p.seed).refit())
+        .map_err(|e| {
+            Error::options(
+                format!("the {} with {k} phases failed: {e}", p.method.describe()),
+                "ask for fewer phases (--phases), or use another --method",
+            )
+        })?;
     Ok(Fit {
         clusters,
         curve: Vec::new(),
         fitted_pixels: n,
     })
-}
-
-fn kmeans_params(k: usize, p: &ClusterParams) -> KMeansParams {
-    KMeansParams {
-        k,
-        n_init: p.n_init,
-        max_iter: 300,
-        tol: 1e-4,
-        seed: p.seed,
-    }
-}
-
-fn gmm_params(k: usize) -> GmmParams {
-    GmmParams {
-        k,
-        max_iter: 200,
-        tol: 1e-4,
-        reg_covar: 1e-3,
-    }
 }
 
 fn distinct_rows(rows: &[f32], d: usize, at_least: usize) -> bool {
@@ -295,11 +248,6 @@ fn best_of(rows: &[f32], d: usize, starts: impl Iterator<Item = PoissonMixture>)
     poisson::fit(rows, d, best, &EM)
 }
 
-const EM: PoissonParams = PoissonParams {
-    max_iter: 300,
-    tol: 1e-5,
-};
-
 /// A starting mixture from centres in √counts: each row goes to its nearest centre.
 fn start_from_centres(rows: &[f32], root: &[f32], d: usize, centres: &[f32]) -> PoissonMixture {
     let k = centres.len() / d;
@@ -329,7 +277,7 @@ fn grow_poisson(
         .map(|r| f64::from(kmeans::nearest(r, &old, d).1))
         .collect();
     let total: f64 = d2.iter().sum();
-    let mut rng = ChaCha8Rng::seed_from_u64(p.seed ^ (prev.k as u64).wrapping_mul(0x9E37_79B9));
+    let mut rng = Seed(p.seed).growth(prev.k);
     let starts = (0..p.n_init).map(|_| {
         let mut target = rng.random_range(0.0..total.max(f64::MIN_POSITIVE));
         let pick = d2
@@ -348,11 +296,6 @@ fn grow_poisson(
     best_of(rows, d, starts.into_iter())
 }
 
-const SHORT_EM: PoissonParams = PoissonParams {
-    max_iter: 15,
-    tol: 1e-4,
-};
-
 /// Components fitted beyond a fixed phase count N at least: the spares go to boundary
 /// bands and duplicates that are removed afterwards (common practice, no source: bands
 /// along two or three kinds of boundary).
@@ -366,7 +309,7 @@ pub const AUTO_MAX: usize = 10;
 /// resulting partition with [`fit_from_labels`].
 pub fn fit(f: &Features, params: &ValidClusterParams) -> Result<Fit> {
     let p = params.get();
-    let rows = fitting_rows(f, p.sample_size, p.seed);
+    let rows = fitting_rows(f, p.sample_size, Seed(p.seed));
     let d = f.dims;
     let n = rows.len() / d;
     let need = match p.phases {
@@ -435,7 +378,7 @@ pub fn fit(f: &Features, params: &ValidClusterParams) -> Result<Fit> {
         }
     }
     let (_, model) = best.ok_or_else(|| Error::internal("no phase count could be fitted"))?;
-    let clusters = Clusters::Poisson { model };
+    let clusters = Clusters::Poisson(poisson::Phases { model });
     Ok(Fit {
         clusters,
         curve,
