@@ -20,6 +20,7 @@ pub mod inspect;
 pub mod io;
 pub mod library;
 pub mod montage;
+pub mod phase_count;
 pub mod phases;
 pub mod physics;
 pub mod pipeline;

@@ -1,18 +1,17 @@
-//! The main job for one field, stage after stage: prepare → cluster → (simplify) → refine
-//! → phase statistics. No I/O here: loading and writing belong to `io` and `report`.
+//! The main job for one field, stage after stage: prepare → phase count (fit, simplify,
+//! refine; [`crate::phase_count`]) → X-ray yield → refit → refine → phase statistics. No I/O here: loading and writing belong to `io` and `report`.
 
 use serde::{Deserialize, Serialize};
 
-use crate::cluster::select::{self, ClusterParams, CurvePoint, PhaseCount, ValidClusterParams};
-use crate::cluster::simplify::{self, Simplification};
+use crate::cluster::select::{self, ClusterParams, ValidClusterParams};
 use crate::cluster::{Clusters, Method};
 use crate::error::{Error, Result};
+use crate::phase_count::{self, Counted, Decision};
 use crate::phases::{phase_table, phase_table_in_order, PhaseTable};
 use crate::prepare::Features;
 use crate::prepare::{prepare, FeatureTransform, PrepareParams, Stabilise};
 use crate::refine::{
-    interior_fractions, interior_means, refine, refine_from, RefineParams, Segmentation,
-    ValidRefineParams,
+    interior_means, refine, refine_from, RefineParams, Segmentation, ValidRefineParams,
 };
 use crate::stack::MapStack;
 use crate::xray_yield::YieldField;
@@ -97,6 +96,16 @@ impl ValidMapOptions {
     pub fn refine(&self) -> ValidRefineParams {
         self.refine
     }
+
+    /// The checked cluster options.
+    pub fn cluster(&self) -> &ValidClusterParams {
+        &self.cluster
+    }
+
+    /// The size floor of a phase, as a share of the pixels.
+    pub fn min_phase_fraction(&self) -> f64 {
+        self.min_phase_fraction
+    }
 }
 
 /// Everything the main job computes for a field.
@@ -104,10 +113,8 @@ impl ValidMapOptions {
 pub struct MapResult {
     /// The final model (after simplification).
     pub clusters: Clusters,
-    /// BIC per phase count (empty for a fixed count).
-    pub curve: Vec<CurvePoint>,
-    /// Phases merged or dissolved after BIC, with the reason.
-    pub simplifications: Vec<Simplification>,
+    /// How the phase count was reached.
+    pub decision: Decision,
     /// Labels: 0 = unassigned, else the phase id of the table.
     pub segmentation: Segmentation,
     /// Per-phase statistics.
@@ -116,11 +123,6 @@ pub struct MapResult {
     pub counts: MapStack,
     /// The empty-pixel threshold used, total counts per pixel.
     pub min_counts_used: f64,
-    /// Pixels the model was fitted on.
-    pub fitted_pixels: usize,
-    /// The method whose likelihood chose the phases: the Poisson mixture whatever the
-    /// method, when the model was fitted here; the model's own with a saved model.
-    pub counted_by: Method,
     /// The X-ray yield across the field, divided out of `counts` where applied.
     pub xray_yield: YieldField,
 }
@@ -133,7 +135,7 @@ pub fn map_stack(stack: MapStack, opts: &ValidMapOptions) -> Result<MapResult> {
 /// Runs the main job, telling `progress` the name of each stage as it starts (the command
 /// line shows it; the library never prints).
 ///
-/// The phases are counted and a first labelling made ([`choose_phases`]); the X-ray yield
+/// The phases are counted and a first labelling made ([`phase_count::decide`]); the X-ray yield
 /// across the field is estimated from that labelling ([`crate::xray_yield`]). Where the
 /// yield is uneven, or the method is not the one that counted, the model is fitted again
 /// from the first labelling on the (corrected) counts before the last labelling.
@@ -167,7 +169,10 @@ pub fn map_stack_with_progress(
     let t = crate::profile::stage("prepare");
     let f = prepare(stack, &counting.transform)?;
     drop(t);
-    let chosen = choose_phases(&f, &counting, progress)?;
+    let mut chosen = phase_count::decide(&f, &counting, progress)?;
+    if by_poisson {
+        chosen.decision.counted_with = Some(Method::Poisson);
+    }
     progress("estimating the X-ray yield");
     let t = crate::profile::stage("yield");
     let shading = crate::xray_yield::estimate(&f.counts, &chosen.seg.labels, chosen.clusters.k());
@@ -190,13 +195,13 @@ pub fn map_stack_with_progress(
     let seg = refine(&f, &fit.clusters, &opts.refine);
     drop(t);
     drop(first);
-    let chosen = Chosen {
+    let chosen = Counted {
+        decision: Decision {
+            fitted_pixels: fit.fitted_pixels,
+            ..chosen.decision
+        },
         clusters: fit.clusters,
-        curve: chosen.curve,
-        simplifications: chosen.simplifications,
         seg,
-        fitted_pixels: fit.fitted_pixels,
-        counted_by: chosen.counted_by,
     };
     Ok(finish(f, chosen, shading, opts, progress))
 }
@@ -212,146 +217,19 @@ fn into_labels(seg: Segmentation) -> Vec<u16> {
     seg.labels
 }
 
-/// The phases of a field before the last labelling.
-struct Chosen {
-    clusters: Clusters,
-    curve: Vec<CurvePoint>,
-    simplifications: Vec<Simplification>,
-    /// A first segmentation with `clusters`.
-    seg: Segmentation,
-    fitted_pixels: usize,
-    counted_by: Method,
-}
-
-/// Fits the Poisson mixture with spare components ([`select::fit`]; `opts` are the
-/// counting options), removes bands of mixed boundary pixels, phases below the size floor
-/// and duplicates, merges down to a fixed count, and labels the field once.
-fn choose_phases(
-    f: &Features,
-    opts: &ValidMapOptions,
-    progress: &mut dyn FnMut(&str),
-) -> Result<Chosen> {
-    progress("fitting the phase model");
-    let t = crate::profile::stage("fit");
-    let fit = select::fit(f, &opts.cluster)?;
-    drop(t);
-    let st = opts.transform.params().stabilise;
-    // Fitted with spare components: simplified.
-    let (mut clusters, mut simplifications) = simplify::merge_indistinguishable(fit.clusters, st);
-    let min_px = (opts.min_phase_fraction * f.pixels() as f64)
-        .ceil()
-        .max(1.0) as usize;
-    progress("labelling pixels");
-    let t = crate::profile::stage("refine");
-    let mut seg = refine(f, &clusters, &opts.refine);
-    drop(t);
-    // Dissolve boundary bands and phases below the size floor, then label again.
-    for _ in 0..8 {
-        if clusters.k() < 2 {
-            break;
-        }
-        let drop = bands_and_specks(f, &clusters, &seg, st, min_px);
-        if drop.is_empty() || drop.len() >= clusters.k() {
-            break;
-        }
-        for (c, note) in drop.into_iter().rev() {
-            clusters = clusters.without(c);
-            simplifications.push(note);
-        }
-        seg = refine(f, &clusters, &opts.refine);
-    }
-    // A fixed count: merge the closest phases until the count asked for remains (fewer
-    // is what the data separate; the report says so).
-    if let PhaseCount::Fixed(want) = opts.cluster.get().phases {
-        if clusters.k() > want {
-            while clusters.k() > want {
-                let (a, b, j) = simplify::closest_pair(&clusters, st);
-                simplifications.push(Simplification {
-                    action: format!(
-                        "merged the two closest phases ({} and {}) to give the {want} phases asked for",
-                        simplify::fmt_counts(&clusters.expected_counts(a, st)),
-                        simplify::fmt_counts(&clusters.expected_counts(b, st))
-                    ),
-                    value: j,
-                });
-                clusters = clusters.merged(a, b);
-            }
-            seg = refine(f, &clusters, &opts.refine);
-        }
-    }
-    Ok(Chosen {
-        clusters,
-        curve: fit.curve,
-        simplifications,
-        seg,
-        fitted_pixels: fit.fitted_pixels,
-        counted_by: opts.cluster.get().method,
-    })
-}
-
-/// The components to dissolve, in ascending order: those below the size floor of `min_px`
-/// pixels, and bands of mixed boundary pixels (a mixture of the others with few interior
-/// pixels).
-fn bands_and_specks(
-    f: &Features,
-    clusters: &Clusters,
-    seg: &Segmentation,
-    st: Stabilise,
-    min_px: usize,
-) -> Vec<(usize, Simplification)> {
-    let inside = interior_fractions(seg, clusters.k());
-    let mut ends: Vec<Vec<f64>> = (0..clusters.k())
-        .map(|c| clusters.expected_counts(c, st))
-        .collect();
-    ends.push(vec![0.0; f.dims]);
-    let mut drop: Vec<(usize, Simplification)> = Vec::new();
-    for (c, &(px, interior)) in inside.iter().enumerate() {
-        if px < min_px {
-            drop.push((
-                c,
-                Simplification {
-                    action: format!(
-                        "dissolved a component of {px} pixels, below the size floor of {min_px}"
-                    ),
-                    value: px as f64,
-                },
-            ));
-        } else if let Some((dev, weights)) = simplify::nearest_mixture(c, &ends) {
-            if dev < simplify::MIXTURE_WITHIN && interior < BOUNDARY_INTERIOR {
-                drop.push((
-                    c,
-                    Simplification {
-                        action: format!(
-                            "dissolved a band of mixed pixels ({} ≈ {}; {:.1} % interior pixels)",
-                            simplify::fmt_counts(&ends[c]),
-                            simplify::describe_mixture(&weights, &ends, clusters.k()),
-                            100.0 * interior
-                        ),
-                        value: dev,
-                    },
-                ));
-            }
-        }
-    }
-    drop
-}
-
 /// Per-phase averaging after a first segmentation: re-estimates each phase from its
 /// interior pixels, labels the field again, and computes the phase table.
 fn finish(
     f: Features,
-    chosen: Chosen,
+    chosen: Counted,
     xray_yield: YieldField,
     opts: &ValidMapOptions,
     progress: &mut dyn FnMut(&str),
 ) -> MapResult {
-    let Chosen {
+    let Counted {
+        decision,
         mut clusters,
-        curve,
-        simplifications,
         mut seg,
-        fitted_pixels,
-        counted_by,
     } = chosen;
     let means = interior_means(&f, &seg, clusters.k());
     if means.iter().any(Option::is_some) {
@@ -373,14 +251,11 @@ fn finish(
     let table = phase_table(&mut seg, &f.counts, clusters.k());
     MapResult {
         clusters,
-        curve,
-        simplifications,
+        decision,
         segmentation: seg,
         table,
         counts: f.counts,
         min_counts_used: f.min_counts_used,
-        fitted_pixels,
-        counted_by,
         xray_yield,
     }
 }
@@ -418,22 +293,14 @@ pub fn label_with_model(
     let table = phase_table_in_order(&mut seg, &f.counts, clusters.k(), Some(order));
     Ok(MapResult {
         clusters: clusters.clone(),
-        curve: Vec::new(),
-        simplifications: Vec::new(),
+        decision: Decision::saved_model(opts.cluster.get().phases),
         segmentation: seg,
         table,
         counts: f.counts,
         min_counts_used: f.min_counts_used,
-        fitted_pixels: 0,
-        counted_by: clusters.method(),
         xray_yield: shading,
     })
 }
-
-/// A component with fewer interior pixels (two or more pixels from any other label) than
-/// this share is a boundary band, if it is also a mixture of the others (common practice,
-/// no source; a five-pixel layer keeps about a fifth of its pixels inside).
-pub const BOUNDARY_INTERIOR: f64 = 0.02;
 
 /// The composition stage on a mapped field: compositions, reference names and beam
 /// advice ([`crate::characterise`]); updates the result's phase table.

@@ -28,7 +28,8 @@ fn check(name: &str, field: &SynthField, options: MapOptions, expect_k: usize) -
         "{name}: k = {} accuracy {:.4} simpl {:?} unmixed {} empty {} outl {}",
         r.clusters.k(),
         s.accuracy,
-        r.simplifications
+        r.decision
+            .simplifications
             .iter()
             .map(|x| x.action.clone())
             .collect::<Vec<_>>(),

@@ -17,9 +17,6 @@ use sha2::{Digest, Sha256};
 
 pub use output::{prepare_output, write_file_atomically, OutputDir, Scratch};
 
-use crate::cluster::select::{CurvePoint, PhaseCount};
-use crate::cluster::simplify::Simplification;
-use crate::cluster::Method;
 use crate::error::{Error, Result};
 use crate::pipeline::MapOptions;
 
@@ -111,25 +108,7 @@ pub struct PhaseEntry {
     pub mean_z: Option<f64>,
 }
 
-/// How the phase count was reached.
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
-pub struct PhaseCountReport {
-    /// `auto` or `fixed`.
-    pub mode: String,
-    /// Phases found.
-    pub phases: usize,
-    /// BIC per candidate count (auto only).
-    pub curve: Vec<CurvePoint>,
-    /// Count with the lowest BIC (auto only).
-    pub bic_minimum: Option<usize>,
-    /// Components merged or dissolved after BIC.
-    pub simplifications: Vec<Simplification>,
-    /// The method whose likelihood and BIC chose the count, where it is not the method
-    /// that labelled the pixels (with k-means or the Gaussian mixture the phases are found
-    /// with the Poisson mixture, then the method is fitted from its phases).
-    #[serde(default, skip_serializing_if = "Option::is_none")]
-    pub counted_with: Option<Method>,
-}
+pub use crate::phase_count::PhaseCountReport;
 
 /// One input file and its SHA-256.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
@@ -273,16 +252,10 @@ pub struct Labelled<'a> {
     pub table: &'a crate::phases::PhaseTable,
     /// The labels.
     pub segmentation: &'a crate::refine::Segmentation,
-    /// BIC per phase count.
-    pub curve: &'a [CurvePoint],
-    /// Merges and dissolutions after BIC.
-    pub simplifications: &'a [Simplification],
+    /// How the phase count was reached.
+    pub decision: &'a crate::phase_count::Decision,
     /// Empty-pixel threshold used.
     pub min_counts_used: f64,
-    /// Pixels the model was fitted on.
-    pub fitted_pixels: usize,
-    /// The method that chose the count, where it is not the one that labelled the pixels.
-    pub counted_with: Option<Method>,
     /// The X-ray yield across the field.
     pub xray_yield: &'a crate::xray_yield::YieldField,
     /// The field's metadata.
@@ -333,9 +306,8 @@ pub fn build(
     if let Some(b) = bse {
         warnings.extend(b.warnings.iter().cloned());
     }
-    warnings.extend(result_warnings(result, options));
+    warnings.extend(result_warnings(result));
     let inputs = hash_files(files)?;
-    let auto = matches!(options.cluster.phases, PhaseCount::Auto { .. });
     let mut unassigned = BTreeMap::new();
     unassigned.insert("empty".into(), result.segmentation.empty_pixels);
     unassigned.insert(
@@ -358,14 +330,7 @@ pub fn build(
         phases,
         unassigned_fraction: t.unassigned_fraction,
         unassigned,
-        phase_count: PhaseCountReport {
-            mode: if auto { "auto".into() } else { "fixed".into() },
-            phases: t.phases.len(),
-            curve: result.curve.to_vec(),
-            bic_minimum: bic_minimum(result.curve),
-            simplifications: result.simplifications.to_vec(),
-            counted_with: result.counted_with,
-        },
+        phase_count: result.decision.report(t.phases.len()),
         statistics: statistics(result),
         options: *options,
         provenance: Provenance {
@@ -384,14 +349,6 @@ pub fn build(
         model: model.cloned(),
         xray_yield: Some(result.xray_yield.clone()),
     })
-}
-
-/// The phase count of the lowest BIC in the sweep, if there was one.
-fn bic_minimum(curve: &[CurvePoint]) -> Option<usize> {
-    curve
-        .iter()
-        .min_by(|a, b| a.bic.total_cmp(&b.bic))
-        .map(|c| c.k)
 }
 
 /// The report's entry for phase `p` of table `t`, with its BSE statistics when there was a
@@ -460,20 +417,10 @@ fn too_small_for_tiles(result: &Labelled) -> Option<String> {
 
 /// What the user should know about the labelling: a phase count held at the largest
 /// tried, an uneven X-ray yield, fewer phases than asked for, phases near the noise floor.
-fn result_warnings(result: &Labelled, options: &MapOptions) -> Vec<String> {
+fn result_warnings(result: &Labelled) -> Vec<String> {
     let t = result.table;
     let mut warnings = Vec::new();
-    let auto = matches!(options.cluster.phases, PhaseCount::Auto { .. });
-    let largest_tried = result.curve.iter().map(|c| c.k).max();
-    if let (Some(best), Some(max)) = (bic_minimum(result.curve), largest_tried) {
-        if auto && best == max && t.phases.len() + 1 >= max {
-            warnings.push(format!(
-                "the phase count may be limited by the largest count tried: BIC was lowest at {max} components, the most tried, and {} phases remain; try --phases auto:{}",
-                t.phases.len(),
-                max + 4
-            ));
-        }
-    }
+    warnings.extend(result.decision.held_at_largest(t.phases.len()));
     let y = result.xray_yield;
     if y.uneven() {
         warnings.push(format!(
@@ -483,14 +430,7 @@ fn result_warnings(result: &Labelled, options: &MapOptions) -> Vec<String> {
             100.0 * crate::xray_yield::WARN_ABOVE
         ));
     }
-    if let PhaseCount::Fixed(want) = options.cluster.phases {
-        if t.phases.len() < want {
-            warnings.push(format!(
-                "{want} phases were asked for but the data separate only {}: the others were bands of mixed boundary pixels, components too small to keep, or duplicates a single pixel cannot tell apart (see the simplifications); check the BSE image for a phase the maps cannot show",
-                t.phases.len()
-            ));
-        }
-    }
+    warnings.extend(result.decision.short_of_asked(t.phases.len()));
     for p in &t.phases {
         if p.area_fraction < 0.005 && p.pixels < 200 {
             warnings.push(format!(
@@ -524,7 +464,7 @@ fn statistics(result: &Labelled) -> BTreeMap<String, serde_json::Value> {
     );
     statistics.insert(
         "fitted_pixels".into(),
-        serde_json::json!(result.fitted_pixels),
+        serde_json::json!(result.decision.fitted_pixels),
     );
     statistics
 }
