@@ -42,7 +42,7 @@ pub const MAX_CLEARANCE_PX: usize = 8;
 pub const MIN_MATCH_COUNTS: f64 = 400.0;
 
 /// Oxygen rule as given on the command line.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Default, Serialize, Deserialize, clap::ValueEnum)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default, Serialize, Deserialize)]
 #[serde(rename_all = "kebab-case")]
 pub enum OxygenMode {
     /// From its map like any other element (or absent when not mapped).
@@ -53,7 +53,7 @@ pub enum OxygenMode {
 }
 
 /// Background rule as given on the command line.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Default, Serialize, Deserialize, clap::ValueEnum)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default, Serialize, Deserialize)]
 #[serde(rename_all = "kebab-case")]
 pub enum BackgroundMode {
     /// Continuum from the phase poorest in each element, scaled by mean Z.
@@ -61,6 +61,44 @@ pub enum BackgroundMode {
     PoorestPhase,
     /// No background subtracted (the maps hold net counts).
     None,
+}
+
+impl crate::choice::Choice for OxygenMode {
+    const ALL: &'static [OxygenMode] = &[OxygenMode::Measured, OxygenMode::Stoichiometry];
+    fn name(self) -> &'static str {
+        match self {
+            OxygenMode::Measured => "measured",
+            OxygenMode::Stoichiometry => "stoichiometry",
+        }
+    }
+    fn help(self) -> &'static str {
+        match self {
+            OxygenMode::Measured => {
+                "From its map like any other element (or absent when not mapped)"
+            }
+            OxygenMode::Stoichiometry => {
+                "From the other elements and their valences (oxides and silicates)"
+            }
+        }
+    }
+}
+
+impl crate::choice::Choice for BackgroundMode {
+    const ALL: &'static [BackgroundMode] = &[BackgroundMode::PoorestPhase, BackgroundMode::None];
+    fn name(self) -> &'static str {
+        match self {
+            BackgroundMode::PoorestPhase => "poorest-phase",
+            BackgroundMode::None => "none",
+        }
+    }
+    fn help(self) -> &'static str {
+        match self {
+            BackgroundMode::PoorestPhase => {
+                "Continuum from the phase poorest in each element, scaled by mean Z"
+            }
+            BackgroundMode::None => "No background subtracted (the maps hold net counts)",
+        }
+    }
 }
 
 /// The composition options as given.

@@ -139,7 +139,7 @@ pub enum Command {
         #[arg(long, value_name = "FILE")]
         truth: Option<PathBuf>,
         /// Which invented scenario: the bundled solder joint, or a large rock for benchmarks.
-        #[arg(long, value_enum, default_value = "solder-joint")]
+        #[arg(long, value_parser = crate::settings::choice::<Scenario>(), default_value = "solder-joint")]
         scenario: Scenario,
         /// Width and height of the benchmark rock, pixels (2048).
         #[arg(long)]

@@ -10,6 +10,7 @@ pub mod advisor;
 pub mod bse;
 pub mod characterise;
 pub mod chem;
+pub mod choice;
 pub mod cleanup;
 pub mod cli;
 pub mod cluster;

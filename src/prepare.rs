@@ -67,7 +67,7 @@ impl std::str::FromStr for Denoise {
 }
 
 /// The variance-stabilising transform.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize, clap::ValueEnum)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
 #[serde(rename_all = "snake_case")]
 pub enum Stabilise {
     /// Anscombe (1948): 2√(x + 3/8).
@@ -76,6 +76,24 @@ pub enum Stabilise {
     Sqrt,
     /// Raw counts (not recommended: bright elements dominate).
     None,
+}
+
+impl crate::choice::Choice for Stabilise {
+    const ALL: &'static [Stabilise] = &[Stabilise::Anscombe, Stabilise::Sqrt, Stabilise::None];
+    fn name(self) -> &'static str {
+        match self {
+            Stabilise::Anscombe => "anscombe",
+            Stabilise::Sqrt => "sqrt",
+            Stabilise::None => "none",
+        }
+    }
+    fn help(self) -> &'static str {
+        match self {
+            Stabilise::Anscombe => "Anscombe (1948): 2√(x + 3/8)",
+            Stabilise::Sqrt => "Square root: √x (variance 1/4 for Poisson counts)",
+            Stabilise::None => "Raw counts (not recommended: bright elements dominate)",
+        }
+    }
 }
 
 impl Stabilise {

@@ -7,6 +7,7 @@ use std::path::{Path, PathBuf};
 use serde::Deserialize;
 
 use crate::characterise::{BackgroundMode, CompositionOptions, OxygenMode};
+use crate::choice::Choice;
 use crate::cluster::select::{ClusterParams, PhaseCount};
 use crate::cluster::Method;
 use crate::error::{Error, Result};
@@ -15,6 +16,16 @@ use crate::pipeline::MapOptions;
 use crate::prepare::{Denoise, MinCounts, PrepareParams, Stabilise};
 use crate::refine::RefineParams;
 use crate::stack::FieldMetadata;
+
+/// Parses and lists the values of a [`Choice`] for clap, with each value's help.
+pub fn choice<T: Choice>() -> impl clap::builder::TypedValueParser<Value = T> {
+    use clap::builder::{PossibleValue, PossibleValuesParser, TypedValueParser};
+    let values = T::ALL
+        .iter()
+        .map(|&v| PossibleValue::new(v.name()).help(v.help()));
+    PossibleValuesParser::new(values)
+        .map(|name| crate::choice::from_name::<T>(&name).expect("clap offered only these names"))
+}
 
 /// Decoding limits shared by every command that reads maps.
 #[derive(Debug, Clone, clap::Args)]
@@ -60,7 +71,7 @@ pub struct MapArgs {
     #[serde(deserialize_with = "flag_text")]
     pub phases: Option<PhaseCount>,
     /// Clustering method: poisson (mixture of Poisson counts, default), kmeans, gmm.
-    #[arg(long, value_enum)]
+    #[arg(long, value_parser = choice::<Method>())]
     pub method: Option<Method>,
     /// Seed of every random choice (same seed, same result).
     #[arg(long)]
@@ -79,7 +90,7 @@ pub struct MapArgs {
     #[serde(deserialize_with = "flag_text")]
     pub denoise: Option<Denoise>,
     /// Variance-stabilising transform for kmeans and gmm.
-    #[arg(long, value_enum)]
+    #[arg(long, value_parser = choice::<Stabilise>())]
     pub transform: Option<Stabilise>,
     /// Pixels with fewer total counts are empty (default: 15 % of the median total).
     #[arg(long, value_name = "COUNTS")]
@@ -115,13 +126,13 @@ pub struct MapArgs {
     #[arg(long, value_name = "PHASE=COMPOSITION")]
     pub calibrate: Vec<String>,
     /// Oxygen from its map (measured) or from the cations' valences (stoichiometry).
-    #[arg(long, value_enum)]
+    #[arg(long, value_parser = choice::<OxygenMode>())]
     pub oxygen: Option<OxygenMode>,
     /// Valence for oxygen by stoichiometry, e.g. Fe=3 (repeatable; anions negative).
     #[arg(long, value_name = "EL=N")]
     pub valence: Vec<String>,
     /// Continuum background: from the phase poorest in each element (default), or none.
-    #[arg(long, value_enum)]
+    #[arg(long, value_parser = choice::<BackgroundMode>())]
     pub background: Option<BackgroundMode>,
     /// Reference-phase library (format modalmap.phases/1), added to the built-in one;
     /// repeatable.

@@ -805,12 +805,29 @@ pub fn sample_field() -> Result<SynthField> {
 }
 
 /// Synthetic scenarios.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, clap::ValueEnum)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize, serde::Deserialize)]
+#[serde(rename_all = "kebab-case")]
 pub enum Scenario {
     /// The bundled sample field.
     SolderJoint,
     /// A six-mineral rock in ten elements, for benchmarks.
     BenchmarkRock,
+}
+
+impl crate::choice::Choice for Scenario {
+    const ALL: &'static [Scenario] = &[Scenario::SolderJoint, Scenario::BenchmarkRock];
+    fn name(self) -> &'static str {
+        match self {
+            Scenario::SolderJoint => "solder-joint",
+            Scenario::BenchmarkRock => "benchmark-rock",
+        }
+    }
+    fn help(self) -> &'static str {
+        match self {
+            Scenario::SolderJoint => "The bundled sample field",
+            Scenario::BenchmarkRock => "A six-mineral rock in ten elements, for benchmarks",
+        }
+    }
 }
 
 /// Writes the synthetic field of `scenario` into the folder `output` (and its true labels

@@ -33,7 +33,7 @@ pub use model::{FitOptions, PhaseModel, Scoring, Seed};
 pub use poisson::PoissonMixture;
 
 /// Clustering method.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize, clap::ValueEnum)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
 #[serde(rename_all = "snake_case")]
 pub enum Method {
     /// Mixture of Poisson distributions on the counts themselves (the default).
@@ -42,6 +42,26 @@ pub enum Method {
     Kmeans,
     /// Gaussian mixture with full covariances.
     Gmm,
+}
+
+impl crate::choice::Choice for Method {
+    const ALL: &'static [Method] = &[Method::Poisson, Method::Kmeans, Method::Gmm];
+    fn name(self) -> &'static str {
+        match self {
+            Method::Poisson => "poisson",
+            Method::Kmeans => "kmeans",
+            Method::Gmm => "gmm",
+        }
+    }
+    fn help(self) -> &'static str {
+        match self {
+            Method::Poisson => {
+                "Mixture of Poisson distributions on the counts themselves (the default)"
+            }
+            Method::Kmeans => "k-means: every phase a sphere of the same size in feature space",
+            Method::Gmm => "Gaussian mixture with full covariances",
+        }
+    }
 }
 
 impl Method {
