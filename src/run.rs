@@ -194,7 +194,7 @@ fn strip_choice(input: &Path, job: &FieldJob) -> Option<Option<usize>> {
         Stream::Always(rows) => Some(rows),
         Stream::Auto => {
             let limits = job.limits;
-            let big = crate::montage::StreamedField::open(input, &limits)
+            let big = crate::io::rows::StreamedField::open(input, &limits)
                 .is_ok_and(|f| streams_automatically(f.width, f.height, f.lines.len()));
             big.then_some(None)
         }
@@ -384,7 +384,7 @@ fn process_streamed(
 ) -> Result<Report> {
     let dir = crate::report::prepare_output(out, job.force)?;
     let limits = job.limits;
-    let mut field = crate::montage::StreamedField::open(input, &limits)?;
+    let mut field = crate::io::rows::StreamedField::open(input, &limits)?;
     field.metadata.override_with(&job.metadata);
     model.check_symbols(&field.symbols(), input)?;
     let mut warnings = std::mem::take(&mut field.warnings);

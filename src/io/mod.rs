@@ -7,6 +7,7 @@
 pub mod folder;
 pub mod hdf5;
 pub mod raster;
+pub mod rows;
 mod sidecar;
 
 use std::path::{Path, PathBuf};
