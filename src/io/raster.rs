@@ -196,7 +196,7 @@ pub fn decode_raster(
     }
 }
 
-fn corrupt(path: &Path, what: &str, err: impl std::fmt::Display) -> Error {
+pub(crate) fn corrupt(path: &Path, what: &str, err: impl std::fmt::Display) -> Error {
     Error::input(
         path,
         format!("is not a readable {what} ({err})"),
@@ -204,18 +204,19 @@ fn corrupt(path: &Path, what: &str, err: impl std::fmt::Display) -> Error {
     )
 }
 
-fn decode_png(path: &Path, bytes: &[u8], limits: &Limits) -> Result<Raster> {
-    let png_limits = png::Limits {
+/// The PNG decoder's memory limit for images within `limits`.
+pub(crate) fn png_limits(limits: &Limits) -> png::Limits {
+    png::Limits {
         bytes: usize::try_from(limits.max_pixels.saturating_mul(8)).unwrap_or(usize::MAX),
-    };
-    let decoder = png::Decoder::new_with_limits(Cursor::new(bytes), png_limits);
-    let mut reader = decoder.read_info().map_err(|e| corrupt(path, "PNG", e))?;
-    let (w, h, color, depth) = {
-        let info = reader.info();
-        (info.width, info.height, info.color_type, info.bit_depth)
-    };
-    check_size(path, u64::from(w), u64::from(h), limits)?;
-    match color {
+    }
+}
+
+/// Checks a PNG map's header before any pixel is decoded: the declared size against the
+/// limits, grayscale without alpha, 8 or 16 bits. Returns the bit depth. Shared by the
+/// whole-image decoder and the row reader of [`crate::io::rows`].
+pub(crate) fn check_png_header(path: &Path, info: &png::Info<'_>, limits: &Limits) -> Result<u8> {
+    check_size(path, u64::from(info.width), u64::from(info.height), limits)?;
+    match info.color_type {
         png::ColorType::Grayscale => {}
         png::ColorType::GrayscaleAlpha => {
             return Err(Error::input(
@@ -235,7 +236,7 @@ fn decode_png(path: &Path, bytes: &[u8], limits: &Limits) -> Result<Raster> {
             ))
         }
     }
-    let bits = match depth {
+    let bits = match info.bit_depth {
         png::BitDepth::Eight => 8,
         png::BitDepth::Sixteen => 16,
         other => {
@@ -246,6 +247,13 @@ fn decode_png(path: &Path, bytes: &[u8], limits: &Limits) -> Result<Raster> {
             ))
         }
     };
+    Ok(bits)
+}
+
+fn decode_png(path: &Path, bytes: &[u8], limits: &Limits) -> Result<Raster> {
+    let decoder = png::Decoder::new_with_limits(Cursor::new(bytes), png_limits(limits));
+    let mut reader = decoder.read_info().map_err(|e| corrupt(path, "PNG", e))?;
+    let bits = check_png_header(path, reader.info(), limits)?;
     let size = reader
         .output_buffer_size()
         .ok_or_else(|| corrupt(path, "PNG", "image too large for this platform"))?;

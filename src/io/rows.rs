@@ -10,6 +10,7 @@ use std::path::{Path, PathBuf};
 
 use crate::chem::ElementInfo;
 use crate::error::{Error, Result};
+use crate::io::raster::{check_png_header, corrupt, png_limits};
 use crate::io::Limits;
 use crate::stack::{ElementMap, FieldMetadata, MapStack};
 
@@ -45,42 +46,17 @@ struct PngRows {
 impl PngRows {
     fn open(path: &Path, limits: &Limits) -> Result<(PngRows, usize, usize)> {
         let file = crate::guard::open_regular(path, "element map")?;
-        let bad = |p: String| {
-            Error::input(
-                path,
-                p,
-                "export maps as 8- or 16-bit grayscale, non-interlaced PNG",
-            )
-        };
-        let png_limits = png::Limits {
-            bytes: usize::try_from(limits.max_pixels.saturating_mul(8)).unwrap_or(usize::MAX),
-        };
-        let reader = png::Decoder::new_with_limits(BufReader::new(file), png_limits)
+        let reader = png::Decoder::new_with_limits(BufReader::new(file), png_limits(limits))
             .read_info()
-            .map_err(|e| bad(format!("is not a readable PNG ({e})")))?;
+            .map_err(|e| corrupt(path, "PNG", e))?;
         let info = reader.info();
         let (w, h) = (info.width as usize, info.height as usize);
-        if info.color_type != png::ColorType::Grayscale {
-            return Err(bad("is not a grayscale PNG".into()));
-        }
+        let sixteen = check_png_header(path, info, limits)? == 16;
         if info.interlaced {
-            return Err(bad(
-                "is interlaced, so it cannot be read a row at a time".into()
-            ));
-        }
-        let sixteen = match info.bit_depth {
-            png::BitDepth::Eight => false,
-            png::BitDepth::Sixteen => true,
-            d => return Err(bad(format!("is a {}-bit PNG", d as u8))),
-        };
-        if (w as u64).saturating_mul(h as u64) > limits.max_pixels {
             return Err(Error::input(
                 path,
-                format!(
-                    "declares {w}×{h} pixels, above the limit of {}",
-                    limits.max_pixels
-                ),
-                "raise --max-pixels if the montage is genuine",
+                "is an interlaced PNG, so it cannot be read a row at a time",
+                "export the maps as non-interlaced PNG",
             ));
         }
         Ok((
@@ -384,5 +360,59 @@ impl StreamedField {
         }
         self.sources = sources;
         Ok(())
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::io::raster::{read_raster, write_png_rgb, write_png_u16, write_png_u8};
+
+    /// Rows read in windows (out of order, overlapping, as the strips with their halos
+    /// read them) are the rows of the whole-image decoder.
+    #[test]
+    fn png_row_windows_match_the_whole_image_decoder() {
+        let dir = tempfile::tempdir().unwrap();
+        let (w, h) = (7, 11);
+        let u16s: Vec<u16> = (0..w * h).map(|i| (i * 611 % 65_521) as u16).collect();
+        let u8s: Vec<u8> = (0..w * h).map(|i| (i * 37 % 251) as u8).collect();
+        let p16 = dir.path().join("a16.png");
+        let p8 = dir.path().join("a8.png");
+        write_png_u16(&p16, w, h, &u16s).unwrap();
+        write_png_u8(&p8, w, h, &u8s).unwrap();
+        for p in [&p16, &p8] {
+            let whole = read_raster(p, &Limits::default()).unwrap().data;
+            let (mut rows, rw, rh) = PngRows::open(p, &Limits::default()).unwrap();
+            assert_eq!((rw, rh), (w, h));
+            for (y0, n) in [(0, 3), (2, 4), (5, 6), (5, 1), (9, 2)] {
+                let got = rows.rows(y0, n).unwrap();
+                assert_eq!(
+                    got,
+                    whole[y0 * w..(y0 + n) * w],
+                    "{} rows {y0}+{n}",
+                    p.display()
+                );
+            }
+        }
+    }
+
+    /// The row reader refuses what the whole-image decoder refuses, with the same words.
+    #[test]
+    fn png_rows_refuse_what_the_whole_decoder_refuses() {
+        let dir = tempfile::tempdir().unwrap();
+        let rgb = dir.path().join("rgb.png");
+        write_png_rgb(&rgb, 2, 2, &[0; 12]).unwrap();
+        let big = dir.path().join("big.png");
+        write_png_u8(&big, 100, 100, &vec![1; 10_000]).unwrap();
+        for (p, limits) in [
+            (&rgb, Limits::default()),
+            (&big, Limits { max_pixels: 9_999 }),
+        ] {
+            let whole = read_raster(p, &limits).unwrap_err();
+            let Err(rows) = PngRows::open(p, &limits) else {
+                panic!("{} was read by rows", p.display());
+            };
+            assert_eq!(rows.to_string(), whole.to_string());
+        }
     }
 }
