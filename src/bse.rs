@@ -627,7 +627,7 @@ fn phase_statistics(
         for x in 1..w.saturating_sub(1) {
             let i = y * w + x;
             let v = registered[i];
-            if v.is_finite() && crate::phases::interior_3x3(labels, w, x, y) {
+            if v.is_finite() && crate::labels::interior_3x3(labels, w, x, y) {
                 let s = &mut stats[labels[i] as usize - 1];
                 s.0 += 1;
                 s.1 += f64::from(v);

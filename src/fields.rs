@@ -25,8 +25,8 @@ use serde::{Deserialize, Serialize};
 
 use crate::cluster::Clusters;
 use crate::error::{Error, Result};
+use crate::map_options::MapOptions;
 use crate::phases::mean_ci;
-use crate::pipeline::MapOptions;
 use crate::report::{InputFile, Report};
 use crate::stack::{ElementMap, MapStack};
 

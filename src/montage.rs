@@ -21,8 +21,8 @@ use crate::chem::ElementInfo;
 use crate::cluster::Clusters;
 use crate::error::{Error, Result};
 use crate::io::rows::StreamedField;
+use crate::map_options::ValidMapOptions;
 use crate::phases::{table_from_sums, ClearSums, PhaseSums, PhaseTable, MAX_CLEARANCE};
-use crate::pipeline::ValidMapOptions;
 use crate::prepare::{
     empty_share, median_total, prepare_window, Denoise, MinCounts, WindowContext,
 };

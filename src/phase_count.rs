@@ -13,7 +13,7 @@ use crate::cluster::select::{self, CurvePoint, PhaseCount};
 use crate::cluster::simplify::{self, Simplification};
 use crate::cluster::{Clusters, Method};
 use crate::error::Result;
-use crate::pipeline::ValidMapOptions;
+use crate::map_options::ValidMapOptions;
 use crate::prepare::{Features, Stabilise};
 use crate::refine::{interior_fractions, refine, Segmentation};
 

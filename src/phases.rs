@@ -12,7 +12,6 @@
 //! field is, not the counting noise of the pixels; for a statement about the material, pool
 //! several fields (`merge`).
 
-use image::{ImageBuffer, Luma};
 use rayon::prelude::*;
 use serde::{Deserialize, Serialize};
 use statrs::distribution::{ContinuousCDF, StudentsT};
@@ -21,6 +20,7 @@ use crate::chem::quant::{
     quantify, BackgroundRule, KFactors, Oxygen, PhaseComposition, PhaseCounts, Rules,
 };
 use crate::chem::ElementInfo;
+use crate::labels::boundary_distance;
 use crate::refine::Segmentation;
 use crate::stack::MapStack;
 
@@ -491,46 +491,6 @@ impl ClearSums {
     }
 }
 
-/// Whether pixel (x, y) of a `width`-wide label image is interior: it and its eight
-/// neighbours hold the same non-zero label. The caller keeps (x, y) one pixel off the edge.
-pub fn interior_3x3(labels: &[u16], width: usize, x: usize, y: usize) -> bool {
-    let l = labels[y * width + x];
-    l != 0
-        && (y - 1..=y + 1).all(|yy| {
-            labels[yy * width + x - 1..=yy * width + x + 1]
-                .iter()
-                .all(|&m| m == l)
-        })
-}
-
-/// Chessboard distance of every pixel of a `width × height` label image to the nearest
-/// boundary pixel (one with another label among its 8 neighbours), capped at 255: a pixel
-/// at distance r has no other label within r pixels. `None` when the image holds one label.
-pub fn boundary_distance(labels: &[u16], width: usize, height: usize) -> Option<Vec<u8>> {
-    use imageproc::distance_transform::{distance_transform, Norm};
-    let mut boundary = vec![0u8; width * height];
-    boundary
-        .par_chunks_mut(width)
-        .enumerate()
-        .for_each(|(y, row)| {
-            for (x, b) in row.iter_mut().enumerate() {
-                let l = labels[y * width + x];
-                let differs = (y.saturating_sub(1)..(y + 2).min(height)).any(|yy| {
-                    (x.saturating_sub(1)..(x + 2).min(width)).any(|xx| labels[yy * width + xx] != l)
-                });
-                if differs {
-                    *b = 255;
-                }
-            }
-        });
-    if !boundary.iter().any(|&v| v > 0) {
-        return None;
-    }
-    let img: ImageBuffer<Luma<u8>, Vec<u8>> =
-        ImageBuffer::from_raw(width as u32, height as u32, boundary).expect("size matches");
-    Some(distance_transform(&img, Norm::LInf).into_raw())
-}
-
 /// Summed counts of each phase (label 1..=k) over its interior: pixels with no other label
 /// (unassigned included) within `radius` pixels (chessboard distance). A phase with fewer
 /// than [`MIN_COMPOSITION_PIXELS`] such pixels is summed over all its pixels; the flag says
@@ -650,6 +610,7 @@ pub fn component_sizes(labels: &[u16], w: usize, h: usize) -> Vec<(u16, usize)> 
 #[cfg(test)]
 mod tests {
     use super::*;
+    use image::{ImageBuffer, Luma};
 
     /// ASTM E562 worked example (references.md §7, computed there): five fields at 10, 12,
     /// 8, 11, 9 % give mean 10.0, s 1.581, t 2.776, 95 % CI ± 1.963, %RA 19.6.

@@ -1,112 +1,18 @@
 //! The main job for one field, stage after stage: prepare → phase count (fit, simplify,
-//! refine; [`crate::phase_count`]) → X-ray yield → refit → refine → phase statistics. No I/O here: loading and writing belong to `io` and `report`.
+//! refine; [`crate::phase_count`]) → X-ray yield → refit → refine → phase statistics.
+//! No I/O here: loading and writing belong to `io` and `report`.
 
-use serde::{Deserialize, Serialize};
-
-use crate::cluster::select::{self, ClusterParams, ValidClusterParams};
+use crate::cluster::select::{self, ClusterParams};
 use crate::cluster::{Clusters, Method};
 use crate::error::{Error, Result};
+pub use crate::map_options::{MapOptions, ValidMapOptions};
 use crate::phase_count::{self, Counted, Decision};
 use crate::phases::{phase_table, phase_table_in_order, PhaseTable};
+use crate::prepare::prepare;
 use crate::prepare::Features;
-use crate::prepare::{prepare, FeatureTransform, PrepareParams, Stabilise};
-use crate::refine::{
-    interior_means, refine, refine_from, RefineParams, Segmentation, ValidRefineParams,
-};
+use crate::refine::{interior_means, refine, refine_from, Segmentation};
 use crate::stack::MapStack;
 use crate::xray_yield::YieldField;
-
-/// Every option of `map`, as given (command line and configuration file merged).
-#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
-pub struct MapOptions {
-    /// Prepare stage (the transform is ignored by the Poisson method, which works on counts).
-    pub prepare: PrepareParams,
-    /// Cluster stage.
-    pub cluster: ClusterParams,
-    /// Refine stage.
-    pub refine: RefineParams,
-    /// With an automatic phase count: phases smaller than this share of the pixels are
-    /// dissolved into their neighbours.
-    pub min_phase_fraction: f64,
-}
-
-impl Default for MapOptions {
-    fn default() -> Self {
-        MapOptions {
-            prepare: PrepareParams::default(),
-            cluster: ClusterParams::default(),
-            refine: RefineParams::default(),
-            min_phase_fraction: 2e-4,
-        }
-    }
-}
-
-/// Checked options.
-#[derive(Debug, Clone, Copy, PartialEq)]
-pub struct ValidMapOptions {
-    transform: FeatureTransform,
-    cluster: ValidClusterParams,
-    refine: ValidRefineParams,
-    min_phase_fraction: f64,
-    given: MapOptions,
-}
-
-impl MapOptions {
-    /// Checks every stage's options; the Poisson method always works on raw counts.
-    pub fn check(self) -> Result<ValidMapOptions> {
-        let mut prep = self.prepare;
-        if self.cluster.method == Method::Poisson {
-            prep.stabilise = Stabilise::None;
-            prep.dequantise = false;
-        }
-        if !(0.0..0.5).contains(&self.min_phase_fraction) {
-            return Err(Error::options(
-                format!(
-                    "minimum phase size {} is out of range",
-                    self.min_phase_fraction
-                ),
-                "give a share of the pixels from 0 to below 0.5, e.g. 0.0002",
-            ));
-        }
-        Ok(ValidMapOptions {
-            transform: prep.check()?,
-            cluster: self.cluster.check()?,
-            refine: self.refine.check()?,
-            min_phase_fraction: self.min_phase_fraction,
-            given: MapOptions {
-                prepare: prep,
-                ..self
-            },
-        })
-    }
-}
-
-impl ValidMapOptions {
-    /// The options as they were applied.
-    pub fn options(&self) -> &MapOptions {
-        &self.given
-    }
-
-    /// The checked feature transform.
-    pub fn transform(&self) -> FeatureTransform {
-        self.transform
-    }
-
-    /// The checked refine options.
-    pub fn refine(&self) -> ValidRefineParams {
-        self.refine
-    }
-
-    /// The checked cluster options.
-    pub fn cluster(&self) -> &ValidClusterParams {
-        &self.cluster
-    }
-
-    /// The size floor of a phase, as a share of the pixels.
-    pub fn min_phase_fraction(&self) -> f64 {
-        self.min_phase_fraction
-    }
-}
 
 /// Everything the main job computes for a field.
 #[derive(Debug, Clone)]
@@ -151,7 +57,7 @@ pub fn map_stack_with_progress(
     opts: &ValidMapOptions,
     progress: &mut dyn FnMut(&str),
 ) -> Result<MapResult> {
-    let p = opts.cluster.get();
+    let p = opts.cluster().get();
     let by_poisson = p.method != Method::Poisson;
     let counting = if by_poisson {
         MapOptions {
@@ -167,7 +73,7 @@ pub fn map_stack_with_progress(
     };
     progress("preparing features");
     let t = crate::profile::stage("prepare");
-    let f = prepare(stack, &counting.transform)?;
+    let f = prepare(stack, &counting.transform())?;
     drop(t);
     let mut chosen = phase_count::decide(&f, &counting, progress)?;
     if by_poisson {
@@ -184,15 +90,15 @@ pub fn map_stack_with_progress(
     shading.correct(&mut counts);
     progress("fitting the phase model");
     let t = crate::profile::stage("prepare");
-    let f = prepare(counts, &opts.transform.unbinned())?;
+    let f = prepare(counts, &opts.transform().unbinned())?;
     drop(t);
     let t = crate::profile::stage("fit");
     let k = chosen.clusters.k();
     let first = into_labels(chosen.seg);
-    let fit = select::fit_from_labels(&f, &first, k, &opts.cluster)?;
+    let fit = select::fit_from_labels(&f, &first, k, opts.cluster())?;
     drop(t);
     let t = crate::profile::stage("refine");
-    let seg = refine(&f, &fit.clusters, &opts.refine);
+    let seg = refine(&f, &fit.clusters, &opts.refine());
     drop(t);
     drop(first);
     let chosen = Counted {
@@ -244,7 +150,7 @@ fn finish(
         seg.confidence = Vec::new();
         seg.smoothed_labels = Vec::new();
         seg.outliers = Vec::new();
-        seg = refine_from(&f, &clusters, &opts.refine, Some(&seg));
+        seg = refine_from(&f, &clusters, &opts.refine(), Some(&seg));
     }
     progress("phase statistics");
     let _t = crate::profile::stage("phase table");
@@ -269,7 +175,7 @@ pub fn label_with_model(
     clusters: &Clusters,
     order: &[usize],
 ) -> Result<MapResult> {
-    let f = prepare(stack, &opts.transform)?;
+    let f = prepare(stack, &opts.transform())?;
     if f.dims != clusters.d() {
         return Err(Error::internal(format!(
             "the model has {} dimensions but the field {}",
@@ -277,15 +183,15 @@ pub fn label_with_model(
             f.dims
         )));
     }
-    let mut seg = refine(&f, clusters, &opts.refine);
+    let mut seg = refine(&f, clusters, &opts.refine());
     // The yield of this field, from the model's first labelling; where it is uneven the
     // corrected counts are labelled again.
     let shading = crate::xray_yield::estimate(&f.counts, &seg.labels, clusters.k());
     let f = if shading.applied {
         let mut counts = into_counts(f);
         shading.correct(&mut counts);
-        let f = prepare(counts, &opts.transform.unbinned())?;
-        seg = refine(&f, clusters, &opts.refine);
+        let f = prepare(counts, &opts.transform().unbinned())?;
+        seg = refine(&f, clusters, &opts.refine());
         f
     } else {
         f
@@ -293,7 +199,7 @@ pub fn label_with_model(
     let table = phase_table_in_order(&mut seg, &f.counts, clusters.k(), Some(order));
     Ok(MapResult {
         clusters: clusters.clone(),
-        decision: Decision::saved_model(opts.cluster.get().phases),
+        decision: Decision::saved_model(opts.cluster().get().phases),
         segmentation: seg,
         table,
         counts: f.counts,

@@ -1140,7 +1140,7 @@ pub fn interior_means(f: &Features, seg: &Segmentation, k: usize) -> Vec<Option<
     for y in 1..h.saturating_sub(1) {
         for x in 1..w.saturating_sub(1) {
             let l = seg.labels[y * w + x];
-            if crate::phases::interior_3x3(&seg.labels, w, x, y) {
+            if crate::labels::interior_3x3(&seg.labels, w, x, y) {
                 let c = l as usize - 1;
                 count[c] += 1;
                 for (s, &v) in sum[c * d..(c + 1) * d].iter_mut().zip(f.row(y * w + x)) {

@@ -12,7 +12,7 @@ use crate::characterise::ValidCompositionOptions;
 use crate::error::{Error, Result};
 use crate::fields::{ModelRef, PhaseModel};
 use crate::io::{load_field, BseSource, Limits};
-use crate::pipeline::ValidMapOptions;
+use crate::map_options::ValidMapOptions;
 use crate::report::Report;
 use crate::stack::FieldMetadata;
 
@@ -279,7 +279,7 @@ fn load_inputs(input: &Path, job: &FieldJob) -> Result<Inputs> {
         skipped,
         ..
     } = field;
-    warnings.extend(dropped_inputs(&skipped));
+    warnings.extend(crate::io::dropped_inputs(&skipped));
     add_composition_inputs(&mut files, job);
     // The BSE image is an input too.
     if let Some(BseSource::File(p)) = bse_source {
@@ -344,16 +344,6 @@ fn report_and_write(
     crate::report::write_outputs(&dir, &report, labelled, bse)?;
     dir.commit()?;
     Ok(report)
-}
-
-/// A warning for every file or dataset of the field that was not used (but the BSE
-/// images, which the BSE check uses), so that nothing is dropped without a word.
-pub(crate) fn dropped_inputs(skipped: &[crate::io::Skipped]) -> Vec<String> {
-    skipped
-        .iter()
-        .filter(|s| !crate::io::folder::is_bse_name(&s.name))
-        .map(|s| format!("{} was not used: {}", s.name, s.reason))
-        .collect()
 }
 
 /// k-factor and library files are inputs too: their hashes go into the provenance.

@@ -12,7 +12,7 @@ use crate::cluster::select::{ClusterParams, PhaseCount};
 use crate::cluster::Method;
 use crate::error::{Error, Result};
 use crate::io::Limits;
-use crate::pipeline::MapOptions;
+use crate::map_options::MapOptions;
 use crate::prepare::{Denoise, MinCounts, PrepareParams, Stabilise};
 use crate::refine::RefineParams;
 use crate::stack::FieldMetadata;

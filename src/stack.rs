@@ -108,8 +108,9 @@ pub struct MapStack {
 }
 
 /// Most element maps a field may hold: the clustering kernels keep a pixel's features in
-/// fixed-size arrays of this length (`cluster::lanes::MAX_DIMS`).
-pub const MAX_MAPS: usize = crate::cluster::lanes::MAX_DIMS;
+/// fixed-size arrays of this length (`cluster::lanes::MAX_DIMS`), far more than the
+/// elements an EDS field maps.
+pub const MAX_MAPS: usize = 64;
 
 impl MapStack {
     /// Multiplies every count of pixel i, in every map, by `factor[i]` (one factor per

@@ -459,7 +459,7 @@ pub fn unmix(
     wanted: &[bool],
 ) -> Option<Unmixing> {
     let k = wanted.len();
-    let dist = crate::phases::boundary_distance(labels, width, height)?;
+    let dist = crate::labels::boundary_distance(labels, width, height)?;
     let comp = Components {
         labels,
         width,
@@ -621,7 +621,7 @@ mod tests {
             k,
             count: k + usize::from(labels.contains(&0)),
         };
-        let dist = crate::phases::boundary_distance(labels, w, h).unwrap();
+        let dist = crate::labels::boundary_distance(labels, w, h).unwrap();
         (comp, kernel(sigma), dist)
     }
 

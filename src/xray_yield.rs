@@ -223,12 +223,12 @@ struct Sample {
     phase: usize,
 }
 
-/// The interior pixels of the labelling ([`crate::phases::interior_3x3`]), at most
+/// The interior pixels of the labelling ([`crate::labels::interior_3x3`]), at most
 /// [`FIT_PIXELS`] of them at an even stride.
 fn interior_samples(counts: &MapStack, labels: &[u16], k: usize, layout: &Layout) -> Vec<Sample> {
     let (w, h) = (counts.width(), counts.height());
     let inside = |i: usize| {
-        usize::from(labels[i]) <= k && crate::phases::interior_3x3(labels, w, i % w, i / w)
+        usize::from(labels[i]) <= k && crate::labels::interior_3x3(labels, w, i % w, i / w)
     };
     let interior = || {
         (1..h.saturating_sub(1))

@@ -14,8 +14,9 @@ pub const LANES: usize = 8;
 /// One value per pixel of a block.
 pub type Lane = [f32; LANES];
 
-/// Largest dimension the kernels support (the element count of a stack is far smaller).
-pub const MAX_DIMS: usize = 64;
+/// Largest dimension the kernels support: a pixel's features are kept in fixed-size arrays
+/// of this length, one value per element map ([`crate::stack::MAX_MAPS`]).
+pub const MAX_DIMS: usize = crate::stack::MAX_MAPS;
 
 /// Transposes `rows` (`m × d`, `1 ≤ m ≤ LANES`) into `xt[..d]`; lanes past `m` repeat the
 /// last row, so they hold finite values that callers ignore.

@@ -28,6 +28,16 @@ pub struct Skipped {
     pub reason: String,
 }
 
+/// A warning for every file or dataset of the field that was not used (but the BSE
+/// images, which the BSE check uses), so that nothing is dropped without a word.
+pub(crate) fn dropped_inputs(skipped: &[Skipped]) -> Vec<String> {
+    skipped
+        .iter()
+        .filter(|s| !folder::is_bse_name(&s.name))
+        .map(|s| format!("{} was not used: {}", s.name, s.reason))
+        .collect()
+}
+
 /// Where a backscattered-electron image was found beside the maps.
 #[derive(Debug, Clone, PartialEq)]
 pub enum BseSource {

@@ -269,7 +269,7 @@ impl StreamedField {
             warnings: listing
                 .warnings
                 .into_iter()
-                .chain(crate::run::dropped_inputs(&listing.skipped))
+                .chain(crate::io::dropped_inputs(&listing.skipped))
                 .collect(),
             has_bse: !listing.bse_files.is_empty(),
             sources,

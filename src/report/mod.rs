@@ -18,7 +18,7 @@ use sha2::{Digest, Sha256};
 pub use output::{prepare_output, write_file_atomically, OutputDir, Scratch};
 
 use crate::error::{Error, Result};
-use crate::pipeline::MapOptions;
+use crate::map_options::MapOptions;
 
 /// The report's schema name.
 pub const SCHEMA: &str = "modalmap.report/1";
