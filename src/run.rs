@@ -8,13 +8,21 @@ use std::path::{Path, PathBuf};
 
 use serde::{Deserialize, Serialize};
 
-use crate::characterise::ValidCompositionOptions;
+use crate::advisor::Advice;
+use crate::bse::{BseImage, Geometry};
+use crate::characterise::{CompositionReport, ValidCompositionOptions};
+use crate::chem::ElementInfo;
 use crate::error::{Error, Result};
 use crate::fields::{ModelRef, PhaseModel};
+use crate::io::rows::StreamedField;
 use crate::io::{load_field, BseSource, Limits};
 use crate::map_options::ValidMapOptions;
+use crate::phase_count::Decision;
+use crate::phases::{ClearSums, PhaseTable};
+use crate::refine::Segmentation;
 use crate::report::Report;
-use crate::stack::FieldMetadata;
+use crate::stack::{FieldMetadata, MapStack};
+use crate::xray_yield::YieldField;
 
 /// How a field's pixels are labelled.
 #[derive(Debug, Clone, Copy)]
@@ -108,6 +116,11 @@ pub enum Stream {
 pub const STREAM_ABOVE_VALUES: u64 = 1 << 28;
 
 /// Runs one field into `out` (atomically); `progress` hears the stage names.
+///
+/// One path for every field: a field source (read whole, or strip by strip with a saved
+/// model) labels it, with a model fitted here or the job's saved model, into a
+/// [`LabelledField`]; the shared tail ([`finish_field`]) then takes it through the
+/// compositions, the BSE check, the report and the outputs.
 pub fn process_field(
     input: &Path,
     out: &Path,
@@ -115,14 +128,57 @@ pub fn process_field(
     progress: &mut dyn FnMut(&str),
 ) -> Result<Report> {
     job.check_output(input, out)?;
-    if let Labelling::Model { model, reference } = job.labelling {
-        if let Some(rows) = strip_choice(input, job) {
-            return process_streamed(input, out, job, model, reference, rows, progress);
-        }
-    }
+    let strips = match job.labelling {
+        Labelling::Model { model, .. } => strip_choice(input, job).map(|rows| (model, rows)),
+        Labelling::Fit => None,
+    };
     let dir = crate::report::prepare_output(out, job.force)?;
-    let mut inputs = load_inputs(input, job)?;
-    inputs.warnings.extend(dir.recovered.iter().cloned());
+    let field = match strips {
+        Some((model, rows)) => label_strips(input, job, model, rows, &dir.recovered, progress)?,
+        None => label_whole(input, job, &dir.recovered, progress)?,
+    };
+    finish_field(dir, field, job, progress)
+}
+
+/// A field labelled by one of the field sources, handed to the shared tail.
+struct LabelledField {
+    name: String,
+    /// Every file read (maps, BSE image, k-factor and library files), for the provenance.
+    files: Vec<PathBuf>,
+    warnings: Vec<String>,
+    lines: Vec<(ElementInfo, Option<String>)>,
+    metadata: FieldMetadata,
+    table: PhaseTable,
+    segmentation: Segmentation,
+    decision: Decision,
+    min_counts_used: f64,
+    xray_yield: YieldField,
+    counts: Counts,
+    /// The BSE image and how it relates to the maps, when the check runs.
+    bse: Option<(BseImage, Geometry)>,
+}
+
+/// The counts behind a labelled field, for its compositions.
+enum Counts {
+    /// The field held whole, on the label grid.
+    Whole(MapStack),
+    /// A field read strip by strip: the interior sums added over the strips (by model
+    /// index), and the field, read whole a third time only if a thin phase needs unmixing
+    /// and the field fits in memory.
+    Strips {
+        clear: ClearSums,
+        field: StreamedField,
+    },
+}
+
+/// Field source 1: the field read whole, labelled by a model fitted here or the job's
+/// saved model. `recovered` are the output folder's warnings, reported after the loader's.
+fn label_whole(
+    input: &Path,
+    job: &FieldJob,
+    recovered: &[String],
+    progress: &mut dyn FnMut(&str),
+) -> Result<LabelledField> {
     let Inputs {
         stack,
         name,
@@ -130,59 +186,214 @@ pub fn process_field(
         mut warnings,
         bse,
         geometry,
-    } = inputs;
-    let mut result = label(stack, job, &mut warnings, progress)?;
+    } = load_inputs(input, job)?;
+    warnings.extend(recovered.iter().cloned());
+    let result = label(stack, job, &mut warnings, progress)?;
+    let crate::pipeline::MapResult {
+        decision,
+        segmentation,
+        table,
+        counts,
+        min_counts_used,
+        xray_yield,
+        ..
+    } = result;
+    Ok(LabelledField {
+        name,
+        files,
+        warnings,
+        lines: counts
+            .maps()
+            .iter()
+            .map(|m| (m.element, m.line.clone()))
+            .collect(),
+        metadata: counts.metadata().clone(),
+        table,
+        segmentation,
+        decision,
+        min_counts_used,
+        xray_yield,
+        counts: Counts::Whole(counts),
+        bse: bse.map(|img| (img, geometry)),
+    })
+}
+
+/// Field source 2: a field too big to hold whole, labelled strip by strip with a saved
+/// model ([`crate::montage`]); `strip` is the strip height if given.
+fn label_strips(
+    input: &Path,
+    job: &FieldJob,
+    model: &PhaseModel,
+    strip: Option<usize>,
+    recovered: &[String],
+    progress: &mut dyn FnMut(&str),
+) -> Result<LabelledField> {
+    let mut field = StreamedField::open(input, &job.limits)?;
+    field.metadata.override_with(&job.metadata);
+    model.check_symbols(&field.symbols(), input)?;
+    let mut warnings = std::mem::take(&mut field.warnings);
+    warnings.extend(recovered.iter().cloned());
+    if !job.no_bse && field.has_bse {
+        warnings.push(
+            "the BSE check is not run on a field labelled strip by strip (a montage); check the contrast on a field small enough to map whole".into(),
+        );
+    }
+    let crate::montage::Streamed {
+        table,
+        segmentation,
+        clear,
+        min_counts_used,
+        ..
+    } = crate::montage::label_streamed(
+        &mut field,
+        job.map,
+        &model.clusters,
+        &model.order(),
+        strip,
+        &mut |done, all| progress(&format!("strip {done} of {all}")),
+    )?;
+    let mut files = field.files.clone();
+    add_composition_inputs(&mut files, job);
+    Ok(LabelledField {
+        name: field.name.clone(),
+        files,
+        warnings,
+        lines: field.lines.clone(),
+        metadata: field.metadata.clone(),
+        table,
+        segmentation,
+        decision: Decision::saved_model(job.map.cluster().get().phases),
+        min_counts_used,
+        xray_yield: YieldField::not_estimated(
+            "not estimated when the field is labelled strip by strip (--stream)",
+        ),
+        counts: Counts::Strips { clear, field },
+        bse: None,
+    })
+}
+
+/// The shared tail of every field: compositions, the saved model's names, the BSE check,
+/// then the report and every output written into `dir`, committed at the end.
+fn finish_field(
+    dir: crate::report::OutputDir,
+    mut field: LabelledField,
+    job: &FieldJob,
+    progress: &mut dyn FnMut(&str),
+) -> Result<Report> {
     progress("compositions");
-    let (composition_report, advice) = {
-        let _t = crate::profile::stage("composition");
-        crate::pipeline::characterise(&mut result, job.composition)?
-    };
+    let (composition, advice) = compositions(&mut field, job)?;
     let model_ref = match job.labelling {
         Labelling::Model { model, reference } => {
-            use_model_names(&mut result.table, model);
+            use_model_names(&mut field.table, model);
             Some(reference)
         }
         Labelling::Fit => None,
     };
-    let bse = match &bse {
-        Some(img) => {
+    let bse = match &field.bse {
+        Some((img, geometry)) => {
             progress("BSE check");
             let _t = crate::profile::stage("bse check");
-            let seg = &result.segmentation;
+            let seg = &field.segmentation;
             Some(crate::bse::check(
                 img,
                 &seg.labels,
                 seg.width,
                 seg.height,
-                &result.table,
-                geometry,
+                &field.table,
+                *geometry,
             )?)
         }
         None => None,
     };
-    let lines: Vec<_> = result
-        .counts
-        .maps()
-        .iter()
-        .map(|m| (m.element, m.line.clone()))
-        .collect();
     let labelled = crate::report::Labelled {
-        table: &result.table,
-        segmentation: &result.segmentation,
-        decision: &result.decision,
-        min_counts_used: result.min_counts_used,
-        xray_yield: &result.xray_yield,
-        metadata: result.counts.metadata(),
-        lines: &lines,
-        counts: Some(&result.counts),
+        table: &field.table,
+        segmentation: &field.segmentation,
+        decision: &field.decision,
+        min_counts_used: field.min_counts_used,
+        xray_yield: &field.xray_yield,
+        metadata: &field.metadata,
+        lines: &field.lines,
+        counts: match &field.counts {
+            Counts::Whole(stack) => Some(stack),
+            Counts::Strips { .. } => None,
+        },
     };
     let findings = crate::report::Findings {
         bse: bse.as_ref(),
-        composition: &composition_report,
+        composition: &composition,
         advisor: &advice,
         model: model_ref,
     };
-    report_and_write(dir, (&name, &files), &labelled, job, warnings, findings)
+    let t = crate::profile::stage("report (hashes)");
+    let report = crate::report::build(
+        &field.name,
+        &field.files,
+        &labelled,
+        job.map.options(),
+        field.warnings.clone(),
+        findings,
+    )?;
+    drop(t);
+    let _t = crate::profile::stage("write outputs");
+    crate::report::write_outputs(&dir, &report, &labelled, bse.as_ref())?;
+    dir.commit()?;
+    Ok(report)
+}
+
+/// Compositions, reference names and beam advice of a labelled field, from the counts
+/// its source kept ([`crate::characterise`]); notes on what could not be done go to the
+/// field's warnings.
+fn compositions(field: &mut LabelledField, job: &FieldJob) -> Result<(CompositionReport, Advice)> {
+    let seg = &field.segmentation;
+    let (clear, streamed) = match &mut field.counts {
+        Counts::Whole(stack) => {
+            let _t = crate::profile::stage("composition");
+            return crate::characterise::characterise(
+                &mut field.table,
+                &seg.labels,
+                seg.width,
+                seg.height,
+                stack,
+                job.composition,
+            );
+        }
+        Counts::Strips { clear, field } => (clear, field),
+    };
+    let model_index: Vec<usize> = field.table.phases.iter().map(|p| p.model_index).collect();
+    let whole = std::cell::RefCell::new((streamed, None));
+    let bin = job.map.options().prepare.bin;
+    let max_values = job.limits.max_field_values();
+    let unmix = |wanted: &[bool]| -> Option<crate::unmix::Unmixing> {
+        let mut w = whole.borrow_mut();
+        let stack = match w.0.read_whole(bin, max_values) {
+            Ok(Some(s)) => s,
+            Ok(None) => {
+                w.1 = Some("the field is too large to hold whole, so phases without interior pixels are not unmixed from their neighbours (raise --max-pixels to allow it)".to_string());
+                return None;
+            }
+            Err(e) => {
+                w.1 = Some(format!(
+                    "phases without interior pixels are not unmixed: {e}"
+                ));
+                return None;
+            }
+        };
+        let planes: Vec<&[f32]> = stack.maps().iter().map(|m| m.counts.as_slice()).collect();
+        crate::unmix::unmix(&seg.labels, seg.width, seg.height, &planes, wanted)
+    };
+    let found = crate::characterise::characterise_with(
+        &mut field.table,
+        &field.lines,
+        &field.metadata,
+        &|r| {
+            let by_model = clear.at(r);
+            model_index.iter().map(|&m| by_model[m].clone()).collect()
+        },
+        &unmix,
+        job.composition,
+    )?;
+    field.warnings.extend(whole.into_inner().1);
+    Ok(found)
 }
 
 /// Whether a field labelled with a saved model is streamed, and with which strip height
@@ -325,27 +536,6 @@ fn label(
     }
 }
 
-/// The shared tail of every field: builds the report from the labelled field and the
-/// findings, writes every output into `dir` and commits it.
-fn report_and_write(
-    dir: crate::report::OutputDir,
-    (name, files): (&str, &[PathBuf]),
-    labelled: &crate::report::Labelled,
-    job: &FieldJob,
-    warnings: Vec<String>,
-    findings: crate::report::Findings,
-) -> Result<Report> {
-    let t = crate::profile::stage("report (hashes)");
-    let bse = findings.bse;
-    let report =
-        crate::report::build(name, files, labelled, job.map.options(), warnings, findings)?;
-    drop(t);
-    let _t = crate::profile::stage("write outputs");
-    crate::report::write_outputs(&dir, &report, labelled, bse)?;
-    dir.commit()?;
-    Ok(report)
-}
-
 /// k-factor and library files are inputs too: their hashes go into the provenance.
 fn add_composition_inputs(files: &mut Vec<PathBuf>, job: &FieldJob) {
     for (_, p) in job.composition.input_files() {
@@ -360,113 +550,6 @@ fn use_model_names(table: &mut crate::phases::PhaseTable, model: &PhaseModel) {
     for (p, m) in table.phases.iter_mut().zip(&model.phases) {
         p.name = m.name.clone();
     }
-}
-
-/// [`process_field`] for a field labelled strip by strip with a saved model.
-fn process_streamed(
-    input: &Path,
-    out: &Path,
-    job: &FieldJob,
-    model: &PhaseModel,
-    reference: &ModelRef,
-    strip: Option<usize>,
-    progress: &mut dyn FnMut(&str),
-) -> Result<Report> {
-    let dir = crate::report::prepare_output(out, job.force)?;
-    let limits = job.limits;
-    let mut field = crate::io::rows::StreamedField::open(input, &limits)?;
-    field.metadata.override_with(&job.metadata);
-    model.check_symbols(&field.symbols(), input)?;
-    let mut warnings = std::mem::take(&mut field.warnings);
-    warnings.extend(dir.recovered.iter().cloned());
-    if !job.no_bse && field.has_bse {
-        warnings.push(
-            "the BSE check is not run on a field labelled strip by strip (a montage); check the contrast on a field small enough to map whole".into(),
-        );
-    }
-    let streamed = crate::montage::label_streamed(
-        &mut field,
-        job.map,
-        &model.clusters,
-        &model.order(),
-        strip,
-        &mut |done, all| progress(&format!("strip {done} of {all}")),
-    )?;
-    let crate::montage::Streamed {
-        mut table,
-        segmentation,
-        clear,
-        min_counts_used,
-        ..
-    } = streamed;
-    progress("compositions");
-    let model_index: Vec<usize> = table.phases.iter().map(|p| p.model_index).collect();
-    // Thin phases are unmixed as on a field mapped whole, when the field fits in memory
-    // (read a third time, only if some phase needs it).
-    let (lines, metadata) = (field.lines.clone(), field.metadata.clone());
-    let whole = std::cell::RefCell::new((&mut field, None));
-    let bin = job.map.options().prepare.bin;
-    let unmix = |wanted: &[bool]| -> Option<crate::unmix::Unmixing> {
-        let mut w = whole.borrow_mut();
-        let stack = match w.0.read_whole(bin, limits.max_field_values()) {
-            Ok(Some(s)) => s,
-            Ok(None) => {
-                w.1 = Some("the field is too large to hold whole, so phases without interior pixels are not unmixed from their neighbours (raise --max-pixels to allow it)".to_string());
-                return None;
-            }
-            Err(e) => {
-                w.1 = Some(format!(
-                    "phases without interior pixels are not unmixed: {e}"
-                ));
-                return None;
-            }
-        };
-        let planes: Vec<&[f32]> = stack.maps().iter().map(|m| m.counts.as_slice()).collect();
-        let (gw, gh) = (segmentation.width, segmentation.height);
-        crate::unmix::unmix(&segmentation.labels, gw, gh, &planes, wanted)
-    };
-    let (composition_report, advice) = crate::characterise::characterise_with(
-        &mut table,
-        &lines,
-        &metadata,
-        &|r| {
-            let by_model = clear.at(r);
-            model_index.iter().map(|&m| by_model[m].clone()).collect()
-        },
-        &unmix,
-        job.composition,
-    )?;
-    warnings.extend(whole.into_inner().1);
-    use_model_names(&mut table, model);
-    let mut files = field.files.clone();
-    add_composition_inputs(&mut files, job);
-    let not_estimated = crate::xray_yield::YieldField::not_estimated(
-        "not estimated when the field is labelled strip by strip (--stream)",
-    );
-    let labelled = crate::report::Labelled {
-        table: &table,
-        segmentation: &segmentation,
-        decision: &crate::phase_count::Decision::saved_model(job.map.cluster().get().phases),
-        min_counts_used,
-        xray_yield: &not_estimated,
-        metadata: &field.metadata,
-        lines: &field.lines,
-        counts: None,
-    };
-    let findings = crate::report::Findings {
-        bse: None,
-        composition: &composition_report,
-        advisor: &advice,
-        model: Some(reference),
-    };
-    report_and_write(
-        dir,
-        (&field.name, &files),
-        &labelled,
-        job,
-        warnings,
-        findings,
-    )
 }
 
 /// Everything `fit` needs, resolved from the command line.
