@@ -35,6 +35,8 @@ pub mod run;
 pub mod settings;
 pub mod stack;
 pub mod synth;
+#[cfg(test)]
+mod test_fields;
 pub mod unmix;
 pub mod xray_yield;
 

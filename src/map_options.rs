@@ -101,3 +101,41 @@ impl ValidMapOptions {
         self.min_phase_fraction
     }
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// The Poisson mixture works on raw counts: whatever transform was asked for is
+    /// recorded as none, and the options as applied say so.
+    #[test]
+    fn the_poisson_method_works_on_raw_counts() {
+        let mut o = MapOptions::default();
+        o.cluster.method = Method::Poisson;
+        o.prepare.stabilise = Stabilise::Anscombe;
+        o.prepare.dequantise = true;
+        let v = o.check().unwrap();
+        assert_eq!(v.options().prepare.stabilise, Stabilise::None);
+        assert!(!v.options().prepare.dequantise);
+        o.cluster.method = Method::Kmeans;
+        let v = o.check().unwrap();
+        assert_eq!(v.options().prepare.stabilise, Stabilise::Anscombe);
+    }
+
+    #[test]
+    fn a_phase_size_floor_outside_zero_to_a_half_is_refused() {
+        for bad in [-0.1, 0.5, f64::NAN] {
+            let o = MapOptions {
+                min_phase_fraction: bad,
+                ..MapOptions::default()
+            };
+            let e = o.check().unwrap_err();
+            assert!(e.to_string().contains("minimum phase size"), "{e}");
+        }
+        let ok = MapOptions {
+            min_phase_fraction: 0.0,
+            ..MapOptions::default()
+        };
+        assert_eq!(ok.check().unwrap().min_phase_fraction(), 0.0);
+    }
+}

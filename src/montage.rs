@@ -211,3 +211,68 @@ pub fn label_streamed(
         halo,
     })
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::map_options::MapOptions;
+    use crate::refine::RefineParams;
+    use crate::test_fields::bands;
+
+    const RATES: [[f64; 2]; 3] = [[30.0, 4.0], [4.0, 30.0], [17.0, 17.0]];
+
+    /// Every step's reach is in the halo: more ICM sweeps or a larger minimum feature
+    /// widen it by their reach, and strips never get shorter than 64 rows.
+    #[test]
+    fn the_halo_grows_with_each_steps_reach() {
+        let with = |max_sweeps, min_feature_px| {
+            let o = MapOptions {
+                refine: RefineParams {
+                    max_sweeps,
+                    min_feature_px,
+                    ..RefineParams::default()
+                },
+                ..MapOptions::default()
+            };
+            halo_rows(&o.check().unwrap())
+        };
+        assert_eq!(with(6, 4) - with(5, 4), 4, "4 rows per ICM sweep");
+        assert_eq!(with(5, 9) - with(5, 4), 5, "the minimum feature's reach");
+        assert_eq!(strip_rows(1 << 30, 10, 30), 64);
+        let rows = strip_rows(2048, 10, 30);
+        assert!((rows + 60) * 2048 * (8 * 10 + 40) <= STRIP_BYTES, "{rows}");
+    }
+
+    /// Strips of 16 rows with their halo give every pixel the label of the whole field
+    /// labelled at once with the same model, and the same phase areas.
+    #[test]
+    fn strips_label_like_the_whole_field() {
+        let (stack, _) = bands(48, 150, &RATES, 5);
+        let opts = MapOptions::default().check().unwrap();
+        let fitted = crate::pipeline::map_stack(stack.clone(), &opts).unwrap();
+        let order: Vec<usize> = fitted.table.phases.iter().map(|p| p.model_index).collect();
+        let whole =
+            crate::pipeline::label_with_model(stack.clone(), &opts, &fitted.clusters, &order)
+                .unwrap();
+        assert!(
+            !whole.xray_yield.applied,
+            "a flat field: no yield correction"
+        );
+        let mut field = StreamedField::from_stack(stack, "bands");
+        let mut strips_seen = 0;
+        let streamed = label_streamed(
+            &mut field,
+            &opts,
+            &fitted.clusters,
+            &order,
+            Some(16),
+            &mut |_, all| strips_seen = all,
+        )
+        .unwrap();
+        assert_eq!(strips_seen, 10);
+        assert_eq!(streamed.segmentation.labels, whole.segmentation.labels);
+        for (a, b) in streamed.table.phases.iter().zip(&whole.table.phases) {
+            assert_eq!(a.pixels, b.pixels, "phase {}", a.id);
+        }
+    }
+}

@@ -227,3 +227,58 @@ pub fn characterise(
         opts,
     )
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::test_fields::bands;
+
+    const RATES: [[f64; 2]; 3] = [[30.0, 4.0], [4.0, 30.0], [17.0, 17.0]];
+
+    /// Share of pixels whose phase is the true band, each phase taken as the band most of
+    /// its pixels lie in.
+    fn agreement(labels: &[u16], truth: &[usize], k: usize) -> f64 {
+        let mut votes = vec![vec![0usize; RATES.len()]; k + 1];
+        for (&l, &t) in labels.iter().zip(truth) {
+            votes[usize::from(l)][t] += 1;
+        }
+        let right: usize = votes[1..].iter().map(|v| v.iter().max().unwrap()).sum();
+        right as f64 / labels.len() as f64
+    }
+
+    /// Every method counts the phases with the Poisson mixture and then draws its own
+    /// boundaries: three bands are found as three phases by each, with the count recorded
+    /// as made by the Poisson mixture for the other two.
+    #[test]
+    fn each_method_finds_the_three_bands() {
+        let (stack, truth) = bands(60, 48, &RATES, 6);
+        for method in [Method::Poisson, Method::Kmeans, Method::Gmm] {
+            let mut o = MapOptions::default();
+            o.cluster.method = method;
+            let r = map_stack(stack.clone(), &o.check().unwrap()).unwrap();
+            assert_eq!(r.table.phases.len(), 3, "{method:?}");
+            let a = agreement(&r.segmentation.labels, &truth, 3);
+            assert!(a > 0.98, "{method:?}: {a}");
+            let by_poisson = (method != Method::Poisson).then_some(Method::Poisson);
+            assert_eq!(r.decision.counted_with, by_poisson, "{method:?}");
+        }
+    }
+
+    /// A saved model labels a new field of the same material in its own phase order, and
+    /// keeps a phase the new field lacks in the table, with no pixels.
+    #[test]
+    fn a_saved_model_keeps_its_order_and_its_absent_phases() {
+        let (train, _) = bands(60, 48, &RATES, 7);
+        let opts = MapOptions::default().check().unwrap();
+        let fitted = map_stack(train, &opts).unwrap();
+        let order: Vec<usize> = fitted.table.phases.iter().map(|p| p.model_index).collect();
+        let (two, truth) = bands(40, 48, &RATES[..2], 8);
+        let r = label_with_model(two, &opts, &fitted.clusters, &order).unwrap();
+        assert_eq!(r.table.phases.len(), 3);
+        let ids: Vec<usize> = r.table.phases.iter().map(|p| p.model_index).collect();
+        assert_eq!(ids, order);
+        let empty: Vec<usize> = r.table.phases.iter().map(|p| p.pixels).collect();
+        assert_eq!(empty.iter().filter(|&&n| n == 0).count(), 1, "{empty:?}");
+        assert!(agreement(&r.segmentation.labels, &truth, 3) > 0.98);
+    }
+}

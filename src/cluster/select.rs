@@ -385,3 +385,104 @@ pub fn fit(f: &Features, params: &ValidClusterParams) -> Result<Fit> {
         fitted_pixels: n,
     })
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::map_options::MapOptions;
+    use crate::prepare::prepare;
+    use crate::stack::MapStack;
+    use crate::test_fields::bands;
+
+    const RATES: [[f64; 2]; 3] = [[40.0, 5.0], [5.0, 40.0], [22.0, 22.0]];
+
+    fn features(seed: u64) -> Features {
+        let (stack, _) = bands(60, 40, &RATES, seed);
+        prepare(stack, &MapOptions::default().check().unwrap().transform()).unwrap()
+    }
+
+    fn params(phases: PhaseCount) -> ValidClusterParams {
+        ClusterParams {
+            phases,
+            ..ClusterParams::default()
+        }
+        .check()
+        .unwrap()
+    }
+
+    #[test]
+    fn phase_counts_parse_as_written_in_the_docs() {
+        assert_eq!("auto".parse(), Ok(PhaseCount::Auto { max: AUTO_MAX }));
+        assert_eq!("auto:12".parse(), Ok(PhaseCount::Auto { max: 12 }));
+        assert_eq!("5".parse(), Ok(PhaseCount::Fixed(5)));
+        assert!("auto:x"
+            .parse::<PhaseCount>()
+            .unwrap_err()
+            .contains("auto:MAX"));
+        assert!("five"
+            .parse::<PhaseCount>()
+            .unwrap_err()
+            .contains("not a phase count"));
+    }
+
+    /// The fitting sample: seeded, in ascending order, without repeats, capped at `max`.
+    #[test]
+    fn the_fitting_sample_is_seeded_sorted_and_capped() {
+        let f = features(1);
+        let a = fitting_pixels(&f, 500, Seed(7));
+        assert_eq!(a, fitting_pixels(&f, 500, Seed(7)));
+        assert_ne!(a, fitting_pixels(&f, 500, Seed(8)));
+        assert_eq!(a.len(), 500);
+        assert!(a.windows(2).all(|p| p[0] < p[1]));
+        assert_eq!(fitting_pixels(&f, 1 << 20, Seed(7)).len(), f.pixels());
+    }
+
+    /// Three Poisson populations: the BIC curve is lowest at three, and the fitted rates
+    /// are the generator's (synthetic ground truth) within 5 %.
+    #[test]
+    fn the_automatic_count_finds_three_poisson_populations() {
+        let f = features(2);
+        let fit = fit(&f, &params(PhaseCount::Auto { max: 6 })).unwrap();
+        let best = fit
+            .curve
+            .iter()
+            .min_by(|a, b| a.bic.total_cmp(&b.bic))
+            .unwrap();
+        assert_eq!(best.k, 3, "{:?}", fit.curve);
+        for rate in RATES {
+            let near = (0..fit.clusters.k()).any(|c| {
+                let m = fit.clusters.mean(c);
+                (0..2).all(|e| (m[e] - rate[e]).abs() < 0.05 * rate[e])
+            });
+            assert!(near, "no component near {rate:?}");
+        }
+    }
+
+    /// A fixed count fits the same populations, and a count the data cannot hold (more
+    /// phases than distinct pixel values) is refused with advice.
+    #[test]
+    fn a_fixed_count_fits_and_an_impossible_one_is_refused() {
+        let f = features(3);
+        assert!(fit(&f, &params(PhaseCount::Fixed(3))).unwrap().clusters.k() >= 3);
+        let (stack, _) = bands(20, 20, &[[9.0, 9.0]], 4);
+        let maps = stack
+            .maps()
+            .iter()
+            .map(|m| crate::stack::ElementMap {
+                counts: vec![9.0; 400],
+                ..m.clone()
+            })
+            .collect();
+        let flat = MapStack::new(
+            std::path::Path::new("flat"),
+            20,
+            20,
+            maps,
+            Default::default(),
+        )
+        .unwrap();
+        let flat = prepare(flat, &MapOptions::default().check().unwrap().transform()).unwrap();
+        let e = fit(&flat, &params(PhaseCount::Fixed(2))).unwrap_err();
+        assert!(e.to_string().contains("cannot be told apart"), "{e}");
+    }
+}
