@@ -23,6 +23,24 @@ pub struct Cli {
     pub command: Command,
 }
 
+/// The command line as clap parses it: [`Cli`]'s arguments, with the options a saved
+/// model fixes ([`crate::settings::FIXED_BY_A_MODEL`]) left out of `apply --help` (they
+/// are still parsed, so that `apply` can refuse them by name).
+pub fn command() -> clap::Command {
+    <Cli as clap::CommandFactory>::command().mut_subcommand("apply", |apply| {
+        crate::settings::FIXED_BY_A_MODEL
+            .iter()
+            .fold(apply, |c, id| c.mut_arg(*id, |a| a.hide(true)))
+    })
+}
+
+/// Parses the process's arguments with [`command`]; exits with clap's message and code on
+/// a usage error, as clap does.
+pub fn parse() -> Cli {
+    let matches = command().get_matches();
+    <Cli as clap::FromArgMatches>::from_arg_matches(&matches).unwrap_or_else(|e| e.exit())
+}
+
 /// The subcommands.
 #[derive(Debug, Subcommand)]
 pub enum Command {
@@ -586,4 +604,61 @@ fn merge(folders: &[PathBuf], out: &std::path::Path, force: bool, quiet: bool) -
         println!("\n  outputs in {}", out.display());
     }
     Ok(0)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn parse_from(args: &[&str]) -> Cli {
+        let m = command().try_get_matches_from(args).unwrap();
+        <Cli as clap::FromArgMatches>::from_arg_matches(&m).unwrap()
+    }
+
+    fn long_help(sub: &str) -> String {
+        let mut c = command();
+        c.find_subcommand_mut(sub)
+            .unwrap()
+            .render_long_help()
+            .to_string()
+    }
+
+    /// `apply --help` lists only what `apply` accepts; `map --help` still lists everything.
+    #[test]
+    fn apply_help_leaves_out_what_a_model_fixes() {
+        let (apply, map) = (long_help("apply"), long_help("map"));
+        for id in crate::settings::FIXED_BY_A_MODEL {
+            let flag = format!("--{} ", id.replace('_', "-"));
+            assert!(!apply.contains(&flag), "apply --help lists {flag}");
+            assert!(map.contains(&flag), "map --help lacks {flag}");
+        }
+        for kept in ["--kv ", "--pixel-size ", "--bse-pixel-size ", "--kfactors "] {
+            assert!(apply.contains(kept), "apply --help lacks {kept}");
+        }
+    }
+
+    /// The hidden options still parse, so that `apply` refuses them by name, before it
+    /// reads anything (the model file here does not exist).
+    #[test]
+    fn apply_refuses_what_a_model_fixes_by_name() {
+        let cli = parse_from(&[
+            "modalmap",
+            "apply",
+            "no-model.json",
+            "field",
+            "-o",
+            "out",
+            "--phases",
+            "3",
+            "--min-counts",
+            "5",
+        ]);
+        let e = run(cli).unwrap_err();
+        assert_eq!(e.kind, crate::ErrorKind::Options);
+        assert!(
+            e.to_string()
+                .contains("--phases, --min-counts cannot be given to apply"),
+            "{e}"
+        );
+    }
 }

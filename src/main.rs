@@ -2,8 +2,6 @@
 
 use std::process::ExitCode;
 
-use clap::Parser;
-
 fn main() -> ExitCode {
     // A closed pipe (`modalmap inspect f | head`) ends the program quietly, as for any
     // Unix tool, instead of a write error.
@@ -11,7 +9,7 @@ fn main() -> ExitCode {
     unsafe {
         libc::signal(libc::SIGPIPE, libc::SIG_DFL);
     }
-    let cli = modalmap::cli::Cli::parse();
+    let cli = modalmap::cli::parse();
     // SIGINT, SIGTERM, SIGHUP: remove this run's temporary files, leave OUT as it was.
     modalmap::cleanup::on_signals();
     // A panic is a bug; it must still end with a clear message and the documented code.

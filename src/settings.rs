@@ -277,27 +277,47 @@ impl MapArgs {
         })
     }
 
-    /// The options given that a saved model fixes (`apply` refuses them).
-    pub fn fixed_by_a_model(&self) -> Vec<&'static str> {
-        [
-            ("--phases", self.phases.is_some()),
-            ("--method", self.method.is_some()),
-            ("--seed", self.seed.is_some()),
-            ("--bin", self.bin.is_some()),
-            ("--denoise", self.denoise.is_some()),
-            ("--transform", self.transform.is_some()),
-            ("--min-counts", self.min_counts.is_some()),
-            ("--smoothing", self.smoothing.is_some()),
-            ("--min-feature", self.min_feature.is_some()),
-            ("--min-phase", self.min_phase.is_some()),
-            ("--bse", self.bse.is_some()),
-            ("--config", self.config.is_some()),
-        ]
-        .into_iter()
-        .filter_map(|(name, set)| set.then_some(name))
-        .collect()
+    /// The options given that a saved model fixes (`apply` refuses them), as flags.
+    pub fn fixed_by_a_model(&self) -> Vec<String> {
+        let given = [
+            self.phases.is_some(),
+            self.method.is_some(),
+            self.seed.is_some(),
+            self.bin.is_some(),
+            self.denoise.is_some(),
+            self.transform.is_some(),
+            self.min_counts.is_some(),
+            self.smoothing.is_some(),
+            self.min_feature.is_some(),
+            self.min_phase.is_some(),
+            self.bse.is_some(),
+            self.config.is_some(),
+        ];
+        FIXED_BY_A_MODEL
+            .iter()
+            .zip(given)
+            .filter(|(_, set)| *set)
+            .map(|(id, _)| format!("--{}", id.replace('_', "-")))
+            .collect()
     }
 }
+
+/// The options of [`MapArgs`] (clap's argument ids, the field names) that a saved model
+/// fixes: `apply` refuses them and its `--help` does not list them.
+pub const FIXED_BY_A_MODEL: [&str; 12] = [
+    "phases",
+    "method",
+    "seed",
+    "bin",
+    "denoise",
+    "transform",
+    "min_counts",
+    "smoothing",
+    "min_feature",
+    "min_phase",
+    "bse",
+    "config",
+];
 
 /// Reads a configuration file (the keys of [`MapArgs`]).
 fn read_config(path: &Path) -> Result<MapArgs> {
