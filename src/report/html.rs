@@ -697,13 +697,13 @@ fn phase_table(r: &Report) -> String {
             .filter(|e| p.composition_wt[*e] >= 0.5)
             .map(|e| {
                 format!(
-                    "{e} {:.1} ± {:.1}",
-                    p.composition_wt[e], p.composition_wt_sd[e]
+                    "{e} {}",
+                    super::value_pm(p.composition_wt[e], p.composition_wt_sd[e], " ± ")
                 )
             })
             .chain(
                 (!p.not_detected.is_empty())
-                    .then(|| format!("not detected: {}", esc(&super::not_detected_text(p, ",")))),
+                    .then(|| format!("not detected: {}", super::not_detected_text(p, ","))),
             )
             .collect();
         let m = match &p.reference {
@@ -893,5 +893,18 @@ mod tests {
         );
         let t = ticks(0.13, 0.41, 4);
         assert!(t.first().unwrap() >= &0.13 && t.last().unwrap() <= &0.41 && t.len() >= 3);
+    }
+
+    /// The phase table escapes each text once ("<" of a detection limit shows as "<", not
+    /// as "&lt;"), and a sole element normalised to 100 % says it has no σ.
+    #[test]
+    fn the_phase_table_escapes_once() {
+        let r: Report =
+            serde_json::from_str(include_str!("../../tests/golden/map.report.json")).unwrap();
+        let h = phase_table(&r);
+        assert!(h.contains("not detected: Ag &lt;1.07"), "{h}");
+        assert!(!h.contains("&amp;lt;"), "{h}");
+        assert!(h.contains("Sn 100.0 (100 % by normalisation, no σ)"), "{h}");
+        assert!(!h.contains("± 0.0<") && !h.contains("± 0.0,"), "{h}");
     }
 }

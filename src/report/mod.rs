@@ -543,6 +543,21 @@ pub fn phases_csv(r: &Report) -> String {
     s
 }
 
+/// A value (wt%) with its 1σ for tables, with as many decimals as the σ needs to show
+/// (a σ that would round to 0.0 gets a second decimal, or "<0.01"); a single element
+/// normalised to 100 % has no σ, and says so.
+pub fn value_pm(value: f64, sd: f64, pm: &str) -> String {
+    if sd == 0.0 && value > 99.95 {
+        format!("{value:.1} (100 % by normalisation, no σ)")
+    } else if sd < 0.005 {
+        format!("{value:.2}{pm}<0.01")
+    } else if sd < 0.05 {
+        format!("{value:.2}{pm}{sd:.2}")
+    } else {
+        format!("{value:.1}{pm}{sd:.1}")
+    }
+}
+
 /// A 95 % interval in % for tables, or "none (field too small)".
 pub fn ci_text(ci: Option<[f64; 2]>, dash: &str) -> String {
     match ci {
@@ -580,12 +595,10 @@ pub fn summary(r: &Report) -> String {
             .iter()
             .filter(|e| p.composition_wt[*e] >= 1.0)
             .map(|e| {
-                let sd = p.composition_wt_sd[e];
-                if sd < 0.1 {
-                    format!("{e} {:.2}±{sd:.2}", p.composition_wt[e])
-                } else {
-                    format!("{e} {:.1}±{sd:.1}", p.composition_wt[e])
-                }
+                format!(
+                    "{e} {}",
+                    value_pm(p.composition_wt[e], p.composition_wt_sd[e], "±")
+                )
             })
             .collect();
         if !p.not_detected.is_empty() {
@@ -927,4 +940,21 @@ fn pair_plots(
             )
         })
         .collect()
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// No σ is printed as "0.0" unless it is one at that precision.
+    #[test]
+    fn a_sigma_never_rounds_to_zero_unseen() {
+        assert_eq!(value_pm(62.04, 0.73, " ± "), "62.0 ± 0.7");
+        assert_eq!(value_pm(62.04, 0.05, " ± "), "62.0 ± 0.1");
+        assert_eq!(value_pm(62.04, 0.049, "±"), "62.04±0.05");
+        assert_eq!(value_pm(62.04, 0.012, "±"), "62.04±0.01");
+        assert_eq!(value_pm(62.04, 0.004, "±"), "62.04±<0.01");
+        assert_eq!(value_pm(0.3, 0.0, "±"), "0.30±<0.01");
+        assert!(value_pm(100.0, 0.0, "±").contains("by normalisation"));
+    }
 }
