@@ -61,7 +61,9 @@ pub enum Command {
     },
     /// The main job: cluster a field's pixels into phases and report each phase.
     ///
-    /// Writes labels.png, phase-map.png, report.json and phases.csv into OUT, atomically.
+    /// Writes into OUT, atomically: labels.png (16-bit phase ids, 0 = unassigned),
+    /// phase-map.png, phases.csv, report.json, report.html, element-EL.png for each map,
+    /// and with a BSE image bse-registered.png and overlay.png.
     Map {
         /// Folder of element maps, or HDF5 file.
         input: PathBuf,
@@ -334,7 +336,7 @@ pub fn run(cli: Cli) -> Result<u8> {
                 100.0 * agree
             );
             println!(
-                "  outputs in {} (the maps are those of sample-maps/)",
+                "  outputs in {}; the maps were generated into a temporary folder, now removed (`modalmap synth -o DIR` writes the same maps)",
                 output.display()
             );
             Ok(0)

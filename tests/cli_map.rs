@@ -30,6 +30,19 @@ fn map_writes_consistent_outputs() {
     for f in ["labels.png", "phase-map.png", "report.json", "phases.csv"] {
         assert!(out.join(f).is_file(), "{f} missing");
     }
+    // `map --help` names every kind of file written (element-EL.png for element-Cu.png).
+    let help = modalmap(&["map", "--help"]).stdout;
+    for e in std::fs::read_dir(&out).unwrap() {
+        let name = e.unwrap().file_name().to_string_lossy().into_owned();
+        let kind = match name.strip_prefix("element-") {
+            Some(_) => "element-EL.png".to_string(),
+            None => name.clone(),
+        };
+        assert!(
+            help.contains(&kind),
+            "map --help does not name {name}:\n{help}"
+        );
+    }
     let rep = report(&out);
     assert_eq!(rep["schema"], "modalmap.report/1");
     let phases = rep["phases"].as_array().unwrap();
@@ -298,6 +311,9 @@ fn demo_maps_the_sample_and_checks_it_against_the_truth() {
     // The README says 99.5 % (the demo prints one decimal).
     assert!(pct >= 99.5, "{line}");
     assert_eq!(report(&out)["phases"].as_array().unwrap().len(), 5);
+    // It says where its maps went (a temporary folder), not that they are in sample-maps/.
+    assert!(!r.stdout.contains("those of sample-maps/"), "{}", r.stdout);
+    assert!(r.stdout.contains("modalmap synth -o DIR"), "{}", r.stdout);
 }
 
 /// `map --calibrate` on the sample field: compositions with uncertainty and method, library
