@@ -12,7 +12,12 @@ use modalmap::io::raster::{write_png_rgb, write_png_u16, write_png_u8, write_tif
 fn assert_refused(r: &Run, code: i32, keys: &[&str]) {
     assert_eq!(r.code, code, "exit code; stderr:\n{}", r.stderr);
     assert!(!r.stderr.contains("panicked"), "panic:\n{}", r.stderr);
-    assert!(r.stderr.starts_with("error: "), "{}", r.stderr);
+    // The message is on its own lines (after any progress lines of the stages run).
+    assert!(
+        r.stderr.starts_with("error: ") || r.stderr.contains("\nerror: "),
+        "{}",
+        r.stderr
+    );
     assert!(r.stderr.contains("fix: "), "no fix offered:\n{}", r.stderr);
     for k in keys {
         assert!(r.stderr.contains(k), "missing `{k}` in:\n{}", r.stderr);

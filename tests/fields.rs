@@ -82,9 +82,9 @@ fn fit_apply_in_shards_and_merge_match_the_truth() {
     let apply = |out: &Path, shard: Option<&str>| {
         let mut a = vec!["apply".to_string(), s(&model)];
         a.extend(fields.iter().map(|f| s(&f.0)));
-        a.extend(["-o".into(), s(out), "--quiet".into()]);
+        a.extend(["-o".into(), s(out)]);
         if let Some(sh) = shard {
-            a.extend(["--shard".into(), sh.into()]);
+            a.extend(["--shard".into(), sh.into(), "--quiet".into()]);
         }
         let refs: Vec<&str> = a.iter().map(String::as_str).collect();
         modalmap(&refs)
@@ -92,9 +92,25 @@ fn fit_apply_in_shards_and_merge_match_the_truth() {
     let (all, sharded) = (d.join("all"), d.join("sharded"));
     let r = apply(&all, None);
     assert_eq!(r.code, 0, "{}", r.stderr);
+    // Standard error is a pipe here, as in a batch job's log: plain lines, one per field,
+    // with the time left once a field is done.
+    let lines: Vec<&str> = r.stderr.lines().collect();
+    assert!(lines[0].ends_with("labelling 8 fields"), "{}", r.stderr);
+    assert_eq!(lines.len(), 9, "{}", r.stderr);
+    assert!(
+        lines[1].contains(" 1/8 ") && lines[1].contains(": ok; about "),
+        "{}",
+        r.stderr
+    );
+    assert!(
+        lines[8].contains(" 8/8 ") && lines[8].ends_with("all done"),
+        "{}",
+        r.stderr
+    );
     for i in 1..=4 {
         let r = apply(&sharded, Some(&format!("{i}/4")));
         assert_eq!(r.code, 0, "{}", r.stderr);
+        assert_eq!(r.stderr, "", "--quiet");
         let listed = json(&sharded.join(format!("apply-{i}-of-4.json")));
         assert_eq!(listed["fields"].as_array().unwrap().len(), 2);
     }

@@ -743,7 +743,8 @@ fn every_hostile_input_fails_cleanly_and_leaves_the_inputs_alone() {
         }
         if r.code != 0 {
             assert!(
-                r.stderr.starts_with("error: ") && r.stderr.contains("fix: "),
+                (r.stderr.starts_with("error: ") || r.stderr.contains("\nerror: "))
+                    && r.stderr.contains("fix: "),
                 "{}: {}",
                 c.name,
                 r.stderr

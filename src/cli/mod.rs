@@ -14,6 +14,8 @@ use crate::run::{process_field, FieldJob, Labelling};
 pub use crate::settings::{LimitArgs, MapArgs, Resolved};
 use crate::synth::Scenario;
 
+mod progress;
+
 /// Phase maps from SEM-EDS element maps.
 #[derive(Debug, Parser)]
 #[command(name = "modalmap", version, about, long_about = None)]
@@ -210,28 +212,10 @@ pub fn map_field(
             .map(|p| ("configuration file", p.clone()))
             .collect(),
     };
-    let spinner = spinner(args.quiet);
-    let result = process_field(input, out, &job, &mut |stage| {
-        if let Some(s) = &spinner {
-            s.set_message(stage.to_string());
-        }
-    });
-    if let Some(s) = spinner {
-        s.finish_and_clear();
-    }
+    let stages = progress::Stages::new(args.quiet);
+    let result = process_field(input, out, &job, &mut |stage| stages.stage(stage));
+    stages.finish();
     result
-}
-
-/// A spinner with the current stage on standard error, only when it is a terminal and the
-/// user did not ask for quiet.
-fn spinner(quiet: bool) -> Option<indicatif::ProgressBar> {
-    use std::io::IsTerminal;
-    if quiet || !std::io::stderr().is_terminal() {
-        return None;
-    }
-    let s = indicatif::ProgressBar::new_spinner();
-    s.enable_steady_tick(std::time::Duration::from_millis(120));
-    Some(s)
 }
 
 /// Runs a parsed command line; returns the process exit code on success.
@@ -411,15 +395,9 @@ fn fit(
             .map(|p| ("configuration file", p.clone()))
             .collect(),
     };
-    let spinner = spinner(args.quiet);
-    let fitted = crate::run::fit_model(inputs, output, &job, &mut |stage| {
-        if let Some(s) = &spinner {
-            s.set_message(stage.to_string());
-        }
-    });
-    if let Some(s) = spinner {
-        s.finish_and_clear();
-    }
+    let stages = progress::Stages::new(args.quiet);
+    let fitted = crate::run::fit_model(inputs, output, &job, &mut |stage| stages.stage(stage));
+    stages.finish();
     let crate::run::Fitted { model, windows } = fitted?;
     if !args.quiet {
         println!(
@@ -492,7 +470,7 @@ fn apply(
         stream,
         also_reads: vec![("model file", model_path.to_path_buf())],
     };
-    let bar = progress_bar(args.quiet);
+    let fields = progress::Fields::new(args.quiet);
     let batch = crate::run::apply_batch(
         inputs,
         out,
@@ -500,27 +478,12 @@ fn apply(
         jobs,
         &job,
         &crate::run::BatchProgress {
-            start: &|fields| {
-                if let Some(b) = &bar {
-                    b.set_length(fields as u64);
-                }
-            },
-            stage: &|field, stage| {
-                if let Some(b) = &bar {
-                    b.set_message(format!("{field}: {stage}"));
-                }
-            },
-            done: &|o| {
-                if let Some(b) = &bar {
-                    b.set_message(o.field.clone());
-                    b.inc(1);
-                }
-            },
+            start: &|n| fields.start(n),
+            stage: &|field, stage| fields.stage(field, stage),
+            done: &|o| fields.done(o),
         },
     );
-    if let Some(b) = bar {
-        b.finish_and_clear();
-    }
+    fields.finish();
     let crate::run::BatchResult {
         outcomes,
         kept,
@@ -561,21 +524,6 @@ fn apply(
         );
         Ok(crate::error::PARTIAL_FAILURE_EXIT)
     }
-}
-
-/// A progress bar over fields with an ETA, on a terminal only.
-fn progress_bar(quiet: bool) -> Option<indicatif::ProgressBar> {
-    use std::io::IsTerminal;
-    if quiet || !std::io::stderr().is_terminal() {
-        return None;
-    }
-    let b = indicatif::ProgressBar::new(0);
-    if let Ok(style) = indicatif::ProgressStyle::with_template(
-        "{bar:30} {pos}/{len} fields, {elapsed} elapsed, ETA {eta}  {msg}",
-    ) {
-        b.set_style(style);
-    }
-    Some(b)
 }
 
 /// `merge`: pool reports made with one model.
