@@ -123,7 +123,7 @@ fn fit_apply_in_shards_and_merge_match_the_truth() {
     let four = merge(&sharded, &d.join("sum-sharded"));
     assert_eq!(one["phases"], four["phases"], "shards change nothing");
     assert_eq!(one["fields"].as_array().unwrap().len(), 8);
-    assert!(d.join("sum-all/summary.csv").is_file() && d.join("sum-all/summary.html").is_file());
+    check_spreadsheet_outputs(&d.join("sum-all"), &all, &one);
     // One field has no field-to-field spread: no interval, said as such, not a zero width.
     let first = all.join(fields[0].0.file_name().unwrap());
     let single = merge(&first, &d.join("sum-one"));
@@ -133,6 +133,16 @@ fn fit_apply_in_shards_and_merge_match_the_truth() {
     }
     let html = std::fs::read_to_string(d.join("sum-one/summary.html")).unwrap();
     assert!(html.contains("undefined (one field)"));
+    assert!(
+        html.contains("one field: its counting σ is in its report"),
+        "{html}"
+    );
+    let csv = csv_rows(&std::fs::read_to_string(d.join("sum-one/summary.csv")).unwrap());
+    let sd = csv[0].iter().position(|c| c == "area_pct_sd").unwrap();
+    assert!(
+        csv[1..].iter().all(|r| r[sd].is_empty()),
+        "no SD of one field"
+    );
 
     // Per model phase: the true area fraction of the truth phase it covers, field by
     // field, against the pooled mean and its interval.
@@ -445,4 +455,104 @@ fn many_field_options_are_checked() {
     let r = modalmap(&["fit", &s(&a), &s(&sample), "-o", &s(&d.join("m2.json"))]);
     assert_eq!(r.code, 3, "{}", r.stderr);
     assert!(r.stderr.contains("elements") && !d.join("m2.json").exists());
+}
+
+/// Rows of a CSV text (fields quoted with `"` where they hold a comma).
+fn csv_rows(text: &str) -> Vec<Vec<String>> {
+    text.lines()
+        .map(|line| {
+            let (mut cells, mut cell, mut quoted) = (Vec::new(), String::new(), false);
+            let mut chars = line.chars().peekable();
+            while let Some(c) = chars.next() {
+                match (c, quoted) {
+                    ('"', true) if chars.peek() == Some(&'"') => {
+                        cell.push('"');
+                        chars.next();
+                    }
+                    ('"', _) => quoted = !quoted,
+                    (',', false) => cells.push(std::mem::take(&mut cell)),
+                    _ => cell.push(c),
+                }
+            }
+            cells.push(cell);
+            cells
+        })
+        .collect()
+}
+
+/// merge's files for a spreadsheet and a report: summary.csv in % with an unassigned row
+/// (adding up to 100), fields.csv with a row per field and phase (the reports' numbers),
+/// the figure, and summary.html with the per-field table linking each field's report.
+fn check_spreadsheet_outputs(sum: &Path, all: &Path, summary: &serde_json::Value) {
+    let k = summary["phases"].as_array().unwrap().len();
+    let pooled = csv_rows(&std::fs::read_to_string(sum.join("summary.csv")).unwrap());
+    let col = |rows: &[Vec<String>], name: &str| rows[0].iter().position(|c| c == name).unwrap();
+    assert_eq!(pooled.len(), k + 2, "header, {k} phases, unassigned");
+    assert_eq!(pooled[k + 1][1], "unassigned");
+    let area = col(&pooled, "area_pct_mean");
+    let total: f64 = pooled[1..]
+        .iter()
+        .map(|r| r[area].parse::<f64>().unwrap())
+        .sum();
+    assert!(
+        (total - 100.0).abs() < 1e-3,
+        "pooled areas add up to {total} %"
+    );
+    assert!(
+        pooled[0].contains(&"features".to_string()) && !pooled[0].iter().any(|c| c == "particles")
+    );
+    assert!(pooled[0]
+        .iter()
+        .any(|c| c.starts_with("wt_pct_sd_between_fields_")));
+
+    let long = csv_rows(&std::fs::read_to_string(sum.join("fields.csv")).unwrap());
+    assert_eq!(
+        long.len(),
+        1 + 8 * (k + 1),
+        "a row per field and phase, and unassigned"
+    );
+    let (field, id, area) = (
+        col(&long, "field"),
+        col(&long, "phase_id"),
+        col(&long, "area_pct"),
+    );
+    for f in summary["fields"].as_array().unwrap() {
+        let name = f["field"].as_str().unwrap();
+        let rows: Vec<&Vec<String>> = long[1..].iter().filter(|r| r[field] == name).collect();
+        let sum: f64 = rows.iter().map(|r| r[area].parse::<f64>().unwrap()).sum();
+        assert!((sum - 100.0).abs() < 1e-3, "{name}: {sum} %");
+        let report = json(&all.join(name).join("report.json"));
+        for p in report["phases"].as_array().unwrap() {
+            let pid = p["id"].as_u64().unwrap().to_string();
+            let row = rows.iter().find(|r| r[id] == pid).unwrap();
+            let want = 100.0 * p["area_fraction"].as_f64().unwrap();
+            assert!((row[area].parse::<f64>().unwrap() - want).abs() < 1e-4);
+        }
+    }
+
+    let svg = std::fs::read_to_string(sum.join("summary-areas.svg")).unwrap();
+    assert_eq!(
+        svg.matches("<circle").count(),
+        8 * k,
+        "a dot per field and phase"
+    );
+    let html = std::fs::read_to_string(sum.join("summary.html")).unwrap();
+    assert!(
+        html.contains("<svg") && html.contains("unassigned"),
+        "figure and unassigned row"
+    );
+    let links: Vec<&str> = html
+        .split("<a href=\"")
+        .skip(1)
+        .map(|h| h.split('"').next().unwrap())
+        .collect();
+    assert_eq!(links.len(), 8, "a link per field");
+    for l in links {
+        assert!(!l.starts_with('/'), "relative: {l}");
+        assert!(sum.join(l).is_file(), "{l} does not lead to a report");
+    }
+    assert!(
+        html.contains("± SD between fields"),
+        "compositions with ± and basis"
+    );
 }

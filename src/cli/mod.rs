@@ -541,16 +541,22 @@ fn merge(folders: &[PathBuf], out: &std::path::Path, force: bool, quiet: bool) -
         );
         for p in &summary.phases {
             println!(
-                "  {:>3}  {:<24} {:>10.2} {:>8.2} {:>17} {:>7}",
+                "  {:>3}  {:<24} {:>10.2} {:>8} {:>17} {:>7}",
                 p.id,
                 p.name,
                 100.0 * p.area_fraction_mean,
-                100.0 * p.area_fraction_sd,
+                crate::fields::pooled_sd_text(&summary, p).replace(" (one field)", ""),
                 crate::fields::pooled_ci_text(p, "–"),
                 p.relative_accuracy_pct
                     .map_or("–".into(), |v| format!("{v:.1}"))
             );
         }
+        println!(
+            "  {:>3}  {:<24} {:>10.2}",
+            0,
+            "unassigned",
+            100.0 * summary.unassigned_fraction_mean
+        );
         println!("\n  outputs in {}", out.display());
     }
     Ok(0)

@@ -32,7 +32,7 @@ use crate::stack::{ElementMap, MapStack};
 
 mod summary;
 
-pub use summary::{pooled_ci_text, summary_csv, summary_html};
+pub use summary::{pooled_ci_text, pooled_sd_text, summary_csv, summary_html};
 
 /// The model file's schema name and version.
 pub const MODEL_SCHEMA: &str = "modalmap.model/1";
@@ -372,6 +372,13 @@ pub struct PooledPhase {
     /// Composition, wt%, pooled over the fields weighted by the pixels each was summed
     /// over.
     pub composition_wt: BTreeMap<String, f64>,
+    /// Standard deviation of the fields' compositions, wt%, weighted by the pixels each
+    /// was summed over; empty with one field (undefined).
+    #[serde(default)]
+    pub composition_wt_sd_between_fields: BTreeMap<String, f64>,
+    /// What the compositions are relative to (the fields' basis, or "mixed").
+    #[serde(default)]
+    pub composition_basis: String,
     /// Features over all fields.
     pub particles: usize,
     /// Pixels over all fields.
@@ -385,6 +392,12 @@ pub struct PooledField {
     pub field: String,
     /// Its report.
     pub report: String,
+    /// Its phases' area fractions, 0..1, in the order of the summary's phases.
+    #[serde(default)]
+    pub area_fractions: Vec<f64>,
+    /// Its unassigned fraction, 0..1.
+    #[serde(default)]
+    pub unassigned_fraction: f64,
 }
 
 /// `summary.json`.
@@ -400,6 +413,12 @@ pub struct Summary {
     pub phases: Vec<PooledPhase>,
     /// Mean unassigned fraction.
     pub unassigned_fraction_mean: f64,
+    /// Sample standard deviation of the fields' unassigned fractions (0 with one field).
+    #[serde(default)]
+    pub unassigned_fraction_sd: f64,
+    /// 95 % interval of the mean unassigned fraction; `None` with one field.
+    #[serde(default)]
+    pub unassigned_fraction_ci95: Option<[f64; 2]>,
     /// How the statistics were computed.
     pub method: String,
     /// Limits of what the numbers mean.
@@ -572,6 +591,30 @@ pub fn merge(reports: &[(PathBuf, Report)]) -> Result<Summary> {
                     composition_wt.insert(e.clone(), v);
                 }
             }
+            let composition_wt_sd_between_fields = if n > 1 && weight > 0.0 {
+                composition_wt
+                    .iter()
+                    .map(|(e, mean)| {
+                        let var = entries
+                            .iter()
+                            .map(|q| {
+                                let v = q.composition_wt.get(e).copied().unwrap_or(0.0);
+                                q.composition_pixels as f64 * (v - mean).powi(2)
+                            })
+                            .sum::<f64>()
+                            / weight;
+                        (e.clone(), var.sqrt())
+                    })
+                    .collect()
+            } else {
+                BTreeMap::new()
+            };
+            let basis = &p0.composition_basis;
+            let composition_basis = if entries.iter().all(|q| &q.composition_basis == basis) {
+                basis.clone()
+            } else {
+                "mixed: the fields' compositions have different bases".into()
+            };
             PooledPhase {
                 id: p0.id,
                 name: p0.name.clone(),
@@ -583,11 +626,19 @@ pub fn merge(reports: &[(PathBuf, Report)]) -> Result<Summary> {
                 relative_accuracy_pct: (half.is_finite() && mean > 0.0)
                     .then(|| 100.0 * half / mean),
                 composition_wt,
+                composition_wt_sd_between_fields,
+                composition_basis,
                 particles: entries.iter().map(|q| q.particles).sum(),
                 pixels: entries.iter().map(|q| q.pixels).sum(),
             }
         })
         .collect();
+    let unassigned = mean_ci(
+        &reports
+            .iter()
+            .map(|(_, r)| r.unassigned_fraction)
+            .collect::<Vec<_>>(),
+    );
     Ok(Summary {
         schema: SUMMARY_SCHEMA.into(),
         model,
@@ -596,12 +647,18 @@ pub fn merge(reports: &[(PathBuf, Report)]) -> Result<Summary> {
             .map(|(p, r)| PooledField {
                 field: r.field.clone(),
                 report: p.display().to_string(),
+                area_fractions: r.phases.iter().map(|q| q.area_fraction).collect(),
+                unassigned_fraction: r.unassigned_fraction,
             })
             .collect(),
         phases,
-        unassigned_fraction_mean: reports.iter().map(|(_, r)| r.unassigned_fraction).sum::<f64>()
-            / n as f64,
-        method: "per phase over n fields: mean area fraction, sample SD s, 95 % interval mean ± t·s/√n (Student t, n − 1 degrees of freedom), %RA = 100·(t·s/√n)/mean (ASTM E562, E1245 field statistics); compositions pooled weighted by the pixels each field's was summed over".into(),
+        unassigned_fraction_mean: unassigned.0,
+        unassigned_fraction_sd: unassigned.1,
+        unassigned_fraction_ci95: unassigned
+            .2
+            .is_finite()
+            .then(|| [(unassigned.0 - unassigned.2).max(0.0), (unassigned.0 + unassigned.2).min(1.0)]),
+        method: "per phase over n fields: mean area fraction, sample SD s, 95 % interval mean ± t·s/√n (Student t, n − 1 degrees of freedom), %RA = 100·(t·s/√n)/mean (ASTM E562, E1245 field statistics); compositions pooled weighted by the pixels each field's was summed over, their ± the pixel-weighted SD between fields (undefined with one field: see that field's report for its counting σ)".into(),
         cautions: vec![
             "The interval covers the variation between these fields; it estimates the material's value only if the fields were placed without regard to the microstructure (systematic or random sampling) and are enough in number (ASTM E562 §11: four times the fields halves %RA).".into(),
             "Area fractions estimate volume fractions only for an isotropic, uniform microstructure.".into(),
@@ -648,7 +705,8 @@ fn find_reports(
 }
 
 /// Pools every report.json found in or below `folders` (reports made with one model) and
-/// writes summary.json, summary.csv and summary.html into `out` (atomically; an existing
+/// writes summary.json, summary.csv (pooled, per phase), fields.csv (per field and phase),
+/// summary-areas.svg and summary.html into `out` (atomically; an existing
 /// `out` is replaced only with `force`).
 pub fn merge_folders(folders: &[PathBuf], out: &Path, force: bool) -> Result<Summary> {
     let mut paths = Vec::new();
@@ -691,7 +749,14 @@ pub fn merge_folders(folders: &[PathBuf], out: &Path, force: bool) -> Result<Sum
         .map_err(|e| Error::internal(format!("summary encoding failed: {e}")))?;
     dir.write("summary.json", json.as_bytes())?;
     dir.write("summary.csv", summary::summary_csv(&summary).as_bytes())?;
-    dir.write("summary.html", summary::summary_html(&summary).as_bytes())?;
+    dir.write("fields.csv", summary::fields_csv(&reports).as_bytes())?;
+    let figure = summary::areas_svg(&summary);
+    dir.write("summary-areas.svg", figure.as_bytes())?;
+    let links = summary::report_links(&summary, out);
+    dir.write(
+        "summary.html",
+        summary::summary_html(&summary, &figure, &links).as_bytes(),
+    )?;
     dir.commit()?;
     Ok(summary)
 }
