@@ -345,6 +345,20 @@ fn streamed_montage_matches_the_in_memory_path() {
         }
     }
     assert!(b.get("bse").is_none() && b["model"].is_object());
+    // The streamed report says what it leaves out and why; the whole field's has it all.
+    let page = |dir: &Path| std::fs::read_to_string(dir.join("big/report.html")).unwrap();
+    let (whole_html, strips_html) = (page(&whole), page(&strips));
+    assert!(
+        strips_html.contains("Left out of this report"),
+        "streamed page"
+    );
+    assert!(
+        strips_html.contains("labelled strip by strip")
+            && !strips_html.contains("<h2>Element maps")
+    );
+    assert!(
+        !whole_html.contains("Left out of this report") && whole_html.contains("<h2>Element maps")
+    );
 }
 
 /// The same for an HDF5 file with chunked, compressed 2-D datasets (one per element),

@@ -610,9 +610,11 @@ pub struct Extras {
     pub element_maps: Vec<Figure>,
     /// Density scatters (SVG).
     pub scatters: Vec<String>,
+    /// What the page cannot show, with why (a field labelled strip by strip).
+    pub left_out: Vec<String>,
 }
 
-const STYLE: &str = "body{font-family:sans-serif;max-width:1100px;margin:1.5em auto;padding:0 1em;color:#111;line-height:1.4}h1{font-size:1.6em}h2{font-size:1.25em;border-bottom:1px solid #ccc;margin-top:1.6em}figure{margin:.5em;display:inline-block;vertical-align:top}figure img{max-width:100%;image-rendering:pixelated;border:1px solid #999}figcaption{font-size:.85em;color:#333;max-width:520px}.maps figure img{width:160px}.row{display:flex;flex-wrap:wrap;gap:1em;align-items:flex-start}table{border-collapse:collapse;font-size:.9em}th,td{border:1px solid #bbb;padding:.25em .5em;text-align:right;vertical-align:top}th{background:#f2f2f2}td.l,th.l{text-align:left}.sw{display:inline-block;width:1em;height:1em;border:1px solid #333;vertical-align:middle;margin-right:.3em}.note{font-size:.9em}ul{padding-left:1.2em}code{font-size:.9em}@media print{@page{size:A4;margin:15mm}body{max-width:none;margin:0;font-size:10pt}h2{break-after:avoid}figure,table,svg{break-inside:avoid}}";
+const STYLE: &str = "body{font-family:sans-serif;max-width:1100px;margin:1.5em auto;padding:0 1em;color:#111;line-height:1.4}h1{font-size:1.6em}h2{font-size:1.25em;border-bottom:1px solid #ccc;margin-top:1.6em}figure{margin:.5em;display:inline-block;vertical-align:top}figure img{max-width:100%;image-rendering:pixelated;border:1px solid #999}figcaption{font-size:.85em;color:#333;max-width:520px}.maps figure{max-width:100%}.row{display:flex;flex-wrap:wrap;gap:1em;align-items:flex-start}table{border-collapse:collapse;font-size:.9em}th,td{border:1px solid #bbb;padding:.25em .5em;text-align:right;vertical-align:top}th{background:#f2f2f2}td.l,th.l{text-align:left}.sw{display:inline-block;width:1em;height:1em;border:1px solid #333;vertical-align:middle;margin-right:.3em}.note{font-size:.9em}ul{padding-left:1.2em}code{font-size:.9em}@media print{@page{size:A4;margin:15mm}body{max-width:none;margin:0;font-size:10pt}h2{break-after:avoid}figure,table,svg{break-inside:avoid}}";
 
 /// The page.
 pub fn page(r: &Report, extras: &Extras) -> String {
@@ -635,6 +637,7 @@ pub fn page(r: &Report, extras: &Extras) -> String {
         100.0 * r.unassigned_fraction
     );
     figure_row(&mut h, "Phase map", "row", &extras.figures);
+    note_list(&mut h, "Left out of this report", &extras.left_out);
     figure_row(&mut h, "Element maps", "row maps", &extras.element_maps);
     h.push_str(&phase_table(r));
     h.push_str("<h2>Area fractions</h2>");

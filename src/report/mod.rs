@@ -764,12 +764,18 @@ pub fn write_outputs(
     }
     drop(t);
     let _t = crate::profile::stage("  write: report.html");
+    let left_out = if result.counts.is_none() {
+        vec!["Element maps and the count plots of element pairs: the field was labelled strip by strip (a montage too big to hold whole), and they need the whole field's counts in memory; map a smaller field, or a part of this one, to see them.".to_string()]
+    } else {
+        Vec::new()
+    };
     let page = html::page(
         r,
         &html::Extras {
             figures,
             element_maps,
             scatters,
+            left_out,
         },
     );
     dir.write("report.html", page.as_bytes())
