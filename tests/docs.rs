@@ -164,3 +164,28 @@ fn the_shell_reader_splits_like_a_shell() {
     let md = "text\n```sh\na b\n\n```\n```toml\nc\n```\n";
     assert_eq!(shell_lines(md), ["a b"]);
 }
+
+/// The cluster guide shows the Slurm scripts the Slurm test runs, line for line (their
+/// header comments aside).
+#[test]
+fn the_cluster_guide_shows_the_tested_scripts() {
+    let root = PathBuf::from(env!("CARGO_MANIFEST_DIR"));
+    let guide = std::fs::read_to_string(root.join("notebooks-free-docs/cluster.md")).unwrap();
+    let blocks: Vec<Vec<&str>> = guide
+        .split("```bash\n")
+        .skip(1)
+        .map(|b| b.split("```").next().unwrap().lines().collect())
+        .collect();
+    for script in ["apply-array.sbatch", "merge.sbatch"] {
+        let text = std::fs::read_to_string(root.join("tests/slurm").join(script)).unwrap();
+        let lines: Vec<&str> = text
+            .lines()
+            .filter(|l| !(l.starts_with("# ") || *l == "#"))
+            .collect();
+        assert!(
+            blocks.contains(&lines),
+            "cluster.md does not show {script} as it is:\n{}",
+            lines.join("\n")
+        );
+    }
+}

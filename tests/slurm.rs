@@ -1,6 +1,7 @@
 //! The Slurm recipe end to end on a real single-node cluster: tests/slurm/run.sh starts
 //! munge, slurmctld and slurmd on loopback, runs `fit`, a 4-task array job of
-//! `apply --shard`, a dependent `merge` job, compares with a single-machine run, and stops
+//! `apply --shard`, a dependent `merge` job, one task rerun alone, compares with a
+//! single-machine run, and stops
 //! everything it started. It needs root and Debian's slurm-wlm and munge, which the test
 //! installs when they are missing.
 
@@ -26,6 +27,10 @@ fn array_job_on_a_real_slurm_cluster_matches_one_machine() {
     );
     assert!(
         stdout.contains("merged summary equals the single-machine run"),
+        "{stdout}"
+    );
+    assert!(
+        stdout.contains("task 2 rerun alone relabelled rock5 and kept rock9"),
         "{stdout}"
     );
 }

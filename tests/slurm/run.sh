@@ -90,7 +90,7 @@ done
 printf '%s\n' rock4 rock5 rock6 rock7 rock8 rock9 rock10 rock11 > fields.txt
 
 # Through the scheduler: the array job, then the merge job after it.
-export MODALMAP=$BIN MODEL=model.json FIELDS=fields.txt OUT=out SUMMARY=summary
+export MODALMAP=$BIN MODEL=model.json FIELDS=fields.txt OUT=out SUMMARY=summary SHARDS=4
 array=$(sbatch --parsable --array=1-4 "$HERE/apply-array.sbatch") || { logs; fail "sbatch refused the array job"; }
 merge=$(sbatch --parsable --dependency=afterok:"$array" "$HERE/merge.sbatch") || { logs; fail "sbatch refused the merge job"; }
 for _ in $(seq 300); do
@@ -101,6 +101,25 @@ done
 for i in 1 2 3 4; do
     [ -f "out/apply-$i-of-4.json" ] || fail "task $i left no apply-$i-of-4.json"
 done
+
+# One task again, alone (as after a failure): shard 2/4 holds rock5 and rock9; rock5's
+# output is gone, rock9's is kept.
+rm -r out/rock5
+again=$(sbatch --parsable --array=2 "$HERE/apply-array.sbatch") || { logs; fail "sbatch refused the rerun"; }
+for _ in $(seq 300); do
+    [ -z "$(squeue -h -j "$again" 2>/dev/null)" ] && break
+    sleep 1
+done
+[ -f out/rock5/report.json ] || { cat modalmap-*.log >&2 || true; fail "the rerun of task 2 did not label rock5"; }
+[ -e out/apply.json ] && fail "the rerun of task 2 took itself for the only shard"
+python3 - <<'PY' || fail "the rerun of task 2 did not label rock5 alone and keep rock9"
+import json, sys
+a = json.load(open("out/apply-2-of-4.json"))
+done = [f["field"] for f in a["fields"]]
+kept = [f["field"] for f in a["kept"]]
+sys.exit(0 if a["shard"] == [2, 4] and done == ["rock5"] and kept == ["rock9"] else f"{a['shard']} {done} {kept}")
+PY
+echo "slurm test: task 2 rerun alone relabelled rock5 and kept rock9"
 
 # The same on one machine.
 mapfile -t fields < fields.txt
