@@ -503,12 +503,57 @@ pub fn check_report(path: &Path, r: &Report) -> Result<()> {
 /// Pools reports made with one model. `reports` are (path of report.json, report); each
 /// must list the same phases (a phase absent from a field is listed with area 0).
 pub fn merge(reports: &[(PathBuf, Report)]) -> Result<Summary> {
-    let Some((first_path, first)) = reports.first() else {
+    let Some((_, first)) = reports.first() else {
         return Err(Error::options(
             "no report.json found below the given folders",
             "give the output folders of `modalmap apply`",
         ));
     };
+    let model = check_one_model(reports)?;
+    let phases = first
+        .phases
+        .iter()
+        .map(|p0| pool_phase(p0, reports))
+        .collect();
+    let unassigned = mean_ci(
+        &reports
+            .iter()
+            .map(|(_, r)| r.unassigned_fraction)
+            .collect::<Vec<_>>(),
+    );
+    Ok(Summary {
+        schema: SUMMARY_SCHEMA.into(),
+        model,
+        fields: reports
+            .iter()
+            .map(|(p, r)| PooledField {
+                field: r.field.clone(),
+                report: p.display().to_string(),
+                area_fractions: r.phases.iter().map(|q| q.area_fraction).collect(),
+                unassigned_fraction: r.unassigned_fraction,
+            })
+            .collect(),
+        phases,
+        unassigned_fraction_mean: unassigned.0,
+        unassigned_fraction_sd: unassigned.1,
+        unassigned_fraction_ci95: unassigned
+            .2
+            .is_finite()
+            .then(|| [(unassigned.0 - unassigned.2).max(0.0), (unassigned.0 + unassigned.2).min(1.0)]),
+        method: "per phase over n fields: mean area fraction, sample SD s, 95 % interval mean ± t·s/√n (Student t, n − 1 degrees of freedom), %RA = 100·(t·s/√n)/mean (ASTM E562, E1245 field statistics); compositions pooled weighted by the pixels each field's was summed over, their ± the pixel-weighted SD between fields (undefined with one field: see that field's report for its counting σ)".into(),
+        cautions: vec![
+            "The interval covers the variation between these fields; it estimates the material's value only if the fields were placed without regard to the microstructure (systematic or random sampling) and are enough in number (ASTM E562 §11: four times the fields halves %RA).".into(),
+            "Area fractions estimate volume fractions only for an isotropic, uniform microstructure.".into(),
+            "Compositions carry the cautions of the individual reports: semi-quantitative, and uncalibrated unless a report says otherwise.".into(),
+            "Follow your laboratory's accredited procedures and the applicable standards for results that go into a materials report.".into(),
+        ],
+    })
+}
+
+/// The model every report was made with, after checking that there is one and that every
+/// report lists the same phases and passes [`check_report`].
+fn check_one_model(reports: &[(PathBuf, Report)]) -> Result<ModelRef> {
+    let (first_path, first) = &reports[0]; // merge refuses an empty list first
     let model = first.model.clone().ok_or_else(|| {
         Error::input(
             first_path,
@@ -554,118 +599,83 @@ pub fn merge(reports: &[(PathBuf, Report)]) -> Result<Summary> {
             ));
         }
     }
+    Ok(model)
+}
+
+/// Field-to-field statistics of the phase `p0` (as the first report lists it) over every
+/// report (a report without it counts as area 0).
+fn pool_phase(p0: &crate::report::PhaseEntry, reports: &[(PathBuf, Report)]) -> PooledPhase {
     let n = reports.len();
-    let phases = first
-        .phases
+    let entries: Vec<&crate::report::PhaseEntry> = reports
         .iter()
-        .map(|p0| {
-            let entries: Vec<&crate::report::PhaseEntry> = reports
+        .filter_map(|(_, r)| r.phases.iter().find(|q| q.id == p0.id))
+        .collect();
+    let fractions: Vec<f64> = reports
+        .iter()
+        .map(|(_, r)| {
+            r.phases
                 .iter()
-                .filter_map(|(_, r)| r.phases.iter().find(|q| q.id == p0.id))
-                .collect();
-            let fractions: Vec<f64> = reports
-                .iter()
-                .map(|(_, r)| {
-                    r.phases
-                        .iter()
-                        .find(|q| q.id == p0.id)
-                        .map_or(0.0, |q| q.area_fraction)
-                })
-                .collect();
-            let (mean, sd, half, t) = mean_ci(&fractions);
-            let ci = half
-                .is_finite()
-                .then(|| [(mean - half).max(0.0), (mean + half).min(1.0)]);
-            let weight: f64 = entries.iter().map(|q| q.composition_pixels as f64).sum();
-            let mut composition_wt = BTreeMap::new();
-            if weight > 0.0 {
-                for e in p0.composition_wt.keys() {
-                    let v: f64 = entries
-                        .iter()
-                        .map(|q| {
-                            q.composition_pixels as f64
-                                * q.composition_wt.get(e).copied().unwrap_or(0.0)
-                        })
-                        .sum::<f64>()
-                        / weight;
-                    composition_wt.insert(e.clone(), v);
-                }
-            }
-            let composition_wt_sd_between_fields = if n > 1 && weight > 0.0 {
-                composition_wt
-                    .iter()
-                    .map(|(e, mean)| {
-                        let var = entries
-                            .iter()
-                            .map(|q| {
-                                let v = q.composition_wt.get(e).copied().unwrap_or(0.0);
-                                q.composition_pixels as f64 * (v - mean).powi(2)
-                            })
-                            .sum::<f64>()
-                            / weight;
-                        (e.clone(), var.sqrt())
-                    })
-                    .collect()
-            } else {
-                BTreeMap::new()
-            };
-            let basis = &p0.composition_basis;
-            let composition_basis = if entries.iter().all(|q| &q.composition_basis == basis) {
-                basis.clone()
-            } else {
-                "mixed: the fields' compositions have different bases".into()
-            };
-            PooledPhase {
-                id: p0.id,
-                name: p0.name.clone(),
-                fields: n,
-                area_fraction_mean: mean,
-                area_fraction_sd: sd,
-                area_fraction_ci95: ci,
-                t_quantile: t,
-                relative_accuracy_pct: (half.is_finite() && mean > 0.0)
-                    .then(|| 100.0 * half / mean),
-                composition_wt,
-                composition_wt_sd_between_fields,
-                composition_basis,
-                particles: entries.iter().map(|q| q.particles).sum(),
-                pixels: entries.iter().map(|q| q.pixels).sum(),
-            }
+                .find(|q| q.id == p0.id)
+                .map_or(0.0, |q| q.area_fraction)
         })
         .collect();
-    let unassigned = mean_ci(
-        &reports
+    let (mean, sd, half, t) = mean_ci(&fractions);
+    let ci = half
+        .is_finite()
+        .then(|| [(mean - half).max(0.0), (mean + half).min(1.0)]);
+    let weight: f64 = entries.iter().map(|q| q.composition_pixels as f64).sum();
+    let mut composition_wt = BTreeMap::new();
+    if weight > 0.0 {
+        for e in p0.composition_wt.keys() {
+            let v: f64 = entries
+                .iter()
+                .map(|q| {
+                    q.composition_pixels as f64 * q.composition_wt.get(e).copied().unwrap_or(0.0)
+                })
+                .sum::<f64>()
+                / weight;
+            composition_wt.insert(e.clone(), v);
+        }
+    }
+    let composition_wt_sd_between_fields = if n > 1 && weight > 0.0 {
+        composition_wt
             .iter()
-            .map(|(_, r)| r.unassigned_fraction)
-            .collect::<Vec<_>>(),
-    );
-    Ok(Summary {
-        schema: SUMMARY_SCHEMA.into(),
-        model,
-        fields: reports
-            .iter()
-            .map(|(p, r)| PooledField {
-                field: r.field.clone(),
-                report: p.display().to_string(),
-                area_fractions: r.phases.iter().map(|q| q.area_fraction).collect(),
-                unassigned_fraction: r.unassigned_fraction,
+            .map(|(e, mean)| {
+                let var = entries
+                    .iter()
+                    .map(|q| {
+                        let v = q.composition_wt.get(e).copied().unwrap_or(0.0);
+                        q.composition_pixels as f64 * (v - mean).powi(2)
+                    })
+                    .sum::<f64>()
+                    / weight;
+                (e.clone(), var.sqrt())
             })
-            .collect(),
-        phases,
-        unassigned_fraction_mean: unassigned.0,
-        unassigned_fraction_sd: unassigned.1,
-        unassigned_fraction_ci95: unassigned
-            .2
-            .is_finite()
-            .then(|| [(unassigned.0 - unassigned.2).max(0.0), (unassigned.0 + unassigned.2).min(1.0)]),
-        method: "per phase over n fields: mean area fraction, sample SD s, 95 % interval mean ± t·s/√n (Student t, n − 1 degrees of freedom), %RA = 100·(t·s/√n)/mean (ASTM E562, E1245 field statistics); compositions pooled weighted by the pixels each field's was summed over, their ± the pixel-weighted SD between fields (undefined with one field: see that field's report for its counting σ)".into(),
-        cautions: vec![
-            "The interval covers the variation between these fields; it estimates the material's value only if the fields were placed without regard to the microstructure (systematic or random sampling) and are enough in number (ASTM E562 §11: four times the fields halves %RA).".into(),
-            "Area fractions estimate volume fractions only for an isotropic, uniform microstructure.".into(),
-            "Compositions carry the cautions of the individual reports: semi-quantitative, and uncalibrated unless a report says otherwise.".into(),
-            "Follow your laboratory's accredited procedures and the applicable standards for results that go into a materials report.".into(),
-        ],
-    })
+            .collect()
+    } else {
+        BTreeMap::new()
+    };
+    let basis = &p0.composition_basis;
+    let composition_basis = if entries.iter().all(|q| &q.composition_basis == basis) {
+        basis.clone()
+    } else {
+        "mixed: the fields' compositions have different bases".into()
+    };
+    PooledPhase {
+        id: p0.id,
+        name: p0.name.clone(),
+        fields: n,
+        area_fraction_mean: mean,
+        area_fraction_sd: sd,
+        area_fraction_ci95: ci,
+        t_quantile: t,
+        relative_accuracy_pct: (half.is_finite() && mean > 0.0).then(|| 100.0 * half / mean),
+        composition_wt,
+        composition_wt_sd_between_fields,
+        composition_basis,
+        particles: entries.iter().map(|q| q.particles).sum(),
+        pixels: entries.iter().map(|q| q.pixels).sum(),
+    }
 }
 
 /// Every report.json below `root` (temporary and hidden folders skipped), sorted. A folder
