@@ -217,8 +217,8 @@ impl Detector {
 /// How to render the BSE image.
 #[derive(Debug, Clone, Copy, PartialEq)]
 pub struct BseOptions {
-    /// BSE pixels per map pixel (integer resolution ratio).
-    pub scale: usize,
+    /// BSE pixels per map pixel (the BSE image is round(scale × map size)).
+    pub scale: f64,
     /// Drift shift (dx, dy) in map pixels: a feature at map (x, y) appears in the BSE image
     /// at ((x + dx)·scale, (y + dy)·scale).
     pub shift_px: (f64, f64),
@@ -233,7 +233,7 @@ pub struct BseOptions {
 impl Default for BseOptions {
     fn default() -> Self {
         BseOptions {
-            scale: 2,
+            scale: 2.0,
             shift_px: (0.0, 0.0),
             offset: 3000.0,
             gain: 100_000.0,
@@ -385,12 +385,14 @@ pub fn shade(field: &mut SynthField, ramp: f64, seed: u64) -> Result<()> {
 }
 
 fn render_bse(micro: &Microstructure, w: usize, h: usize, b: &BseOptions, seed: u64) -> Raster {
-    let s = b.scale.max(1);
-    let (bw, bh) = (w * s, h * s);
+    let sf = if b.scale > 0.0 { b.scale } else { 1.0 };
+    let (bw, bh) = (
+        (w as f64 * sf).round() as usize,
+        (h as f64 * sf).round() as usize,
+    );
     let etas: Vec<f64> = std::iter::once(0.0)
         .chain(micro.phases.iter().map(|p| eta_compound(&p.composition)))
         .collect();
-    let sf = s as f64;
     // Each BSE pixel integrates its area (4 × 4 sub-samples), as a detector does.
     const SUB: usize = 4;
     let clean: Vec<f32> = (0..bw * bh)
@@ -589,7 +591,7 @@ pub fn solder_joint() -> (Microstructure, SynthOptions) {
             ..Default::default()
         },
         bse: Some(BseOptions {
-            scale: 2,
+            scale: 2.0,
             shift_px: (2.6, -1.4),
             ..BseOptions::default()
         }),
@@ -830,21 +832,48 @@ impl crate::choice::Choice for Scenario {
     }
 }
 
+/// The benchmark rock's settings (all `None` for the solder joint).
+#[derive(Debug, Clone, Copy, Default, PartialEq)]
+pub struct RockKnobs {
+    /// Width and height, pixels (2048).
+    pub size: Option<usize>,
+    /// Seed of the microstructure and counts (2048).
+    pub seed: Option<u64>,
+    /// An X-ray yield rising left to right by ± this share of its mean.
+    pub yield_ramp: Option<f64>,
+    /// A BSE image of this many pixels per map pixel.
+    pub bse_scale: Option<f64>,
+}
+
 /// Writes the synthetic field of `scenario` into the folder `output` (and its true labels
-/// as a 16-bit PNG to `truth`); `size`, `seed` and the yield ramp set the benchmark rock.
-/// Never writes into a field's folder; replaces existing outputs only with `force`.
+/// as a 16-bit PNG to `truth`); the [`RockKnobs`] set the benchmark rock. Never writes
+/// into a field's folder; replaces existing outputs only with `force`.
 pub fn write_scenario(
     output: &Path,
     truth: Option<&Path>,
     scenario: Scenario,
-    (size, seed, ramp): (Option<usize>, Option<u64>, Option<f64>),
+    knobs: RockKnobs,
     force: bool,
 ) -> Result<SynthField> {
-    if scenario == Scenario::SolderJoint && (size.is_some() || seed.is_some() || ramp.is_some()) {
+    let RockKnobs {
+        size,
+        seed,
+        yield_ramp: ramp,
+        bse_scale,
+    } = knobs;
+    if scenario == Scenario::SolderJoint && knobs != RockKnobs::default() {
         return Err(Error::options(
-            "--size, --seed and --yield-ramp set the benchmark rock; the solder joint is the bundled sample, always the same",
+            "--size, --seed, --yield-ramp and --bse-scale set the benchmark rock; the solder joint is the bundled sample, always the same",
             "leave them out, or add --scenario benchmark-rock",
         ));
+    }
+    if let Some(s) = bse_scale {
+        if !(1.0..=4.0).contains(&s) {
+            return Err(Error::options(
+                format!("--bse-scale {s} is out of range"),
+                "give 1 to 4 BSE pixels per map pixel, e.g. 1.5",
+            ));
+        }
     }
     let (size, seed) = (size.unwrap_or(2048), seed.unwrap_or(2048));
     if scenario == Scenario::BenchmarkRock && !(16..=20_000).contains(&size) {
@@ -879,7 +908,12 @@ pub fn write_scenario(
     let field = match scenario {
         Scenario::SolderJoint => sample_field()?,
         Scenario::BenchmarkRock => {
-            let (micro, opts) = benchmark_rock(size, seed);
+            let (micro, mut opts) = benchmark_rock(size, seed);
+            opts.bse = bse_scale.map(|scale| BseOptions {
+                scale,
+                shift_px: (2.3, -1.6),
+                ..BseOptions::default()
+            });
             let mut field = generate(&micro, &opts)?;
             if let Some(r) = ramp {
                 shade(&mut field, r, seed)?;
@@ -1031,7 +1065,7 @@ mod tests {
             seed: 1,
             metadata: FieldMetadata::default(),
             bse: Some(BseOptions {
-                scale: 2,
+                scale: 2.0,
                 shift_px: (3.0, -2.0),
                 noise: 1.0,
                 ..BseOptions::default()

@@ -72,7 +72,7 @@ fn rock_of_size(
         seed: 4,
         metadata: FieldMetadata::default(),
         bse: Some(BseOptions {
-            scale,
+            scale: scale as f64,
             shift_px: shift,
             noise,
             ..BseOptions::default()
@@ -311,7 +311,7 @@ fn unmapped_oxygen_is_flagged() {
         seed: 2,
         metadata: FieldMetadata::default(),
         bse: Some(BseOptions {
-            scale: 2,
+            scale: 2.0,
             shift_px: (1.0, 0.5),
             ..BseOptions::default()
         }),

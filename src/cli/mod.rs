@@ -173,6 +173,10 @@ pub enum Command {
         /// its mean (0.2 for ±20 %), as at low magnification.
         #[arg(long, value_name = "A")]
         yield_ramp: Option<f64>,
+        /// Give the benchmark rock a BSE image of S times its size (1.5: a 3072² image for
+        /// a 2048² field), drifted by a few pixels.
+        #[arg(long, value_name = "S")]
+        bse_scale: Option<f64>,
         /// Replace the folder's contents if it holds files (never a field's maps).
         #[arg(long)]
         force: bool,
@@ -332,12 +336,18 @@ pub fn run(cli: Cli) -> Result<u8> {
             size,
             seed,
             yield_ramp,
+            bse_scale,
             force,
         } => synth(
             &output,
             truth.as_deref(),
             scenario,
-            (size, seed, yield_ramp),
+            crate::synth::RockKnobs {
+                size,
+                seed,
+                yield_ramp,
+                bse_scale,
+            },
             force,
         ),
     }
@@ -348,7 +358,7 @@ fn synth(
     output: &std::path::Path,
     truth: Option<&std::path::Path>,
     scenario: Scenario,
-    knobs: (Option<usize>, Option<u64>, Option<f64>),
+    knobs: crate::synth::RockKnobs,
     force: bool,
 ) -> Result<u8> {
     let field = crate::synth::write_scenario(output, truth, scenario, knobs, force)?;
