@@ -284,6 +284,36 @@ pub fn em_step(m: &PoissonMixture, data: &[f32]) -> (PoissonMixture, f64) {
     (PoissonMixture::new(k, d, weights, rates), ll)
 }
 
+/// Rows to fit on (`d` values each) with their Σ ln x!, which every fit on them needs and
+/// which is worked out once here (a sweep fits the same sample some fifty times).
+pub struct Sample<'a> {
+    data: &'a [f32],
+    d: usize,
+    sum_ln_fact: f64,
+}
+
+impl<'a> Sample<'a> {
+    /// The rows `data`, `d` values each.
+    pub fn new(data: &'a [f32], d: usize) -> Sample<'a> {
+        let sum_ln_fact = data
+            .par_chunks(CHUNK_ROWS * d)
+            .map(|c| c.iter().map(|&x| ln_factorial(f64::from(x))).sum::<f64>())
+            .collect::<Vec<_>>()
+            .iter()
+            .sum();
+        Sample {
+            data,
+            d,
+            sum_ln_fact,
+        }
+    }
+
+    /// The rows.
+    pub fn rows(&self) -> &'a [f32] {
+        self.data
+    }
+}
+
 /// Refines `start` by EM on `data`. The returned `mean_log_likelihood` includes the
 /// −Σ ln x! term, so BIC values computed from it are true ones.
 pub fn fit(
@@ -292,13 +322,17 @@ pub fn fit(
     start: PoissonMixture,
     p: &Checked<PoissonParams>,
 ) -> PoissonMixture {
-    let n = (data.len() / d) as f64;
-    let sum_ln_fact: f64 = data
-        .par_chunks(CHUNK_ROWS * d)
-        .map(|c| c.iter().map(|&x| ln_factorial(f64::from(x))).sum::<f64>())
-        .collect::<Vec<_>>()
-        .iter()
-        .sum();
+    fit_sample(&Sample::new(data, d), start, p)
+}
+
+/// [`fit`] on a [`Sample`].
+pub fn fit_sample(
+    sample: &Sample,
+    start: PoissonMixture,
+    p: &Checked<PoissonParams>,
+) -> PoissonMixture {
+    let (data, sum_ln_fact) = (sample.data, sample.sum_ln_fact);
+    let n = (data.len() / sample.d) as f64;
     let mut m = start;
     let mut prev = f64::NEG_INFINITY;
     for it in 0..p.max_iter {

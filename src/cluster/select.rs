@@ -4,7 +4,7 @@ use serde::{Deserialize, Serialize};
 
 use super::kmeans;
 use super::model::{FitOptions, Seed};
-use super::poisson::{self, PoissonMixture, EM, SHORT_EM};
+use super::poisson::{self, PoissonMixture, Sample, EM, SHORT_EM};
 use super::{Clusters, Method};
 use crate::error::{Error, Result};
 use crate::prepare::Features;
@@ -234,9 +234,9 @@ fn distinct_rows(rows: &[f32], d: usize, at_least: usize) -> bool {
 }
 
 /// Ranks candidate starting mixtures by a short EM; only the winner runs to convergence.
-fn best_of(rows: &[f32], d: usize, starts: impl Iterator<Item = PoissonMixture>) -> PoissonMixture {
+fn best_of(sample: &Sample, starts: impl Iterator<Item = PoissonMixture>) -> PoissonMixture {
     let best = starts
-        .map(|start| poisson::fit(rows, d, start, &SHORT_EM))
+        .map(|start| poisson::fit_sample(sample, start, &SHORT_EM))
         .reduce(|a, b| {
             if b.mean_log_likelihood > a.mean_log_likelihood {
                 b
@@ -245,7 +245,7 @@ fn best_of(rows: &[f32], d: usize, starts: impl Iterator<Item = PoissonMixture>)
             }
         })
         .expect("n_init ≥ 1");
-    poisson::fit(rows, d, best, &EM)
+    poisson::fit_sample(sample, best, &EM)
 }
 
 /// A starting mixture from centres in √counts: each row goes to its nearest centre.
@@ -264,12 +264,13 @@ fn start_from_centres(rows: &[f32], root: &[f32], d: usize, centres: &[f32]) -> 
 /// best of `n_init` such seeds after EM is kept. Each step starts near a good solution, so
 /// the BIC curve is smooth and cheap to compute.
 fn grow_poisson(
-    rows: &[f32],
+    sample: &Sample,
     d: usize,
     prev: &PoissonMixture,
     p: &ClusterParams,
 ) -> PoissonMixture {
     use rand::Rng;
+    let rows = sample.rows();
     let root: Vec<f32> = rows.iter().map(|&x| x.max(0.0).sqrt()).collect();
     let old: Vec<f32> = prev.rates.iter().map(|&r| r.sqrt() as f32).collect();
     let d2: Vec<f64> = root
@@ -293,7 +294,7 @@ fn grow_poisson(
     });
     // Collected first: the draws must not depend on how the candidates are evaluated.
     let starts: Vec<PoissonMixture> = starts.collect();
-    best_of(rows, d, starts.into_iter())
+    best_of(sample, starts.into_iter())
 }
 
 /// Components fitted beyond a fixed phase count N at least: the spares go to boundary
@@ -358,18 +359,14 @@ pub fn fit(f: &Features, params: &ValidClusterParams) -> Result<Fit> {
     };
     let mut curve = Vec::new();
     let mut best: Option<(f64, PoissonMixture)> = None;
-    let mut m = poisson::fit(
-        rows.as_slice(),
-        d,
-        poisson::from_labels(&rows, d, &vec![0; n], 1),
-        &EM,
-    );
+    let sample = Sample::new(&rows, d);
+    let mut m = poisson::fit_sample(&sample, poisson::from_labels(&rows, d, &vec![0; n], 1), &EM);
     for k in 1..=max.min(n) {
         if k > 1 {
             if !distinct_rows(&rows, d, k) {
                 break;
             }
-            m = grow_poisson(&rows, d, &m, p);
+            m = grow_poisson(&sample, d, &m, p);
         }
         let b = m.bic(n);
         curve.push(CurvePoint { k, bic: b });
