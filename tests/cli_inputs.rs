@@ -317,6 +317,37 @@ fn truncated_hdf5_is_refused() {
     }
 }
 
+/// An HDF5 stack written height × width × element (as image libraries hold colour
+/// planes) is refused with the transpose it needs, not only "the plane count differs".
+#[test]
+fn an_hdf5_stack_stored_pixels_first_gets_the_transpose_hint() {
+    use hdf5_pure::AttrValue;
+    let dir = tempfile::tempdir().unwrap();
+    let (h, w, e) = (6u64, 5u64, 3u64);
+    let data: Vec<f32> = (0..h * w * e).map(|i| (i % 7) as f32).collect();
+    let mut b = hdf5_pure::FileBuilder::new();
+    b.create_dataset("maps")
+        .with_f32_data(&data)
+        .with_shape(&[h, w, e])
+        .set_attr(
+            "elements",
+            AttrValue::StringArray(vec!["Fe".into(), "Cu".into(), "Sn".into()]),
+        );
+    let file = dir.path().join("stack.h5");
+    b.write(&file).unwrap();
+    let r = modalmap(&["inspect", file.to_str().unwrap()]);
+    assert_refused(
+        &r,
+        3,
+        &[
+            "stack.h5",
+            "6 × 5 × 3",
+            "height × width × element",
+            "np.moveaxis(a, -1, 0)",
+        ],
+    );
+}
+
 #[test]
 fn bad_option_values_exit_2() {
     let r = modalmap(&["inspect", "--max-pixels", "lots", "x"]);

@@ -352,6 +352,16 @@ fn read_stack_layout(
         .map(<[String]>::to_vec)
         .unwrap_or_default();
     let (n, h, w) = (shape[0] as usize, shape[1] as usize, shape[2] as usize);
+    if names.len() != n && names.len() == w {
+        return Err(Error::input(
+            path,
+            format!(
+                "dataset /maps is {n} × {h} × {w} with {} element names: it looks stored as height × width × element, but modalmap reads element × height × width",
+                names.len()
+            ),
+            "write the planes first, e.g. in Python with h5py and numpy: f['maps'] = np.moveaxis(a, -1, 0) (keep the `elements` attribute)",
+        ));
+    }
     if names.len() != n {
         return Err(bad(
             path,
