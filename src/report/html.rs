@@ -711,7 +711,15 @@ fn phase_table(r: &Report) -> String {
             .collect();
         let m = match &p.reference {
             Some(m) => match &m.reference {
-                Some(name) => format!("{} (quality {:.2})", esc(name), m.quality),
+                Some(name) if m.alternatives.is_empty() => {
+                    format!("{} (quality {:.2})", esc(name), m.quality)
+                }
+                Some(name) => format!(
+                    "{} (quality {:.2}; {} fit as well: the mapped elements cannot tell them apart)",
+                    esc(name),
+                    m.quality,
+                    esc(&m.alternatives.join(", "))
+                ),
                 None => format!("no match (closest {}, {:.3})", esc(&m.closest), m.quality),
             },
             None => "–".into(),
@@ -908,6 +916,11 @@ mod tests {
         assert!(h.contains("not detected: Ag &lt;1.07"), "{h}");
         assert!(!h.contains("&amp;lt;"), "{h}");
         assert!(h.contains("Sn 100.0 (100 % by normalisation, no σ)"), "{h}");
+        // The match column names the same candidates as the name column.
+        let p1 = &r.phases[0];
+        let alternatives = &p1.reference.as_ref().unwrap().alternatives;
+        assert!(!alternatives.is_empty() && p1.name.contains(&alternatives[0]), "{}", p1.name);
+        assert!(h.contains(&format!("{} fit as well", alternatives.join(", "))), "{h}");
         assert!(!h.contains("± 0.0<") && !h.contains("± 0.0,"), "{h}");
     }
 }
