@@ -919,8 +919,15 @@ mod tests {
         // The match column names the same candidates as the name column.
         let p1 = &r.phases[0];
         let alternatives = &p1.reference.as_ref().unwrap().alternatives;
-        assert!(!alternatives.is_empty() && p1.name.contains(&alternatives[0]), "{}", p1.name);
-        assert!(h.contains(&format!("{} fit as well", alternatives.join(", "))), "{h}");
+        assert!(
+            !alternatives.is_empty() && p1.name.contains(&alternatives[0]),
+            "{}",
+            p1.name
+        );
+        assert!(
+            h.contains(&format!("{} fit as well", alternatives.join(", "))),
+            "{h}"
+        );
         assert!(!h.contains("± 0.0<") && !h.contains("± 0.0,"), "{h}");
     }
 }
