@@ -294,7 +294,7 @@ fn a_one_pixel_field_gets_no_interval_and_no_library_name() {
         .contains("too few to compare"));
     let csv = std::fs::read_to_string(out.join("phases.csv")).unwrap();
     assert!(
-        csv.lines().nth(1).unwrap().contains(",1.000000,,,"),
+        csv.lines().nth(1).unwrap().contains(",100.0000,,,"),
         "{csv}"
     );
 }

@@ -17,6 +17,20 @@ fn s(p: &Path) -> &str {
     p.to_str().unwrap()
 }
 
+/// The cells of a CSV row whose quoted cells may hold commas.
+fn csv_cells(row: &str) -> Vec<String> {
+    let (mut cells, mut cell, mut quoted) = (Vec::new(), String::new(), false);
+    for c in row.chars() {
+        match c {
+            '"' => quoted = !quoted,
+            ',' if !quoted => cells.push(std::mem::take(&mut cell)),
+            c => cell.push(c),
+        }
+    }
+    cells.push(cell);
+    cells
+}
+
 fn report(dir: &Path) -> serde_json::Value {
     serde_json::from_str(&std::fs::read_to_string(dir.join("report.json")).unwrap()).unwrap()
 }
@@ -89,10 +103,20 @@ fn map_writes_consistent_outputs() {
         let n = labels.data.iter().filter(|&&v| v == id).count();
         assert_eq!(n as u64, p["pixels"].as_u64().unwrap());
     }
-    // The CSV has a header and one row per phase.
+    // The CSV has a header, one row per phase and one for the unassigned pixels; its areas
+    // are in % and add up to 100.
     let csv = std::fs::read_to_string(out.join("phases.csv")).unwrap();
-    assert_eq!(csv.lines().count(), 6);
-    assert!(csv.starts_with("id,name,pixels,area_fraction"));
+    assert_eq!(csv.lines().count(), 7);
+    assert!(
+        csv.starts_with("id,name,pixels,area_pct,area_pct_ci95_low,area_pct_ci95_high,features,")
+    );
+    assert!(csv.lines().last().unwrap().starts_with("0,unassigned,"));
+    let total: f64 = csv
+        .lines()
+        .skip(1)
+        .map(|row| csv_cells(row)[3].parse::<f64>().unwrap())
+        .sum();
+    assert!((total - 100.0).abs() < 1e-3, "areas add up to {total} %");
     // Provenance: the hash of every map file, as SHA-256 (FIPS 180-4) of its bytes.
     let inputs = rep["provenance"]["inputs"].as_array().unwrap();
     assert_eq!(inputs.len(), 4, "three maps and the BSE image");
@@ -417,6 +441,9 @@ fn calibrated_map_reports_compositions_names_and_advice() {
             .collect();
         let f: Vec<&str> = unquoted.split(',').collect();
         assert_eq!(f.len(), cols.len(), "{row}");
+        if f[0] == "0" {
+            continue; // the unassigned pixels: no features, no ECD
+        }
         let (p, u): (f64, f64) = (f[px].parse().unwrap(), f[um].parse().unwrap());
         assert!((u - p * size).abs() < 1e-3 + 1e-3 * u, "{row}");
     }

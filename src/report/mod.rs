@@ -478,9 +478,10 @@ pub fn csv_field(v: &str) -> String {
     }
 }
 
-/// `phases.csv`: one row per phase.
+/// `phases.csv`: one row per phase, areas in % of the field, and a last row (id 0) for the
+/// unassigned pixels.
 pub fn phases_csv(r: &Report) -> String {
-    let mut s = String::from("id,name,pixels,area_fraction,area_fraction_ci95_low,area_fraction_ci95_high,particles,mean_ecd_px,mean_ecd_um,mean_confidence");
+    let mut s = String::from("id,name,pixels,area_pct,area_pct_ci95_low,area_pct_ci95_high,features,mean_ecd_px,mean_ecd_um,mean_confidence");
     for e in &r.elements {
         s.push_str(&format!(",mean_{e}"));
     }
@@ -499,14 +500,14 @@ pub fn phases_csv(r: &Report) -> String {
         let [lo, hi] = p
             .area_fraction_ci95
             .map_or([String::new(), String::new()], |c| {
-                c.map(|v| format!("{v:.6}"))
+                c.map(|v| format!("{:.4}", 100.0 * v))
             });
         s.push_str(&format!(
-            "{},{},{},{:.6},{lo},{hi},{},{:.3},{},{:.4}",
+            "{},{},{},{:.4},{lo},{hi},{},{:.3},{},{:.4}",
             p.id,
             name,
             p.pixels,
-            p.area_fraction,
+            100.0 * p.area_fraction,
             p.particles,
             p.mean_ecd_px,
             p.mean_ecd_um.map_or(String::new(), |u| format!("{u:.4}")),
@@ -540,6 +541,16 @@ pub fn phases_csv(r: &Report) -> String {
             p.composition_basis
         ));
     }
+    // The unassigned pixels, so that the area column adds up to 100 %.
+    let unassigned: usize = r.unassigned.values().sum();
+    // After id, name, pixels, area and the two empty interval cells: features, three
+    // ECD/confidence cells, the means and SDs, the compositions and the four last columns.
+    let empty_after = 4 + 2 * r.elements.len() + 4 * ce.len() + 4;
+    s.push_str(&format!(
+        "0,unassigned,{unassigned},{:.4},,{}\n",
+        100.0 * r.unassigned_fraction,
+        ",".repeat(empty_after)
+    ));
     s
 }
 
