@@ -3,7 +3,7 @@
 
 mod common;
 
-use common::modalmap;
+use common::{csv_cells, modalmap};
 use std::path::{Path, PathBuf};
 
 fn sample() -> String {
@@ -15,20 +15,6 @@ fn sample() -> String {
 
 fn s(p: &Path) -> &str {
     p.to_str().unwrap()
-}
-
-/// The cells of a CSV row whose quoted cells may hold commas.
-fn csv_cells(row: &str) -> Vec<String> {
-    let (mut cells, mut cell, mut quoted) = (Vec::new(), String::new(), false);
-    for c in row.chars() {
-        match c {
-            '"' => quoted = !quoted,
-            ',' if !quoted => cells.push(std::mem::take(&mut cell)),
-            c => cell.push(c),
-        }
-    }
-    cells.push(cell);
-    cells
 }
 
 fn report(dir: &Path) -> serde_json::Value {
@@ -426,20 +412,7 @@ fn calibrated_map_reports_compositions_names_and_advice() {
     );
     let size = rep["pixel_size_um"].as_f64().unwrap();
     for row in csv.lines().skip(1) {
-        // The names hold no comma here, and the "A or B (X, Y not mapped)" names are
-        // quoted; split on the quoted field first.
-        let unquoted: String = row
-            .split('"')
-            .enumerate()
-            .map(|(i, part)| {
-                if i % 2 == 1 {
-                    part.replace(',', ";")
-                } else {
-                    part.to_string()
-                }
-            })
-            .collect();
-        let f: Vec<&str> = unquoted.split(',').collect();
+        let f = csv_cells(row);
         assert_eq!(f.len(), cols.len(), "{row}");
         if f[0] == "0" {
             continue; // the unassigned pixels: no features, no ECD

@@ -8,7 +8,7 @@ mod common;
 
 use std::path::{Path, PathBuf};
 
-use common::modalmap;
+use common::{csv_rows, modalmap};
 use modalmap::synth::{benchmark_rock, generate, match_labels, write_folder};
 
 const SIZE: usize = 160;
@@ -469,29 +469,6 @@ fn many_field_options_are_checked() {
     let r = modalmap(&["fit", &s(&a), &s(&sample), "-o", &s(&d.join("m2.json"))]);
     assert_eq!(r.code, 3, "{}", r.stderr);
     assert!(r.stderr.contains("elements") && !d.join("m2.json").exists());
-}
-
-/// Rows of a CSV text (fields quoted with `"` where they hold a comma).
-fn csv_rows(text: &str) -> Vec<Vec<String>> {
-    text.lines()
-        .map(|line| {
-            let (mut cells, mut cell, mut quoted) = (Vec::new(), String::new(), false);
-            let mut chars = line.chars().peekable();
-            while let Some(c) = chars.next() {
-                match (c, quoted) {
-                    ('"', true) if chars.peek() == Some(&'"') => {
-                        cell.push('"');
-                        chars.next();
-                    }
-                    ('"', _) => quoted = !quoted,
-                    (',', false) => cells.push(std::mem::take(&mut cell)),
-                    _ => cell.push(c),
-                }
-            }
-            cells.push(cell);
-            cells
-        })
-        .collect()
 }
 
 /// merge's files for a spreadsheet and a report: summary.csv in % with an unassigned row

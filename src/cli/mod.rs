@@ -210,16 +210,20 @@ pub fn map_field(
         limits: args.limits.checked()?,
         force: args.force,
         stream: crate::run::Stream::Never,
-        also_reads: args
-            .config
-            .iter()
-            .map(|p| ("configuration file", p.clone()))
-            .collect(),
+        also_reads: config_reads(args),
     };
     let stages = progress::Stages::new(args.quiet);
     let result = process_field(input, out, &job, &mut |stage| stages.stage(stage));
     stages.finish();
     result
+}
+
+/// The configuration file a command reads, which no output may replace.
+fn config_reads(args: &MapArgs) -> Vec<(&'static str, PathBuf)> {
+    args.config
+        .iter()
+        .map(|p| ("configuration file", p.clone()))
+        .collect()
 }
 
 /// Runs a parsed command line; returns the process exit code on success.
@@ -399,11 +403,7 @@ fn fit(
         metadata,
         limits: args.limits.checked()?,
         force: args.force,
-        also_reads: args
-            .config
-            .iter()
-            .map(|p| ("configuration file", p.clone()))
-            .collect(),
+        also_reads: config_reads(args),
     };
     let stages = progress::Stages::new(args.quiet);
     let fitted = crate::run::fit_model(inputs, output, &job, &mut |stage| stages.stage(stage));
@@ -555,7 +555,8 @@ fn merge(folders: &[PathBuf], out: &std::path::Path, force: bool, quiet: bool) -
                 p.id,
                 p.name,
                 100.0 * p.area_fraction_mean,
-                crate::fields::pooled_sd_text(&summary, p).replace(" (one field)", ""),
+                crate::fields::sd_pct(&summary, p.area_fraction_sd)
+                    .map_or("undefined".into(), |v| format!("{v:.2}")),
                 crate::fields::pooled_ci_text(p, "–"),
                 p.relative_accuracy_pct
                     .map_or("–".into(), |v| format!("{v:.1}"))

@@ -32,7 +32,7 @@ use crate::stack::{ElementMap, MapStack};
 
 mod summary;
 
-pub use summary::{pooled_ci_text, pooled_sd_text, summary_csv, summary_html};
+pub use summary::{pooled_ci_text, sd_pct, summary_csv, summary_html};
 
 /// The model file's schema name and version.
 pub const MODEL_SCHEMA: &str = "modalmap.model/1";

@@ -33,7 +33,6 @@ fn opt_pct(v: Option<f64>) -> String {
 /// undefined (one field) is left empty.
 pub fn summary_csv(s: &Summary) -> String {
     let elements = elements(s);
-    let one = s.fields.len() < 2;
     let mut out = String::from("id,name,fields,area_pct_mean,area_pct_sd,area_pct_ci95_low,area_pct_ci95_high,relative_accuracy_pct,features,pixels,composition_basis");
     for e in &elements {
         let _ = write!(out, ",wt_pct_{e},wt_pct_sd_between_fields_{e}");
@@ -47,11 +46,7 @@ pub fn summary_csv(s: &Summary) -> String {
             csv_field(&p.name),
             p.fields,
             pct(p.area_fraction_mean),
-            if one {
-                String::new()
-            } else {
-                pct(p.area_fraction_sd)
-            },
+            sd_pct(s, p.area_fraction_sd).map_or(String::new(), |v| format!("{v:.4}")),
             opt_pct(p.area_fraction_ci95.map(|c| c[0])),
             opt_pct(p.area_fraction_ci95.map(|c| c[1])),
             p.relative_accuracy_pct
@@ -72,11 +67,7 @@ pub fn summary_csv(s: &Summary) -> String {
         "0,unassigned,{},{},{},{},{},,,,",
         s.fields.len(),
         pct(s.unassigned_fraction_mean),
-        if one {
-            String::new()
-        } else {
-            pct(s.unassigned_fraction_sd)
-        },
+        sd_pct(s, s.unassigned_fraction_sd).map_or(String::new(), |v| format!("{v:.4}")),
         opt_pct(s.unassigned_fraction_ci95.map(|c| c[0])),
         opt_pct(s.unassigned_fraction_ci95.map(|c| c[1])),
     );
@@ -138,21 +129,30 @@ fn composition_cells(
     out.push('\n');
 }
 
-/// A pooled phase's 95 % interval in %, or why it has none.
-pub fn pooled_ci_text(p: &PooledPhase, dash: &str) -> String {
-    match p.area_fraction_ci95 {
+/// Why a pooled SD or interval has no value.
+pub const ONE_FIELD: &str = "undefined (one field)";
+
+/// A pooled 95 % interval (fractions) in % for tables, or why it has none.
+pub fn interval_text(ci: Option<[f64; 2]>, dash: &str) -> String {
+    match ci {
         Some([lo, hi]) => format!("{:.2}{dash}{:.2}", 100.0 * lo, 100.0 * hi),
-        None => "undefined (one field)".into(),
+        None => ONE_FIELD.into(),
     }
 }
 
-/// A pooled phase's SD in % for tables, or why it has none.
-pub fn pooled_sd_text(s: &Summary, p: &PooledPhase) -> String {
-    if s.fields.len() < 2 {
-        "undefined (one field)".into()
-    } else {
-        format!("{:.2}", 100.0 * p.area_fraction_sd)
-    }
+/// A pooled phase's 95 % interval in %, or why it has none.
+pub fn pooled_ci_text(p: &PooledPhase, dash: &str) -> String {
+    interval_text(p.area_fraction_ci95, dash)
+}
+
+/// A pooled SD (a fraction) in %; `None` with one field, where it is undefined.
+pub fn sd_pct(s: &Summary, sd: f64) -> Option<f64> {
+    (s.fields.len() > 1).then_some(100.0 * sd)
+}
+
+/// [`sd_pct`] for a table: two decimals, or why there is none.
+fn sd_text(s: &Summary, sd: f64) -> String {
+    sd_pct(s, sd).map_or(ONE_FIELD.into(), |v| format!("{v:.2}"))
 }
 
 /// `summary-areas.svg`: per phase, the mean area % as a bar with its 95 % interval as a
@@ -344,7 +344,7 @@ pub fn summary_html(s: &Summary, figure: &str, links: &[String]) -> String {
             p.id,
             esc(&p.name),
             100.0 * p.area_fraction_mean,
-            pooled_sd_text(s, p),
+            sd_text(s, p.area_fraction_sd),
             pooled_ci_text(p, " – "),
             p.relative_accuracy_pct
                 .map_or("–".into(), |v| format!("{v:.1}")),
@@ -352,20 +352,12 @@ pub fn summary_html(s: &Summary, figure: &str, links: &[String]) -> String {
             esc(&composition_text(s, p))
         );
     }
-    let un_ci = s
-        .unassigned_fraction_ci95
-        .map_or("undefined (one field)".into(), |c| {
-            format!("{:.2} – {:.2}", 100.0 * c[0], 100.0 * c[1])
-        });
+    let un_ci = interval_text(s.unassigned_fraction_ci95, " – ");
     let _ = writeln!(
         h,
         "<tr><td>0</td><td class=\"l\">unassigned</td><td>{:.2}</td><td>{}</td><td>{un_ci}</td><td>–</td><td>–</td><td class=\"l\">–</td></tr>\n</table>\n<p>{}</p>",
         100.0 * s.unassigned_fraction_mean,
-        if s.fields.len() < 2 {
-            "undefined (one field)".into()
-        } else {
-            format!("{:.2}", 100.0 * s.unassigned_fraction_sd)
-        },
+        sd_text(s, s.unassigned_fraction_sd),
         esc(&s.method)
     );
     let _ = writeln!(

@@ -543,13 +543,12 @@ pub fn phases_csv(r: &Report) -> String {
     }
     // The unassigned pixels, so that the area column adds up to 100 %.
     let unassigned: usize = r.unassigned.values().sum();
-    // After id, name, pixels, area and the two empty interval cells: features, three
-    // ECD/confidence cells, the means and SDs, the compositions and the four last columns.
-    let empty_after = 4 + 2 * r.elements.len() + 4 * ce.len() + 4;
+    // Four cells given, the rest of the header's columns left empty.
+    let columns = s.lines().next().map_or(0, |h| h.split(',').count());
     s.push_str(&format!(
-        "0,unassigned,{unassigned},{:.4},,{}\n",
+        "0,unassigned,{unassigned},{:.4}{}\n",
         100.0 * r.unassigned_fraction,
-        ",".repeat(empty_after)
+        ",".repeat(columns - 4)
     ));
     s
 }

@@ -85,3 +85,27 @@ pub fn modalmap(args: &[&str]) -> Run {
         stderr: String::from_utf8_lossy(&out.stderr).into_owned(),
     }
 }
+
+/// The cells of one CSV row (RFC 4180 quoting: a quoted cell may hold commas and `""`).
+pub fn csv_cells(row: &str) -> Vec<String> {
+    let (mut cells, mut cell, mut quoted) = (Vec::new(), String::new(), false);
+    let mut chars = row.chars().peekable();
+    while let Some(c) = chars.next() {
+        match (c, quoted) {
+            ('"', true) if chars.peek() == Some(&'"') => {
+                cell.push('"');
+                chars.next();
+            }
+            ('"', _) => quoted = !quoted,
+            (',', false) => cells.push(std::mem::take(&mut cell)),
+            _ => cell.push(c),
+        }
+    }
+    cells.push(cell);
+    cells
+}
+
+/// The rows of a CSV text, as [`csv_cells`].
+pub fn csv_rows(text: &str) -> Vec<Vec<String>> {
+    text.lines().map(csv_cells).collect()
+}
