@@ -369,15 +369,16 @@ pub fn em_step(
         .par_chunks(CHUNK_ROWS * d)
         .map(|chunk| {
             let mut s = Stats::new(k, d);
+            let mut ll = lanes::LogSum::default();
             g.for_each_scored_row(chunk, |row, lp| {
-                let (_, _, lse) = lanes::best_and_log_sum(lp);
-                s.ll += lse;
-                for (c, &l) in lp.iter().enumerate() {
-                    if let Some(r) = lanes::responsibility(l, lse) {
+                ll.add(lanes::to_posteriors(lp));
+                for (c, &r) in lp.iter().enumerate() {
+                    if r > lanes::MIN_RESPONSIBILITY {
                         s.accumulate(row, c, r, d);
                     }
                 }
             });
+            s.ll = ll.total();
             s
         })
         .collect::<Vec<_>>()

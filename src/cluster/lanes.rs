@@ -136,32 +136,78 @@ pub fn for_each_scored_row(
     });
 }
 
-/// eˣ for x ≤ 0, without calling `exp` where the result is exactly 0 anyway (x < −746
-/// underflows every `f64`): far-apart phases make most of a pixel's terms that small.
-#[inline]
-pub fn exp_or_zero(x: f64) -> f64 {
-    if x < -746.0 {
-        0.0
-    } else {
-        x.exp()
-    }
-}
-
 /// Responsibilities at or below this are left out of the EM sums (they change nothing
 /// that matters and cost a pass over the row).
 pub const MIN_RESPONSIBILITY: f64 = 1e-10;
 
-/// The responsibility e^(l − lse) of a component with score `l` when it is above
-/// [`MIN_RESPONSIBILITY`], else `None`. `exp` is not called below −23.1 (ln 1e−10 is
-/// −23.03), where the answer is `None` anyway: most of a pixel's components are far below.
+/// Turns a row's scores `lp` (log densities) into its posterior probabilities in place,
+/// e^(lpₖ − lse), with 0 for the terms below e⁻⁴⁰ of the largest (see [`NEGLIGIBLE`]);
+/// returns `(max, s)` with ln Σ exp(lp) = max + ln s, for a [`LogSum`]. One `exp` per
+/// term that matters and none per row: EM's E-step is this and a few sums.
 #[inline]
-pub fn responsibility(l: f64, lse: f64) -> Option<f64> {
-    let x = l - lse;
-    if x < -23.1 {
-        return None;
+pub fn to_posteriors(lp: &mut [f64]) -> (f64, f64) {
+    let max = lp.iter().copied().fold(f64::NEG_INFINITY, f64::max);
+    let mut s = 0.0;
+    for v in lp.iter_mut() {
+        *v = negligible_or_exp(*v - max);
+        s += *v;
     }
-    let r = x.exp();
-    (r > MIN_RESPONSIBILITY).then_some(r)
+    if s != 1.0 {
+        let inv = 1.0 / s;
+        lp.iter_mut().for_each(|v| *v *= inv);
+    }
+    (max, s)
+}
+
+/// Rows a [`LogSum`] multiplies together before taking one `ln`: each factor s is between
+/// 1 and the number of components (at most a few dozen), so 32 of them stay far inside
+/// the range of an `f64`.
+const LN_BATCH: usize = 32;
+
+/// Σ over rows of ln Σ exp(lp) from [`to_posteriors`]'s `(max, s)`: the maxima are added,
+/// the s multiplied, and one `ln` taken per [`LN_BATCH`] rows.
+#[derive(Debug, Clone, Copy)]
+pub struct LogSum {
+    sum: f64,
+    product: f64,
+    pending: usize,
+}
+
+impl Default for LogSum {
+    fn default() -> Self {
+        LogSum {
+            sum: 0.0,
+            product: 1.0,
+            pending: 0,
+        }
+    }
+}
+
+impl LogSum {
+    /// Adds one row's ln Σ exp(lp) = max + ln s.
+    #[inline]
+    pub fn add(&mut self, (max, s): (f64, f64)) {
+        self.sum += max;
+        self.product *= s;
+        self.pending += 1;
+        if self.pending == LN_BATCH {
+            self.flush();
+        }
+    }
+
+    fn flush(&mut self) {
+        if self.product != 1.0 {
+            self.sum += self.product.ln();
+        }
+        self.product = 1.0;
+        self.pending = 0;
+    }
+
+    /// The sum so far.
+    pub fn total(mut self) -> f64 {
+        self.flush();
+        self.sum
+    }
 }
 
 /// The most probable of the scores `lp` (log densities; ties go to the lower index), its
@@ -175,9 +221,31 @@ pub fn best_and_log_sum(lp: &[f64]) -> (usize, f64, f64) {
         }
     }
     let max = lp[best];
-    let s: f64 = lp.iter().map(|&v| exp_or_zero(v - max)).sum();
+    let s: f64 = lp.iter().map(|&v| negligible_or_exp(v - max)).sum();
+    if s == 1.0 {
+        // Every other term is negligible: ln 1 = 0 and e⁰ = 1 exactly.
+        return (best, 1.0, max);
+    }
     let lse = max + s.ln();
     (best, (lp[best] - lse).exp(), lse)
+}
+
+/// Terms of a log-sum-exp more than this below its largest one are left out: e⁻⁴⁰ is
+/// 4.2 × 10⁻¹⁸, so even [`MAX_DIMS`]·2 such terms change the sum (which is at least 1, the
+/// largest term's e⁰) by less than half a unit in its last place (2⁻⁵³ = 1.1 × 10⁻¹⁶).
+/// Pixels far from all but one phase, most of a field, then cost no `exp` at all.
+pub const NEGLIGIBLE: f64 = -40.0;
+
+/// eˣ for x ≤ 0, or 0 where x < [`NEGLIGIBLE`]; e⁰ = 1 without a call.
+#[inline]
+fn negligible_or_exp(x: f64) -> f64 {
+    if x < NEGLIGIBLE {
+        0.0
+    } else if x == 0.0 {
+        1.0
+    } else {
+        x.exp()
+    }
 }
 
 #[cfg(test)]
@@ -189,16 +257,42 @@ mod tests {
     use rand_chacha::ChaCha8Rng;
 
     /// The shortcuts answer what the plain formulas answer, on both sides of their
-    /// cut-offs.
+    /// cut-off, to within a few units in the last place (terms below e⁻⁴⁰ of the largest
+    /// are left out), and the batched sum of logs equals the plain sum.
     #[test]
     fn shortcuts_equal_the_plain_formulas() {
+        let mut sum = LogSum::default();
+        let mut plain_sum = 0.0;
         for i in 0..=40_000 {
             let x = -800.0 + 0.02 * f64::from(i);
-            assert_eq!(exp_or_zero(x).to_bits(), x.exp().to_bits(), "{x}");
-            let (l, lse) = (x + 5.0, 5.0);
-            let plain = Some((l - lse).exp()).filter(|&r| r > MIN_RESPONSIBILITY);
-            assert_eq!(responsibility(l, lse), plain, "{x}");
+            for lp in [[x, 0.0, 2.0 * x], [-3000.0 + x, -3000.0, -3000.5 + x]] {
+                let max = lp.iter().cloned().fold(f64::NEG_INFINITY, f64::max);
+                let lse_plain = max + lp.iter().map(|&v| (v - max).exp()).sum::<f64>().ln();
+                let close = |a: f64, b: f64| (a - b).abs() <= 4.0 * f64::EPSILON * b.abs().max(1.0);
+                let (best, post, lse) = best_and_log_sum(&lp);
+                assert_eq!(lp[best], max);
+                assert!(close(lse, lse_plain), "{lp:?}: {lse} against {lse_plain}");
+                assert!(close(post, (max - lse_plain).exp()), "{lp:?}");
+                let mut r = lp;
+                sum.add(to_posteriors(&mut r));
+                plain_sum += lse_plain;
+                for (&r, &l) in r.iter().zip(&lp) {
+                    let plain = (l - lse_plain).exp();
+                    let plain = if l - max < NEGLIGIBLE { 0.0 } else { plain };
+                    // The plain e^(l − lse) carries lse's rounding, relative |lse|·ε.
+                    let tolerance = 4.0 * f64::EPSILON * lse_plain.abs().max(1.0);
+                    assert!(
+                        (r - plain).abs() <= tolerance,
+                        "{lp:?}: {r} against {plain}"
+                    );
+                }
+            }
         }
+        let total = sum.total();
+        assert!(
+            (total - plain_sum).abs() <= 1e-9 * plain_sum.abs(),
+            "{total} against {plain_sum}"
+        );
     }
 
     fn rows(n: usize, d: usize, seed: u64) -> Vec<f32> {

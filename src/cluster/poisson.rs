@@ -247,12 +247,11 @@ pub fn em_step(m: &PoissonMixture, data: &[f32]) -> (PoissonMixture, f64) {
         .map(|chunk| {
             let mut nk = vec![0.0; k];
             let mut s = vec![0.0; k * d];
-            let mut ll = 0.0;
+            let mut ll = lanes::LogSum::default();
             m.for_each_scored_row(chunk, |row, lp| {
-                let (_, _, lse) = lanes::best_and_log_sum(lp);
-                ll += lse;
-                for c in 0..k {
-                    if let Some(r) = lanes::responsibility(lp[c], lse) {
+                ll.add(lanes::to_posteriors(lp));
+                for (c, &r) in lp.iter().enumerate() {
+                    if r > lanes::MIN_RESPONSIBILITY {
                         nk[c] += r;
                         for e in 0..d {
                             s[c * d + e] += r * f64::from(row[e]);
@@ -260,7 +259,7 @@ pub fn em_step(m: &PoissonMixture, data: &[f32]) -> (PoissonMixture, f64) {
                     }
                 }
             });
-            (nk, s, ll)
+            (nk, s, ll.total())
         })
         .collect::<Vec<_>>()
         .into_iter()
