@@ -933,7 +933,9 @@ pub fn characterise_with(
             sums.iter().map(|s| s.1).collect(),
         )
     };
+    let t = crate::profile::stage("  composition: sums");
     let mut sums = sums_at(DEFAULT_CLEARANCE_PX);
+    drop(t);
     let (plain, eligible) = split(&sums);
     let first = qf.run(&plain, &eligible, &KFactors::unit(infos.len()));
     let first_matches = qf.matches(&first, false, &plain);
@@ -943,6 +945,7 @@ pub fn characterise_with(
     }
     let (mut plain, eligible) = split(&sums);
     let symbols: Vec<&str> = infos.iter().map(|e| e.symbol).collect();
+    let t = crate::profile::stage("  composition: unmix");
     let (unmixing, unmix_notes, unmixed) = unmix_thin(
         &mut plain,
         &eligible,
@@ -955,6 +958,7 @@ pub fn characterise_with(
             symbols: &symbols,
         },
     );
+    drop(t);
     notes.extend(unmix_notes);
     // Unmixed phases can show the continuum too.
     let clean: Vec<bool> = eligible
@@ -1042,6 +1046,7 @@ pub fn characterise_with(
         notes,
         options: opts.given.clone(),
     };
+    let _t = crate::profile::stage("  composition: advice");
     let advice = advice_for(table, &q, &matches, lines, md);
     Ok((report, advice))
 }

@@ -451,6 +451,19 @@ mod tests {
 
     /// The fitting sample: seeded, in ascending order, without repeats, capped at `max`.
     #[test]
+    fn candidates_are_ranked_on_evenly_spread_rows() {
+        let rows: Vec<f32> = (0..20).map(|v| v as f32).collect(); // 10 rows of 2
+        let firsts = |t: Vec<f32>| t.chunks_exact(2).map(|r| r[0]).collect::<Vec<_>>();
+        assert_eq!(firsts(every_mth_row(&rows, 2, 4)), [0.0, 6.0, 12.0, 18.0]);
+        assert_eq!(
+            firsts(every_mth_row(&rows, 2, 5)),
+            [0.0, 4.0, 8.0, 12.0, 16.0]
+        );
+        assert_eq!(every_mth_row(&rows, 2, 10), rows);
+        assert_eq!(every_mth_row(&rows, 2, 50), rows);
+    }
+
+    #[test]
     fn the_fitting_sample_is_seeded_sorted_and_capped() {
         let f = features(1);
         let a = fitting_pixels(&f, 500, Seed(7));
