@@ -50,7 +50,9 @@ def main():
     from sklearn.cluster import KMeans
     from sklearn.mixture import GaussianMixture
 
-    files = sorted(f for f in os.listdir(a.input) if f.lower().endswith(".png"))
+    # The element maps only: the BSE image is not clustered.
+    files = sorted(f for f in os.listdir(a.input)
+                   if f.lower().endswith(".png") and not f.upper().startswith("BSE"))
     if not files:
         sys.exit(f"no PNG maps in {a.input}")
     elements = [os.path.splitext(f)[0] for f in files]
