@@ -300,10 +300,35 @@ fn same_result_whatever_the_thread_count() {
 
 #[test]
 fn demo_maps_the_sample_and_checks_it_against_the_truth() {
-    let tmp = tempfile::tempdir().unwrap();
-    let out = tmp.path().join("demo");
-    let r = modalmap(&["demo", "-o", s(&out)]);
+    // Without -o the demo writes into a new folder of the system's temporary folder
+    // (TMPDIR here) and nothing into the folder it runs in.
+    let (here, tmpdir) = (tempfile::tempdir().unwrap(), tempfile::tempdir().unwrap());
+    let run = std::process::Command::new(env!("CARGO_BIN_EXE_modalmap"))
+        .arg("demo")
+        .current_dir(here.path())
+        .env("TMPDIR", tmpdir.path())
+        .output()
+        .unwrap();
+    let r = common::Run {
+        code: run.status.code().unwrap_or(-1),
+        stdout: String::from_utf8_lossy(&run.stdout).into_owned(),
+        stderr: String::from_utf8_lossy(&run.stderr).into_owned(),
+    };
     assert_eq!(r.code, 0, "{}", r.stderr);
+    assert_eq!(std::fs::read_dir(here.path()).unwrap().count(), 0);
+    let made: Vec<_> = std::fs::read_dir(tmpdir.path())
+        .unwrap()
+        .map(|e| e.unwrap().path())
+        .collect();
+    assert_eq!(made.len(), 1, "{made:?}");
+    let out = &made[0];
+    let name = out.file_name().unwrap().to_str().unwrap();
+    assert!(name.starts_with("modalmap-demo-"), "{name}");
+    assert!(
+        r.stdout.contains(&format!("outputs in {}", out.display())),
+        "{}",
+        r.stdout
+    );
     let line = r
         .stdout
         .lines()
@@ -320,7 +345,7 @@ fn demo_maps_the_sample_and_checks_it_against_the_truth() {
         .unwrap();
     // The README says 99.5 % (the demo prints one decimal).
     assert!(pct >= 99.5, "{line}");
-    assert_eq!(report(&out)["phases"].as_array().unwrap().len(), 5);
+    assert_eq!(report(out)["phases"].as_array().unwrap().len(), 5);
     // It says where its maps went (a temporary folder), not that they are in sample-maps/.
     assert!(!r.stdout.contains("those of sample-maps/"), "{}", r.stdout);
     assert!(r.stdout.contains("modalmap synth -o DIR"), "{}", r.stdout);

@@ -145,9 +145,10 @@ pub enum Command {
     },
     /// Map the bundled sample field (an invented solder joint) and compare with its truth.
     Demo {
-        /// Output folder.
-        #[arg(short, long, value_name = "DIR", default_value = "modalmap-demo")]
-        output: PathBuf,
+        /// Output folder [default: a new folder modalmap-demo-N in the system's temporary
+        /// folder, so nothing is written where the command runs].
+        #[arg(short, long, value_name = "DIR")]
+        output: Option<PathBuf>,
         /// Replace the folder's contents if it exists.
         #[arg(long)]
         force: bool,
@@ -309,6 +310,10 @@ pub fn run(cli: Cli) -> Result<u8> {
         Command::Demo { output, force } => {
             // The sample field is generated into a working folder beside OUT (the same
             // maps as sample-maps/), mapped into OUT, then removed.
+            let output = match output {
+                Some(dir) => dir,
+                None => new_temporary_folder("modalmap-demo")?,
+            };
             let field = crate::synth::sample_field()?;
             let scratch = crate::report::Scratch::beside(&output)?;
             let input = scratch.path().join("sample-maps");
@@ -358,6 +363,22 @@ pub fn run(cli: Cli) -> Result<u8> {
 }
 
 /// `synth`: writes a synthetic field (and its true labels).
+/// A path `PREFIX-N` in the system's temporary folder that does not exist yet (N counts up
+/// from the process id), for a command's outputs when the user names no folder.
+fn new_temporary_folder(prefix: &str) -> Result<PathBuf> {
+    let tmp = std::env::temp_dir();
+    let id = std::process::id();
+    (0..1000u32)
+        .map(|n| tmp.join(format!("{prefix}-{}", id.wrapping_add(n))))
+        .find(|p| !p.exists())
+        .ok_or_else(|| {
+            Error::options(
+                format!("no free name {prefix}-N in {}", tmp.display()),
+                "name the output folder with -o DIR",
+            )
+        })
+}
+
 fn synth(
     output: &std::path::Path,
     truth: Option<&std::path::Path>,
