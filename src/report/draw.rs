@@ -1,6 +1,60 @@
-//! Drawing the phase map: a colour-blind-safe palette, bitmap text, legend and scale bar.
+//! Drawing the phase map: a colour-blind-safe palette, anti-aliased text, legend and
+//! scale bar.
 
-use font8x8::UnicodeFonts;
+use ab_glyph::{Font, FontRef, PxScale, ScaleFont};
+
+/// DejaVu Sans, bundled unmodified (Bitstream Vera licence with DejaVu's public-domain
+/// changes: data/fonts/LICENSE-DejaVu.txt): the text of every raster figure.
+static FONT_FILE: &[u8] = include_bytes!("../../data/fonts/DejaVuSans.ttf");
+
+fn font() -> &'static FontRef<'static> {
+    static FONT: std::sync::OnceLock<FontRef<'static>> = std::sync::OnceLock::new();
+    FONT.get_or_init(|| FontRef::try_from_slice(FONT_FILE).expect("the bundled font parses"))
+}
+
+/// The em size of text drawn at `scale`: 10 px per step, which makes capitals 7.3 px tall
+/// per step, the height of the 8-pixel cells the layouts below are measured in.
+fn em(scale: usize) -> PxScale {
+    PxScale::from(10.0 * scale as f32)
+}
+
+/// The glyphs of `s` at `scale` with their pen positions from 0: characters the font
+/// lacks become `?`; kerning applied.
+fn layout(s: &str, scale: usize) -> (Vec<(ab_glyph::GlyphId, f32)>, f32) {
+    let f = font().as_scaled(em(scale));
+    let mut out = Vec::with_capacity(s.len());
+    let mut pen = 0.0;
+    let mut prev = None;
+    for ch in s.chars() {
+        let mut id = f.glyph_id(ch);
+        if id.0 == 0 {
+            id = f.glyph_id('?');
+        }
+        if let Some(p) = prev {
+            pen += f.kern(p, id);
+        }
+        out.push((id, pen));
+        pen += f.h_advance(id);
+        prev = Some(id);
+    }
+    (out, pen)
+}
+
+/// The text scale for a figure whose image is `mw` pixels wide: 2 (capitals 15 px tall)
+/// up to 1500 px, then growing with the width (capitals about 1.4 % of it), so a legend
+/// stays readable when a montage's figure is viewed whole.
+pub fn text_scale(mw: usize) -> usize {
+    if mw < 1500 {
+        2
+    } else {
+        (mw / 500).max(3)
+    }
+}
+
+/// Width in pixels of `s` drawn with [`Canvas::text`] at `scale`.
+pub fn text_width(s: &str, scale: usize) -> usize {
+    layout(s, scale).1.ceil() as usize
+}
 
 /// Okabe & Ito's colour-blind-safe set ("Color Universal Design", 2002) without its black,
 /// followed by further distinct colours for fields with more phases. Black is kept for
@@ -76,30 +130,36 @@ impl Canvas {
         }
     }
 
-    /// Draws text with the 8 × 8 bitmap font at an integer `scale`; returns the width used.
-    /// Characters the font lacks are drawn as `?`; a dash stands for en and em dashes.
-    pub fn text(&mut self, x: usize, y: usize, s: &str, scale: usize, c: [u8; 3]) -> usize {
-        let mut cx = x;
-        for ch in s.chars() {
-            let ch = match ch {
-                '–' | '—' => '-',
-                other => other,
-            };
-            let glyph = font8x8::BASIC_FONTS
-                .get(ch)
-                .or_else(|| font8x8::LATIN_FONTS.get(ch))
-                .or_else(|| font8x8::BASIC_FONTS.get('?'))
-                .unwrap_or([0; 8]);
-            for (row, bits) in glyph.iter().enumerate() {
-                for col in 0..8 {
-                    if bits & (1 << col) != 0 {
-                        self.rect(cx + col * scale, y + row * scale, scale, scale, c);
-                    }
-                }
-            }
-            cx += 8 * scale;
+    /// Blends colour `c` into pixel (x, y) with opacity `a` (0 to 1; ignored outside).
+    fn blend(&mut self, x: i64, y: i64, c: [u8; 3], a: f32) {
+        if x < 0 || y < 0 || x as usize >= self.width || y as usize >= self.height {
+            return;
         }
-        cx - x
+        let i = 3 * (y as usize * self.width + x as usize);
+        let a = a.clamp(0.0, 1.0);
+        for (dst, &src) in self.rgb[i..i + 3].iter_mut().zip(&c) {
+            *dst = (f32::from(*dst) * (1.0 - a) + f32::from(src) * a).round() as u8;
+        }
+    }
+
+    /// Draws `s` anti-aliased in the bundled font at `scale` (capitals 7.3 px tall per
+    /// step), its capitals' top near `y` and its baseline at `y + 8 × scale`; returns the
+    /// width used. Characters the font lacks are drawn as `?`.
+    pub fn text(&mut self, x: usize, y: usize, s: &str, scale: usize, c: [u8; 3]) -> usize {
+        let baseline = (y + 8 * scale) as f32;
+        let (glyphs, width) = layout(s, scale);
+        for (id, pen) in glyphs {
+            let g =
+                id.with_scale_and_position(em(scale), ab_glyph::point(x as f32 + pen, baseline));
+            if let Some(outline) = font().outline_glyph(g) {
+                let b = outline.px_bounds();
+                let (x0, y0) = (b.min.x as i64, b.min.y as i64);
+                outline.draw(|gx, gy, cover| {
+                    self.blend(x0 + i64::from(gx), y0 + i64::from(gy), c, cover)
+                });
+            }
+        }
+        width.ceil() as usize
     }
 }
 
@@ -148,16 +208,14 @@ pub fn framed(
 ) -> Canvas {
     let zoom = (600 / w.max(h)).clamp(1, 8);
     let (mw, mh) = (w * zoom, h * zoom);
-    let ts = if mw >= 1500 { 3 } else { 2 };
+    let ts = text_scale(mw);
     let line_h = 12 * ts;
     let legend_w = 16 * ts
         + legend
             .iter()
-            .map(|e| e.text.chars().count())
+            .map(|e| text_width(&e.text, ts))
             .max()
-            .unwrap_or(10)
-            * 8
-            * ts
+            .unwrap_or(80 * ts)
         + 8 * ts;
     let header = line_h + 4 * ts;
     let width = mw + legend_w + 8 * ts;
@@ -195,7 +253,7 @@ fn scale_bar(c: &mut Canvas, px: f64, w: usize, zoom: usize, ts: usize, bottom: 
         format!("{} nm", len_um * 1000.0)
     };
     let bar_h = 3 * ts;
-    let tw = label.chars().count() * 8 * ts;
+    let tw = text_width(&label, ts);
     let (bx, by) = (4 * ts, bottom - bar_h - 14 * ts);
     c.rect(
         bx - ts,
@@ -222,10 +280,10 @@ pub fn element_map(
         .max(1.0);
     let zoom = (600 / w.max(h)).clamp(1, 8);
     let (mw, mh) = (w * zoom, h * zoom);
-    let ts = if mw >= 1500 { 3 } else { 2 };
+    let ts = text_scale(mw);
     let header = 16 * ts;
     let label = format!("{top:.0}");
-    let ramp_w = 10 * ts + (label.len().max(2) + 1) * 8 * ts;
+    let ramp_w = 18 * ts + text_width(&label, ts).max(16 * ts);
     let mut c = Canvas::new(mw + ramp_w + 8 * ts, mh + header, [255; 3]);
     c.text(4 * ts, 2 * ts, title, ts, [0; 3]);
     for y in 0..h {
@@ -358,6 +416,17 @@ mod tests {
     use super::*;
 
     #[test]
+    fn text_grows_with_the_figure() {
+        assert_eq!(text_scale(600), 2);
+        assert_eq!(text_scale(1499), 2);
+        assert_eq!(text_scale(2048), 4);
+        assert_eq!(text_scale(20_000), 40);
+        // The same share of the width on a field and on a montage ten times wider.
+        let share = |mw: usize| text_width("quartz", text_scale(mw)) as f64 / mw as f64;
+        assert!((share(20_000) / share(2048) - 1.0).abs() < 0.05);
+    }
+
+    #[test]
     fn scale_bar_is_round() {
         assert_eq!(scale_bar_um(76.8), 10.0);
         assert_eq!(scale_bar_um(300.0), 50.0);
@@ -379,10 +448,35 @@ mod tests {
     }
 
     #[test]
-    fn text_draws_ink() {
-        let mut c = Canvas::new(40, 10, [255; 3]);
-        let w = c.text(0, 0, "Fe µ", 1, [0; 3]);
-        assert_eq!(w, 32);
-        assert!(c.rgb.contains(&0));
+    fn text_is_anti_aliased_proportional_and_has_the_symbols_it_needs() {
+        let mut c = Canvas::new(60, 12, [255; 3]);
+        let w = c.text(0, 0, "Fe µm", 1, [0; 3]);
+        assert_eq!(w, text_width("Fe µm", 1));
+        // Ink, and grey edge pixels between ink and paper.
+        assert!(c.rgb.iter().any(|&v| v < 60), "no ink");
+        assert!(
+            c.rgb.iter().any(|&v| (60..200).contains(&v)),
+            "not anti-aliased"
+        );
+        // Nothing below the line box's descent (12 px at scale 1) or right of the width.
+        for y in 0..12 {
+            for x in w + 1..60 {
+                assert_eq!(c.rgb[3 * (y * 60 + x)], 255, "ink at ({x}, {y})");
+            }
+        }
+        // A proportional face: narrow letters take less room; sizes scale.
+        assert!(text_width("iiii", 2) * 2 < text_width("MMMM", 2));
+        let (one, two) = (text_width("Cu6Sn5", 1), text_width("Cu6Sn5", 2));
+        assert!((2 * one).abs_diff(two) <= 2, "{one} {two}");
+        // µ, en dash and Greek letters have glyphs of their own, unlike a missing one.
+        let draw = |s: &str| {
+            let mut c = Canvas::new(20, 12, [255; 3]);
+            c.text(0, 0, s, 1, [0; 3]);
+            c.rgb
+        };
+        for ch in ["µ", "–", "η", "θ", "σ"] {
+            assert_ne!(draw(ch), draw("?"), "{ch}");
+        }
+        assert_eq!(draw("\u{e000}"), draw("?"));
     }
 }
