@@ -64,7 +64,8 @@ pub enum Command {
     /// The main job: cluster a field's pixels into phases and report each phase.
     ///
     /// Writes into OUT, atomically: labels.png (16-bit phase ids, 0 = unassigned),
-    /// phase-map.png, phases.csv, report.json, report.html, element-EL.png for each map,
+    /// phase-map.png, phase-map.svg, phases.csv, report.json, report.html, element-EL.png
+    /// for each map,
     /// and with a BSE image bse-registered.png and overlay.png.
     Map {
         /// Folder of element maps, or HDF5 file.

@@ -21,7 +21,16 @@ fn em(scale: usize) -> PxScale {
 /// The glyphs of `s` at `scale` with their pen positions from 0: characters the font
 /// lacks become `?`; kerning applied.
 fn layout(s: &str, scale: usize) -> (Vec<(ab_glyph::GlyphId, f32)>, f32) {
-    let f = font().as_scaled(em(scale));
+    layout_at(s, em(scale))
+}
+
+/// Width of `s` in the bundled font at an em size of `em_px` pixels (or SVG user units).
+pub fn advance(s: &str, em_px: f32) -> f32 {
+    layout_at(s, PxScale::from(em_px)).1
+}
+
+fn layout_at(s: &str, em: PxScale) -> (Vec<(ab_glyph::GlyphId, f32)>, f32) {
+    let f = font().as_scaled(em);
     let mut out = Vec::with_capacity(s.len());
     let mut pen = 0.0;
     let mut prev = None;

@@ -63,6 +63,15 @@ impl Svg {
         );
     }
 
+    /// A PNG drawn into (x, y, w, h), its pixels kept sharp when enlarged.
+    fn png(&mut self, x: f64, y: f64, w: f64, h: f64, png: &[u8]) {
+        let _ = write!(
+            self.body,
+            r#"<image x="{x:.2}" y="{y:.2}" width="{w:.2}" height="{h:.2}" preserveAspectRatio="none" style="image-rendering:pixelated" href="data:image/png;base64,{}"/>"#,
+            base64(png)
+        );
+    }
+
     fn text(&mut self, x: f64, y: f64, s: &str, anchor: &str, size: f64) {
         let _ = write!(
             self.body,
@@ -81,6 +90,77 @@ impl Svg {
             b = self.body
         )
     }
+}
+
+/// Width in user units the phase map's image is shown at (it scales with the drawing).
+const MAP_SVG_WIDTH: f64 = 800.0;
+
+/// phase-map.svg: the phase image (`png`, `w × h` pixels, embedded as it is) with a vector
+/// title, legend (`legend`: colour id and text) and scale bar, so the text stays sharp at
+/// any size and can be edited in a drawing program. Text is set in the bundled font's
+/// family (DejaVu Sans, sans-serif otherwise) and measured with its metrics.
+pub fn phase_map_svg(
+    title: &str,
+    (png, w, h): (&[u8], usize, usize),
+    legend: &[(u16, String)],
+    pixel_size_um: Option<f64>,
+) -> String {
+    const SIZE: f64 = 14.0;
+    let zoom = MAP_SVG_WIDTH / w.max(1) as f64;
+    let (dw, dh) = (MAP_SVG_WIDTH, h as f64 * zoom);
+    let top = 32.0;
+    let lx = dw + 16.0;
+    let text_w = legend
+        .iter()
+        .map(|(_, t)| f64::from(super::draw::advance(t, SIZE as f32)))
+        .fold(0.0, f64::max);
+    let width = (lx + 22.0 + text_w + 12.0).ceil();
+    let height = (top + dh)
+        .max(top + 22.0 * legend.len() as f64 + 8.0)
+        .ceil();
+    let mut svg = Svg::new(width, height);
+    svg.rect(0.0, 0.0, width, height, "#ffffff", "");
+    svg.text(8.0, 20.0, title, "start", 16.0);
+    svg.png(0.0, top, dw, dh, png);
+    for (i, (id, text)) in legend.iter().enumerate() {
+        let y = top + 22.0 * i as f64;
+        svg.rect(
+            lx,
+            y,
+            14.0,
+            14.0,
+            &rgb(colour(*id)),
+            r##"stroke="#000000""##,
+        );
+        svg.text(lx + 22.0, y + 12.0, text, "start", SIZE);
+    }
+    if let Some(px) = pixel_size_um {
+        let len_um = super::draw::scale_bar_um(w as f64 * px);
+        let len = len_um / px * zoom;
+        let label = if len_um >= 1.0 {
+            format!("{len_um} µm")
+        } else {
+            format!("{} nm", len_um * 1000.0)
+        };
+        let label_w = f64::from(super::draw::advance(&label, SIZE as f32));
+        let (bx, by) = (8.0, top + dh - 30.0);
+        svg.rect(
+            bx - 4.0,
+            by - 4.0,
+            len.max(label_w) + 8.0,
+            30.0,
+            "#ffffff",
+            "",
+        );
+        svg.rect(bx, by, len, 5.0, "#000000", "");
+        svg.text(bx, by + 20.0, &label, "start", SIZE);
+    }
+    svg.finish(title, "Phase map: each pixel in its phase's colour; the legend gives each phase's id, name and area")
+        .replacen(
+            r#"font-family="sans-serif""#,
+            r#"font-family="DejaVu Sans, sans-serif""#,
+            1,
+        )
 }
 
 /// "Nice" tick values covering `lo..hi`.
@@ -929,5 +1009,62 @@ mod tests {
             "{h}"
         );
         assert!(!h.contains("± 0.0<") && !h.contains("± 0.0,"), "{h}");
+    }
+
+    /// The SVG phase map embeds the image as it is (every pixel in its phase's colour),
+    /// writes every legend entry as text (escaped) with room for the longest, and draws a
+    /// scale bar only when the pixel size is known.
+    #[test]
+    fn the_svg_phase_map_keeps_pixels_and_vector_text() {
+        let (w, h) = (40usize, 20usize);
+        let labels: Vec<u16> = (0..w * h).map(|i| ((i % w) / 14) as u16).collect();
+        let rgb: Vec<u8> = labels.iter().flat_map(|&l| colour(l)).collect();
+        let png = crate::io::raster::encode_png_rgb(w, h, &rgb);
+        let legend = vec![
+            (1, "1 Cu6Sn5 (eta) & Cu3Sn  4.9 %".to_string()),
+            (2, "2 Ag3Sn  1.5 %".to_string()),
+            (0, "unassigned  0.8 %".to_string()),
+        ];
+        let svg = phase_map_svg("f: phase map", (&png, w, h), &legend, Some(0.5));
+        for (_, t) in &legend {
+            assert!(svg.contains(&format!(">{}</text>", esc(t))), "{t}");
+        }
+        // 40 px × 0.5 µm = 20 µm wide: a 2 µm bar (the round length at most a fifth),
+        // 4 px of the image, drawn 20 units a pixel.
+        assert_eq!(super::super::draw::scale_bar_um(20.0), 2.0);
+        assert!(svg.contains(">2 µm</text>"), "{svg}");
+        assert!(svg.contains(r#"width="80.00" height="5.00""#), "{svg}");
+        assert!(!phase_map_svg("f", (&png, w, h), &legend, None).contains("µm</text>"));
+        // Room for the longest legend text beside the 800-unit image.
+        let width: f64 = svg
+            .split("width=\"")
+            .nth(1)
+            .unwrap()
+            .split('"')
+            .next()
+            .unwrap()
+            .parse()
+            .unwrap();
+        let longest = f64::from(super::super::draw::advance(&legend[0].1, 14.0));
+        assert!(width >= MAP_SVG_WIDTH + 16.0 + 22.0 + longest, "{width}");
+        // The embedded PNG decodes to the labels' colours, pixel for pixel.
+        let data = svg
+            .split("base64,")
+            .nth(1)
+            .unwrap()
+            .split('"')
+            .next()
+            .unwrap();
+        use base64::Engine as _;
+        let bytes = base64::engine::general_purpose::STANDARD
+            .decode(data)
+            .unwrap();
+        let mut reader = png::Decoder::new(std::io::Cursor::new(bytes))
+            .read_info()
+            .unwrap();
+        let mut buf = vec![0; reader.output_buffer_size().unwrap()];
+        let info = reader.next_frame(&mut buf).unwrap();
+        assert_eq!((info.width as usize, info.height as usize), (w, h));
+        assert_eq!(&buf[..info.buffer_size()], &rgb[..]);
     }
 }

@@ -728,6 +728,7 @@ pub fn write_outputs(
     let legend = legend(r);
     let phase_map = phase_map_png(r, seg, &legend);
     dir.write("phase-map.png", &phase_map)?;
+    dir.write("phase-map.svg", phase_map_svg(r, seg, &legend).as_bytes())?;
     let bse_pngs = bse.map(|b| bse_figures(r, seg, &legend, b));
     if let Some((registered, overlay)) = &bse_pngs {
         dir.write("bse-registered.png", registered)?;
@@ -838,6 +839,25 @@ fn phase_map_png(
         &format!("{}: phase map", r.field),
     );
     crate::io::raster::encode_png_rgb(canvas.width, canvas.height, &canvas.rgb)
+}
+
+/// phase-map.svg: the labels in the phases' colours (embedded at full resolution) with a
+/// vector legend and scale bar.
+fn phase_map_svg(
+    r: &Report,
+    seg: &crate::refine::Segmentation,
+    legend: &[draw::LegendEntry],
+) -> String {
+    let (w, h) = (seg.width, seg.height);
+    let rgb: Vec<u8> = seg.labels.iter().flat_map(|&l| draw::colour(l)).collect();
+    let png = crate::io::raster::encode_png_rgb(w, h, &rgb);
+    let entries: Vec<(u16, String)> = legend.iter().map(|e| (e.id, e.text.clone())).collect();
+    html::phase_map_svg(
+        &format!("{}: phase map", r.field),
+        (&png, w, h),
+        &entries,
+        r.pixel_size_um,
+    )
 }
 
 /// bse-registered.png (the BSE image on the map grid) and overlay.png (the phase
