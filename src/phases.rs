@@ -59,7 +59,7 @@ pub struct Phase {
     /// The closest reference phase, once matched.
     pub reference: Option<crate::library::Match>,
     /// Number of separate features (8-connected regions).
-    pub particles: usize,
+    pub features: usize,
     /// Mean equivalent-circle diameter of the features, pixels.
     pub mean_ecd_px: f64,
     /// Largest feature, pixels.
@@ -338,7 +338,7 @@ pub fn table_from_sums(
                 composition_from_interior: false,
                 composition_unmixed: false,
                 reference: None,
-                particles: 0,
+                features: 0,
                 mean_ecd_px: 0.0,
                 largest_px: 0,
                 mean_confidence: if np > 0.0 { conf[c] / np } else { 0.0 },
@@ -512,7 +512,7 @@ fn particle_statistics(table: &mut PhaseTable, seg: &Segmentation) {
     let comps = component_sizes(&seg.labels, seg.width, seg.height);
     for p in &mut table.phases {
         let sizes: Vec<usize> = comps.iter().filter(|c| c.0 == p.id).map(|c| c.1).collect();
-        p.particles = sizes.len();
+        p.features = sizes.len();
         p.largest_px = sizes.iter().copied().max().unwrap_or(0);
         p.mean_ecd_px = if sizes.is_empty() {
             0.0

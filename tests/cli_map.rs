@@ -44,7 +44,7 @@ fn map_writes_consistent_outputs() {
         );
     }
     let rep = report(&out);
-    assert_eq!(rep["schema"], "modalmap.report/1");
+    assert_eq!(rep["schema"], "modalmap.report/2");
     let phases = rep["phases"].as_array().unwrap();
     assert_eq!(phases.len(), 5, "the sample field has five phases");
     assert_eq!(rep["elements"], serde_json::json!(["Cu", "Ag", "Sn"]));

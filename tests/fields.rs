@@ -131,6 +131,22 @@ fn fit_apply_in_shards_and_merge_match_the_truth() {
         assert!(p["area_fraction_ci95"].is_null(), "{p}");
         assert!(p["relative_accuracy_pct"].is_null(), "{p}");
     }
+    // A report of schema 1 (features were called particles) still merges, to the same.
+    let old = d.join("old-report");
+    std::fs::create_dir(&old).unwrap();
+    for e in std::fs::read_dir(&first).unwrap() {
+        let e = e.unwrap();
+        std::fs::copy(e.path(), old.join(e.file_name())).unwrap();
+    }
+    let text = std::fs::read_to_string(old.join("report.json")).unwrap();
+    assert!(text.contains("\"features\"") && text.contains("modalmap.report/2"));
+    let v1 = text
+        .replace("\"features\"", "\"particles\"")
+        .replace("modalmap.report/2", "modalmap.report/1");
+    std::fs::write(old.join("report.json"), v1).unwrap();
+    let from_v1 = merge(&old, &d.join("sum-old"));
+    assert_eq!(from_v1["phases"], single["phases"]);
+    assert!(single["phases"][0]["features"].as_u64().unwrap() > 0);
     let html = std::fs::read_to_string(d.join("sum-one/summary.html")).unwrap();
     assert!(html.contains("undefined (one field)"));
     assert!(
@@ -332,7 +348,7 @@ fn streamed_montage_matches_the_in_memory_path() {
     {
         for key in [
             "pixels",
-            "particles",
+            "features",
             "area_fraction",
             "area_fraction_ci95",
             "mean",

@@ -38,7 +38,7 @@ pub use summary::{pooled_ci_text, sd_pct, summary_csv, summary_html};
 pub const MODEL_SCHEMA: &str = "modalmap.model/1";
 
 /// The merged summary's schema name and version.
-pub const SUMMARY_SCHEMA: &str = "modalmap.summary/1";
+pub const SUMMARY_SCHEMA: &str = "modalmap.summary/2";
 
 /// Most pixels of all training windows together (common practice, no source: the fit
 /// itself samples at most 200 000 pixels; windows this size keep the spatial steps
@@ -379,8 +379,9 @@ pub struct PooledPhase {
     /// What the compositions are relative to (the fields' basis, or "mixed").
     #[serde(default)]
     pub composition_basis: String,
-    /// Features over all fields.
-    pub particles: usize,
+    /// Features over all fields; `particles` in summary schema 1, still read.
+    #[serde(alias = "particles")]
+    pub features: usize,
     /// Pixels over all fields.
     pub pixels: usize,
 }
@@ -673,7 +674,7 @@ fn pool_phase(p0: &crate::report::PhaseEntry, reports: &[(PathBuf, Report)]) -> 
         composition_wt,
         composition_wt_sd_between_fields,
         composition_basis,
-        particles: entries.iter().map(|q| q.particles).sum(),
+        features: entries.iter().map(|q| q.features).sum(),
         pixels: entries.iter().map(|q| q.pixels).sum(),
     }
 }

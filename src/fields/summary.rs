@@ -51,7 +51,7 @@ pub fn summary_csv(s: &Summary) -> String {
             opt_pct(p.area_fraction_ci95.map(|c| c[1])),
             p.relative_accuracy_pct
                 .map_or(String::new(), |v| format!("{v:.2}")),
-            p.particles,
+            p.features,
             p.pixels,
             csv_field(&p.composition_basis),
         );
@@ -99,7 +99,7 @@ pub fn fields_csv(reports: &[(PathBuf, Report)]) -> String {
                 pct(p.area_fraction),
                 opt_pct(p.area_fraction_ci95.map(|c| c[0])),
                 opt_pct(p.area_fraction_ci95.map(|c| c[1])),
-                p.particles,
+                p.features,
                 p.mean_ecd_um.map_or(String::new(), |v| format!("{v:.3}")),
                 csv_field(&p.composition_basis),
             );
@@ -348,7 +348,7 @@ pub fn summary_html(s: &Summary, figure: &str, links: &[String]) -> String {
             pooled_ci_text(p, " – "),
             p.relative_accuracy_pct
                 .map_or("–".into(), |v| format!("{v:.1}")),
-            p.particles,
+            p.features,
             esc(&composition_text(s, p))
         );
     }

@@ -822,7 +822,7 @@ fn phase_table(r: &Report) -> String {
                 (false, true) => " (unmixed from its neighbours)",
                 (false, false) => " (mixed with neighbours)",
             },
-            n = p.particles,
+            n = p.features,
         );
     }
     let _ = writeln!(

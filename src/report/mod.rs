@@ -2,7 +2,7 @@
 //!
 //! Takes a [`MapResult`](crate::pipeline::MapResult) and the
 //! [`LoadedField`](crate::io::LoadedField) it came from; builds the serialisable
-//! [`Report`] (`report.json`, schema `modalmap.report/1`) and writes every output into a
+//! [`Report`] (`report.json`, schema `modalmap.report/2`) and writes every output into a
 //! temporary folder beside OUT that is renamed into place at the end, so OUT is never left
 //! half-written.
 
@@ -20,8 +20,9 @@ pub use output::{prepare_output, write_file_atomically, OutputDir, Scratch};
 use crate::error::{Error, Result};
 use crate::map_options::MapOptions;
 
-/// The report's schema name.
-pub const SCHEMA: &str = "modalmap.report/1";
+/// The report's schema name. Version 2 calls the count of separate regions `features` (version 1: `particles`), the
+/// word every table and figure uses; reports of version 1 are still read.
+pub const SCHEMA: &str = "modalmap.report/2";
 
 /// The caution on compositions, by basis (`uncalibrated`, `k-factors`, `calibrated`).
 pub fn composition_caution(basis: &str) -> String {
@@ -84,8 +85,9 @@ pub struct PhaseEntry {
     /// The closest reference phase and the match quality.
     #[serde(rename = "match", skip_serializing_if = "Option::is_none", default)]
     pub reference: Option<crate::library::Match>,
-    /// Separate features (8-connected).
-    pub particles: usize,
+    /// Separate features (8-connected); `particles` in schema 1, still read.
+    #[serde(alias = "particles")]
+    pub features: usize,
     /// Mean equivalent-circle diameter, pixels.
     pub mean_ecd_px: f64,
     /// Mean equivalent-circle diameter, µm (when the pixel size is known).
@@ -394,7 +396,7 @@ fn phase_entry(
         composition_from_interior: p.composition_from_interior,
         composition_unmixed: p.composition_unmixed,
         reference: p.reference.clone(),
-        particles: p.particles,
+        features: p.features,
         mean_ecd_px: p.mean_ecd_px,
         mean_ecd_um: md.pixel_size_um.map(|s| s * p.mean_ecd_px),
         largest_px: p.largest_px,
@@ -508,7 +510,7 @@ pub fn phases_csv(r: &Report) -> String {
             name,
             p.pixels,
             100.0 * p.area_fraction,
-            p.particles,
+            p.features,
             p.mean_ecd_px,
             p.mean_ecd_um.map_or(String::new(), |u| format!("{u:.4}")),
             p.mean_confidence
@@ -626,7 +628,7 @@ pub fn summary(r: &Report) -> String {
             p.name,
             100.0 * p.area_fraction,
             ci_text(p.area_fraction_ci95, "–"),
-            p.particles,
+            p.features,
             comp.join(", ")
         ));
     }
