@@ -490,7 +490,49 @@ fn many_field_options_are_checked() {
 /// merge's files for a spreadsheet and a report: summary.csv in % with an unassigned row
 /// (adding up to 100), fields.csv with a row per field and phase (the reports' numbers),
 /// the figure, and summary.html with the per-field table linking each field's report.
+/// summary-areas.png draws the SVG's figure at twice its size: each phase's bar in its
+/// colour (at the SVG's 0.75 opacity on white) as long as its mean area, and white past it.
+fn check_area_figure_png(sum: &Path, summary: &serde_json::Value) {
+    let svg = std::fs::read_to_string(sum.join("summary-areas.svg")).unwrap();
+    let attr = |name: &str| -> f64 {
+        let at = svg.find(&format!(" {name}=\"")).unwrap() + name.len() + 3;
+        svg[at..].split('"').next().unwrap().parse().unwrap()
+    };
+    let z = modalmap::fields::AREAS_PNG_ZOOM;
+    let bytes = std::fs::read(sum.join("summary-areas.png")).unwrap();
+    let mut reader = png::Decoder::new(std::io::Cursor::new(bytes))
+        .read_info()
+        .unwrap();
+    let mut buf = vec![0; reader.output_buffer_size().unwrap()];
+    let info = reader.next_frame(&mut buf).unwrap();
+    let width = info.width as usize;
+    assert_eq!(info.color_type, png::ColorType::Rgb);
+    assert_eq!(
+        (width, info.height as usize),
+        ((attr("width") * z) as usize, (attr("height") * z) as usize)
+    );
+    // The axis' last tick label is its end; the layout the SVG states: bars from x = 220
+    // over 420 units, rows of 34 units from y = 40.
+    let scale = svg.rsplit("text-anchor=\"middle\">").next().unwrap();
+    let scale: f64 = scale.split('<').next().unwrap().parse().unwrap();
+    let at = |x: f64, y: f64| {
+        let i = 3 * ((y * z) as usize * width + (x * z) as usize);
+        [buf[i], buf[i + 1], buf[i + 2]]
+    };
+    for (i, p) in summary["phases"].as_array().unwrap().iter().enumerate() {
+        let end = 220.0 + 420.0 * (100.0 * p["area_fraction_mean"].as_f64().unwrap() / scale);
+        let y = 40.0 + 34.0 * i as f64 + 6.0;
+        let fill = modalmap::report::draw::colour(p["id"].as_u64().unwrap() as u16)
+            .map(|v| (0.75 * f64::from(v) + 0.25 * 255.0).round() as u8);
+        if end - 220.0 >= 4.0 {
+            assert_eq!(at((220.0 + end) / 2.0, y), fill, "phase {}", p["id"]);
+        }
+        assert_eq!(at(end + 3.0, y), [255; 3], "phase {} past its bar", p["id"]);
+    }
+}
+
 fn check_spreadsheet_outputs(sum: &Path, all: &Path, summary: &serde_json::Value) {
+    check_area_figure_png(sum, summary);
     let k = summary["phases"].as_array().unwrap().len();
     let pooled = csv_rows(&std::fs::read_to_string(sum.join("summary.csv")).unwrap());
     let col = |rows: &[Vec<String>], name: &str| rows[0].iter().position(|c| c == name).unwrap();

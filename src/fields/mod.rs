@@ -32,6 +32,8 @@ use crate::stack::{ElementMap, MapStack};
 
 mod summary;
 
+pub use summary::AREAS_PNG_ZOOM;
+
 pub use summary::{pooled_ci_text, sd_pct, summary_csv, summary_html};
 
 /// The model file's schema name and version.
@@ -717,7 +719,7 @@ fn find_reports(
 
 /// Pools every report.json found in or below `folders` (reports made with one model) and
 /// writes summary.json, summary.csv (pooled, per phase), fields.csv (per field and phase),
-/// summary-areas.svg and summary.html into `out` (atomically; an existing
+/// summary-areas.svg, summary-areas.png and summary.html into `out` (atomically; an existing
 /// `out` is replaced only with `force`).
 pub fn merge_folders(folders: &[PathBuf], out: &Path, force: bool) -> Result<Summary> {
     let mut paths = Vec::new();
@@ -763,6 +765,7 @@ pub fn merge_folders(folders: &[PathBuf], out: &Path, force: bool) -> Result<Sum
     dir.write("fields.csv", summary::fields_csv(&reports).as_bytes())?;
     let figure = summary::areas_svg(&summary);
     dir.write("summary-areas.svg", figure.as_bytes())?;
+    dir.write("summary-areas.png", &summary::areas_png(&summary))?;
     let links = summary::report_links(&summary, out);
     dir.write(
         "summary.html",

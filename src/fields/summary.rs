@@ -1,7 +1,7 @@
 //! The pooled summary's files for a spreadsheet and a report: summary.csv (pooled, one row
 //! per phase and one for the unassigned pixels), fields.csv (long format: one row per field
-//! and phase), summary-areas.svg (area fractions with their 95 % intervals, and each
-//! field's value) and summary.html. Every area is in % of the field's pixels; every
+//! and phase), summary-areas.svg and .png (area fractions with their 95 % intervals, and
+//! each field's value) and summary.html. Every area is in % of the field's pixels; every
 //! composition in wt% with its ± and basis.
 
 use std::collections::BTreeMap;
@@ -155,34 +155,79 @@ fn sd_text(s: &Summary, sd: f64) -> String {
     sd_pct(s, sd).map_or(ONE_FIELD.into(), |v| format!("{v:.2}"))
 }
 
+/// The layout of the area figure, in SVG user units (the PNG draws it at
+/// [`AREAS_PNG_ZOOM`] pixels a unit): phase names right-aligned before `left`, bars
+/// `bar_w` long for 0 to `scale` %, a row of `row_h` per phase from `top`.
+struct AreaAxes {
+    left: f64,
+    bar_w: f64,
+    row_h: f64,
+    top: f64,
+    scale: f64,
+    width: f64,
+    height: f64,
+}
+
+impl AreaAxes {
+    fn of(s: &Summary) -> AreaAxes {
+        let (left, bar_w, row_h, top) = (220.0, 420.0, 34.0, 40.0);
+        let top_value = s
+            .fields
+            .iter()
+            .flat_map(|f| f.area_fractions.iter().copied())
+            .chain(
+                s.phases
+                    .iter()
+                    .filter_map(|p| p.area_fraction_ci95.map(|c| c[1])),
+            )
+            .chain(s.phases.iter().map(|p| p.area_fraction_mean))
+            .fold(0.0f64, f64::max)
+            .max(1e-3);
+        AreaAxes {
+            left,
+            bar_w,
+            row_h,
+            top,
+            scale: nice_max(100.0 * top_value),
+            width: left + bar_w + 40.0,
+            height: top + row_h * s.phases.len() as f64 + 50.0,
+        }
+    }
+
+    /// The x of an area fraction (0–1).
+    fn x(&self, f: f64) -> f64 {
+        self.left + self.bar_w * (100.0 * f / self.scale).clamp(0.0, 1.0)
+    }
+
+    /// The y of the top of phase row `i`, and of the axis.
+    fn row(&self, i: usize) -> f64 {
+        self.top + self.row_h * i as f64
+    }
+
+    /// The figure's title line.
+    fn title(s: &Summary) -> String {
+        format!(
+            "area % of the field ({} fields; bar: mean, whisker: 95 % interval, dots: fields)",
+            s.fields.len()
+        )
+    }
+}
+
 /// `summary-areas.svg`: per phase, the mean area % as a bar with its 95 % interval as a
 /// whisker, and each field's value as a dot; vector text, so it scales into any report.
 pub fn areas_svg(s: &Summary) -> String {
-    let (left, bar_w, row_h, top) = (220.0, 420.0, 34.0, 40.0);
-    let top_value = s
-        .fields
-        .iter()
-        .flat_map(|f| f.area_fractions.iter().copied())
-        .chain(
-            s.phases
-                .iter()
-                .filter_map(|p| p.area_fraction_ci95.map(|c| c[1])),
-        )
-        .chain(s.phases.iter().map(|p| p.area_fraction_mean))
-        .fold(0.0f64, f64::max)
-        .max(1e-3);
-    let scale = nice_max(100.0 * top_value);
-    let x = |f: f64| left + bar_w * (100.0 * f / scale).clamp(0.0, 1.0);
-    let height = top + row_h * s.phases.len() as f64 + 50.0;
-    let width = left + bar_w + 40.0;
+    let a = AreaAxes::of(s);
+    let (left, bar_w, row_h, top, scale) = (a.left, a.bar_w, a.row_h, a.top, a.scale);
+    let x = |f: f64| a.x(f);
+    let (width, height) = (a.width, a.height);
     let mut g = format!(
         "<svg xmlns=\"http://www.w3.org/2000/svg\" width=\"{width:.0}\" height=\"{height:.0}\" viewBox=\"0 0 {width:.0} {height:.0}\" font-family=\"sans-serif\" font-size=\"13\">\n<title>Area fractions of the phases over {} fields: mean (bar), 95 % interval (whisker), each field (dot)</title>\n<rect width=\"100%\" height=\"100%\" fill=\"white\"/>\n",
         s.fields.len()
     );
     let _ = writeln!(
         g,
-        "<text x=\"{left}\" y=\"22\">area % of the field ({} fields; bar: mean, whisker: 95 % interval, dots: fields)</text>",
-        s.fields.len()
+        "<text x=\"{left}\" y=\"22\">{}</text>",
+        AreaAxes::title(s)
     );
     for (i, p) in s.phases.iter().enumerate() {
         let y = top + row_h * i as f64;
@@ -243,6 +288,61 @@ pub fn areas_svg(s: &Summary) -> String {
     }
     g.push_str("</svg>\n");
     g
+}
+
+/// Pixels per SVG unit of `summary-areas.png`: twice the SVG's size, sharp in print.
+pub const AREAS_PNG_ZOOM: f64 = 2.0;
+
+/// `summary-areas.png`: the figure of [`areas_svg`] as an image (for a word processor or
+/// a slide), drawn at [`AREAS_PNG_ZOOM`] pixels a unit with the bundled font.
+pub fn areas_png(s: &Summary) -> Vec<u8> {
+    use crate::report::draw::{advance, colour, Canvas};
+    let a = AreaAxes::of(s);
+    let z = AREAS_PNG_ZOOM;
+    let px = |v: f64| (v * z).round() as usize;
+    let (em, ink) = (13.0 * z as f32, [0u8; 3]);
+    let mut c = Canvas::new(px(a.width), px(a.height), [255; 3]);
+    c.text_at(
+        (a.left * z) as f32,
+        (22.0 * z) as f32,
+        &AreaAxes::title(s),
+        em,
+        ink,
+    );
+    for (i, p) in s.phases.iter().enumerate() {
+        let y = a.row(i);
+        let name = format!("{} {}", p.id, shorten(&p.name, 28));
+        let nx = (a.left - 8.0) * z - f64::from(advance(&name, em));
+        c.text_at(nx as f32, ((y + 17.0) * z) as f32, &name, em, ink);
+        // The SVG's fill-opacity 0.75 on white.
+        let fill = colour(p.id).map(|v| (0.75 * f64::from(v) + 0.25 * 255.0).round() as u8);
+        let bar = px(a.x(p.area_fraction_mean)).saturating_sub(px(a.left));
+        c.rect(px(a.left), px(y + 4.0), bar, px(18.0), fill);
+        if let Some([lo, hi]) = p.area_fraction_ci95 {
+            let (xl, xh, ym) = (px(a.x(lo)), px(a.x(hi)), y + 13.0);
+            let t = px(1.5).max(1);
+            c.rect(xl, px(ym) - t / 2, xh.saturating_sub(xl) + t, t, ink);
+            for xe in [xl, xh] {
+                c.rect(xe, px(ym - 6.0), t, px(12.0), ink);
+            }
+        }
+        for f in &s.fields {
+            if let Some(&v) = f.area_fractions.get(i) {
+                c.disc((a.x(v) * z, (y + 13.0) * z), 2.5 * z, ink, 0.6);
+            }
+        }
+    }
+    let axis_y = a.row(s.phases.len()) + 6.0;
+    c.rect(px(a.left), px(axis_y), px(a.bar_w), px(1.0), ink);
+    for k in 0..=4 {
+        let v = a.scale * k as f64 / 4.0;
+        let xv = a.left + a.bar_w * k as f64 / 4.0;
+        c.rect(px(xv), px(axis_y), px(1.0), px(5.0), ink);
+        let label = fmt_axis(v);
+        let lx = xv * z - f64::from(advance(&label, em)) / 2.0;
+        c.text_at(lx as f32, ((axis_y + 19.0) * z) as f32, &label, em, ink);
+    }
+    crate::io::raster::encode_png_rgb(c.width, c.height, &c.rgb)
 }
 
 /// The smallest of 1, 2, 2.5, 5 × 10ⁿ at or above `v`.
@@ -362,7 +462,7 @@ pub fn summary_html(s: &Summary, figure: &str, links: &[String]) -> String {
     );
     let _ = writeln!(
         h,
-        "<h2>Area fractions</h2><figure>{}<figcaption>Mean area % of each phase (bar), its 95 % interval over the fields (whisker) and each field's value (dots); also in summary-areas.svg.</figcaption></figure>",
+        "<h2>Area fractions</h2><figure>{}<figcaption>Mean area % of each phase (bar), its 95 % interval over the fields (whisker) and each field's value (dots); also in summary-areas.svg and summary-areas.png.</figcaption></figure>",
         figure.trim_end()
     );
     h.push_str("<h2>Fields</h2><table id=\"fields\">\n<tr><th class=\"l\">field</th>");

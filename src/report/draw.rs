@@ -155,11 +155,17 @@ impl Canvas {
     /// step), its capitals' top near `y` and its baseline at `y + 8 × scale`; returns the
     /// width used. Characters the font lacks are drawn as `?`.
     pub fn text(&mut self, x: usize, y: usize, s: &str, scale: usize, c: [u8; 3]) -> usize {
-        let baseline = (y + 8 * scale) as f32;
-        let (glyphs, width) = layout(s, scale);
+        let width = self.text_at(x as f32, (y + 8 * scale) as f32, s, em(scale).y, c);
+        width.ceil() as usize
+    }
+
+    /// Draws `s` anti-aliased in the bundled font at an em size of `em_px` pixels, starting
+    /// at `x` on the baseline `baseline`; returns the width used.
+    pub fn text_at(&mut self, x: f32, baseline: f32, s: &str, em_px: f32, c: [u8; 3]) -> f32 {
+        let scale = PxScale::from(em_px);
+        let (glyphs, width) = layout_at(s, scale);
         for (id, pen) in glyphs {
-            let g =
-                id.with_scale_and_position(em(scale), ab_glyph::point(x as f32 + pen, baseline));
+            let g = id.with_scale_and_position(scale, ab_glyph::point(x + pen, baseline));
             if let Some(outline) = font().outline_glyph(g) {
                 let b = outline.px_bounds();
                 let (x0, y0) = (b.min.x as i64, b.min.y as i64);
@@ -168,7 +174,28 @@ impl Canvas {
                 });
             }
         }
-        width.ceil() as usize
+        width
+    }
+
+    /// A filled disc of radius `r` around (cx, cy) in colour `c` at opacity `alpha`, its
+    /// edge anti-aliased by the covered share of each pixel (4 × 4 samples).
+    pub fn disc(&mut self, (cx, cy): (f64, f64), r: f64, c: [u8; 3], alpha: f32) {
+        let (x0, x1) = ((cx - r).floor() as i64, (cx + r).ceil() as i64);
+        let (y0, y1) = ((cy - r).floor() as i64, (cy + r).ceil() as i64);
+        for y in y0..=y1 {
+            for x in x0..=x1 {
+                let inside = (0..16)
+                    .filter(|s| {
+                        let sx = x as f64 + (f64::from(s % 4) + 0.5) / 4.0 - cx;
+                        let sy = y as f64 + (f64::from(s / 4) + 0.5) / 4.0 - cy;
+                        sx * sx + sy * sy <= r * r
+                    })
+                    .count();
+                if inside > 0 {
+                    self.blend(x, y, c, alpha * inside as f32 / 16.0);
+                }
+            }
+        }
     }
 }
 
