@@ -459,6 +459,7 @@ pub fn unmix(
     wanted: &[bool],
 ) -> Option<Unmixing> {
     let k = wanted.len();
+    let t = crate::profile::stage("    unmix: setup");
     let dist = crate::labels::boundary_distance(labels, width, height)?;
     let comp = Components {
         labels,
@@ -484,6 +485,7 @@ pub fn unmix(
         .filter(|&(&t, &f)| usize::from(t) < REACH && f)
         .count();
     let stride = zone.div_ceil(SIGMA_FIT_PIXELS).max(1) as u64;
+    drop(t);
     let field = Field {
         comp,
         planes,
@@ -492,7 +494,10 @@ pub fn unmix(
         focus,
     };
     let residual_at = |s: f64| solve_at(&field, &start, s, stride).map_or(f64::INFINITY, |r| r.1);
+    let t = crate::profile::stage("    unmix: σ grid");
     let residual: Vec<f64> = SIGMA_GRID_PX.iter().map(|&s| residual_at(s)).collect();
+    drop(t);
+    let t = crate::profile::stage("    unmix: golden");
     let best = (0..residual.len()).min_by(|&a, &b| residual[a].total_cmp(&residual[b]))?;
     let at_grid_edge = best == 0 || best + 1 == SIGMA_GRID_PX.len();
     let sigma = if at_grid_edge {
@@ -504,6 +509,8 @@ pub fn unmix(
             residual_at,
         )
     };
+    drop(t);
+    let _t = crate::profile::stage("    unmix: final");
     let (solved, chi2, used) = solve_at(&field, &start, sigma, 1)?;
     let comp = &field.comp;
     // Degrees of freedom over the pixels the residual covers.
