@@ -160,8 +160,8 @@ pub fn to_posteriors(lp: &mut [f64]) -> (f64, f64) {
 }
 
 /// Rows a [`LogSum`] multiplies together before taking one `ln`: each factor s is between
-/// 1 and the number of components (at most a few dozen), so 32 of them stay far inside
-/// the range of an `f64`.
+/// 1 and the number of components (at most a few hundred), so a product of 32 stays below
+/// 10⁸⁰, far inside the range of an `f64`.
 const LN_BATCH: usize = 32;
 
 /// Σ over rows of ln Σ exp(lp) from [`to_posteriors`]'s `(max, s)`: the maxima are added,
@@ -231,9 +231,10 @@ pub fn best_and_log_sum(lp: &[f64]) -> (usize, f64, f64) {
 }
 
 /// Terms of a log-sum-exp more than this below its largest one are left out: e⁻⁴⁰ is
-/// 4.2 × 10⁻¹⁸, so even [`MAX_DIMS`]·2 such terms change the sum (which is at least 1, the
-/// largest term's e⁰) by less than half a unit in its last place (2⁻⁵³ = 1.1 × 10⁻¹⁶).
-/// Pixels far from all but one phase, most of a field, then cost no `exp` at all.
+/// 4.2 × 10⁻¹⁸, so with k components they change the sum (which is at least 1, the
+/// largest term's e⁰) by less than k × 4.2 × 10⁻¹⁸: under half a unit in its last place
+/// (2⁻⁵³ = 1.1 × 10⁻¹⁶) up to 26 components, a few units for the largest counts. Pixels
+/// far from all but one phase, most of a field, then cost no `exp` at all.
 pub const NEGLIGIBLE: f64 = -40.0;
 
 /// eˣ for x ≤ 0, or 0 where x < [`NEGLIGIBLE`]; e⁰ = 1 without a call.

@@ -20,8 +20,9 @@ pub use output::{prepare_output, write_file_atomically, OutputDir, Scratch};
 use crate::error::{Error, Result};
 use crate::map_options::MapOptions;
 
-/// The report's schema name. Version 2 calls the count of separate regions `features` (version 1: `particles`), the
-/// word every table and figure uses; reports of version 1 are still read.
+/// The report's schema name. Version 2 calls the count of separate regions `features`
+/// (version 1: `particles`), the word every table and figure uses; reports of version 1
+/// are still read.
 pub const SCHEMA: &str = "modalmap.report/2";
 
 /// The caution on compositions, by basis (`uncalibrated`, `k-factors`, `calibrated`).
