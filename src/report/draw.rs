@@ -210,6 +210,15 @@ pub fn scale_bar_um(field_width_um: f64) -> f64 {
         .unwrap_or(p)
 }
 
+/// The label of a scale bar `len_um` µm long: in µm from 1 µm up, else in nm.
+pub fn scale_bar_label(len_um: f64) -> String {
+    if len_um >= 1.0 {
+        format!("{len_um} µm")
+    } else {
+        format!("{} nm", len_um * 1000.0)
+    }
+}
+
 /// A legend entry.
 pub struct LegendEntry {
     /// Phase id (0 = unassigned).
@@ -283,11 +292,7 @@ pub fn framed(
 fn scale_bar(c: &mut Canvas, px: f64, w: usize, zoom: usize, ts: usize, bottom: usize) {
     let len_um = scale_bar_um(w as f64 * px);
     let len = ((len_um / px) * zoom as f64).round() as usize;
-    let label = if len_um >= 1.0 {
-        format!("{len_um} µm")
-    } else {
-        format!("{} nm", len_um * 1000.0)
-    };
+    let label = scale_bar_label(len_um);
     let bar_h = 3 * ts;
     let tw = text_width(&label, ts);
     let (bx, by) = (4 * ts, bottom - bar_h - 14 * ts);
@@ -468,6 +473,8 @@ mod tests {
         assert_eq!(scale_bar_um(300.0), 50.0);
         assert_eq!(scale_bar_um(0.9), 0.1);
         assert_eq!(scale_bar_um(12.0), 2.0);
+        assert_eq!(scale_bar_label(10.0), "10 µm");
+        assert_eq!(scale_bar_label(0.1), "100 nm");
     }
 
     #[test]

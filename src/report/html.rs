@@ -137,11 +137,7 @@ pub fn phase_map_svg(
     if let Some(px) = pixel_size_um {
         let len_um = super::draw::scale_bar_um(w as f64 * px);
         let len = len_um / px * zoom;
-        let label = if len_um >= 1.0 {
-            format!("{len_um} µm")
-        } else {
-            format!("{} nm", len_um * 1000.0)
-        };
+        let label = super::draw::scale_bar_label(len_um);
         let label_w = f64::from(super::draw::advance(&label, SIZE as f32));
         let (bx, by) = (8.0, top + dh - 30.0);
         svg.rect(
